@@ -1,0 +1,754 @@
+"""The physics core shared by every pretrial environment.
+
+Each plant is a :class:`Physics` subclass: a parameter table, a pure vectorized
+``derivatives(state[N, S], force[N, A], params[N, P])`` and vectorized task rules
+(failure check, goal region, reward). Everything else is written once here:
+
+* :class:`ParamSpec` / :class:`ParamTable`: the single declaration of every
+  physical parameter (name, unit, nominal, valid range, meaning).
+* :func:`euler_step`, :func:`rk4_step`: fixed-step integrators over a batch.
+* :meth:`Physics.transition`: one control period for a batch, with the episode
+  bookkeeping (divergence, failure words, goal hold time, time limit).
+* :class:`PhysicsEnv` and :class:`PhysicsVectorEnv`: the gymnasium front doors.
+  Both are thin wrappers over :meth:`Physics.transition`, so a single env, a
+  vector env and pretrial's own rollout engine step the same equations.
+
+Arrays are float64 throughout: policies are compared with neat-python to 1e-12
+and the physics is checked against references to 1e-9.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, ClassVar, NamedTuple
+
+import gymnasium as gym
+import numpy as np
+from gymnasium import spaces
+from gymnasium.vector import AutoresetMode, VectorEnv
+
+Array = np.ndarray
+
+#: Failure words every environment shares (appended after the env's own).
+DIVERGED = "diverged"
+TIMEOUT = "timeout"
+
+#: A state component beyond this magnitude counts as diverged (common practice:
+#: treat a blown-up integration as a failure, not as data).
+DIVERGENCE_BOUND = 1e9
+
+INTEGRATORS = ("rk4", "euler")
+
+
+# --------------------------------------------------------------------------- #
+# Parameter table
+# --------------------------------------------------------------------------- #
+@dataclass(frozen=True)
+class ParamSpec:
+    """One physical parameter of a plant.
+
+    Parameters
+    ----------
+    name : str
+        Identifier used in configs, sweeps and ``params={...}``.
+    unit : str
+        SI unit (``"-"`` for dimensionless).
+    nominal : float
+        Value used when nothing overrides it.
+    low, high : float
+        Valid closed range; values outside are refused.
+    doc : str
+        One-line meaning.
+    role : str
+        ``"physics"`` (a property of the plant), ``"loss"`` (friction, damping,
+        drag: accepts 0), ``"disturbance"`` (wind, gust: accepts 0), ``"limit"``
+        (actuator limits) or ``"task"`` (tolerances of the task rule).
+    """
+
+    name: str
+    unit: str
+    nominal: float
+    low: float
+    high: float
+    doc: str
+    role: str = "physics"
+
+    def __post_init__(self) -> None:
+        if not (self.low <= self.nominal <= self.high):
+            raise ValueError(f"parameter {self.name}: nominal {self.nominal} outside [{self.low}, {self.high}]")
+        if self.role in ("loss", "disturbance") and self.low > 0:
+            raise ValueError(f"parameter {self.name}: a {self.role} parameter must accept 0")
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "unit": self.unit,
+            "nominal": self.nominal,
+            "low": self.low,
+            "high": self.high,
+            "doc": self.doc,
+            "role": self.role,
+        }
+
+
+class ParamTable(Sequence[ParamSpec]):
+    """Ordered, immutable table of :class:`ParamSpec`; columns of ``params[N, P]``."""
+
+    def __init__(self, specs: Sequence[ParamSpec]):
+        self._specs = tuple(specs)
+        self._index = {s.name: i for i, s in enumerate(self._specs)}
+        if len(self._index) != len(self._specs):
+            raise ValueError("duplicate parameter names in table")
+        self.nominal = np.array([s.nominal for s in self._specs], dtype=float)
+        self.nominal.setflags(write=False)
+
+    def __getitem__(self, key):  # type: ignore[override]
+        if isinstance(key, str):
+            return self._specs[self.index(key)]
+        return self._specs[key]
+
+    def __len__(self) -> int:
+        return len(self._specs)
+
+    def __iter__(self) -> Iterator[ParamSpec]:
+        return iter(self._specs)
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._index
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self._specs)
+
+    def index(self, name: str) -> int:  # type: ignore[override]
+        """Column of ``name``; ValueError naming the valid names otherwise."""
+        try:
+            return self._index[name]
+        except KeyError:
+            raise ValueError(unknown_name_message("parameter", name, self.names)) from None
+
+    def check_value(self, name: str, value: Any) -> float:
+        """Return ``value`` as float if it is a finite number in range, else raise ValueError."""
+        spec = self[name]
+        try:
+            v = float(value)
+        except (TypeError, ValueError):
+            raise ValueError(f"parameter {name}: {value!r} is not a number") from None
+        if not math.isfinite(v) or not (spec.low <= v <= spec.high):
+            raise ValueError(
+                f"parameter {name}: {value!r} outside its valid range [{spec.low:g}, {spec.high:g}] {spec.unit}"
+            )
+        return v
+
+    def resolve(self, overrides: Mapping[str, Any] | None = None) -> Array:
+        """Nominal vector with ``overrides`` applied and validated, shape (P,)."""
+        p = self.nominal.copy()
+        for name, value in (overrides or {}).items():
+            p[self.index(name)] = self.check_value(name, value)
+        return p
+
+    def resolve_batch(self, overrides: Mapping[str, Any] | None, n: int) -> Array:
+        """Parameters for ``n`` sub-environments, shape (n, P).
+
+        Each override is a scalar (shared) or a sequence of length ``n``.
+        """
+        p = np.tile(self.nominal, (n, 1))
+        for name, value in (overrides or {}).items():
+            col = self.index(name)
+            arr = np.asarray(value, dtype=object)
+            if arr.ndim == 0:
+                p[:, col] = self.check_value(name, value)
+            elif arr.shape == (n,):
+                p[:, col] = [self.check_value(name, v) for v in arr]
+            else:
+                raise ValueError(f"parameter {name}: expected a scalar or {n} values, got shape {arr.shape}")
+        return p
+
+    def as_dicts(self) -> list[dict[str, Any]]:
+        return [s.as_dict() for s in self._specs]
+
+
+def unknown_name_message(kind: str, name: str, valid: Sequence[str]) -> str:
+    """One-line message for an unknown name, with the nearest valid one suggested."""
+    near = difflib.get_close_matches(str(name), list(valid), n=1)
+    hint = f" (did you mean {near[0]!r}?)" if near else ""
+    return f"unknown {kind} {name!r}{hint}; valid: {', '.join(valid)}"
+
+
+# --------------------------------------------------------------------------- #
+# Integrators
+# --------------------------------------------------------------------------- #
+Derivatives = Callable[[Array, Array, Array], Array]
+
+
+def euler_step(f: Derivatives, x: Array, u: Array, p: Array, h: float) -> Array:
+    """Explicit (forward) Euler: ``x + h f(x, u, p)``."""
+    return x + h * f(x, u, p)
+
+
+def rk4_step(f: Derivatives, x: Array, u: Array, p: Array, h: float) -> Array:
+    """Classical fourth-order Runge-Kutta with ``u`` held over the step."""
+    k1 = f(x, u, p)
+    k2 = f(x + (0.5 * h) * k1, u, p)
+    k3 = f(x + (0.5 * h) * k2, u, p)
+    k4 = f(x + h * k3, u, p)
+    return x + (h / 6.0) * (k1 + 2.0 * (k2 + k3) + k4)
+
+
+_STEPPERS = {"euler": euler_step, "rk4": rk4_step}
+
+
+# --------------------------------------------------------------------------- #
+# The physics protocol
+# --------------------------------------------------------------------------- #
+class Transition(NamedTuple):
+    """Result of one control period for a batch (all arrays have leading size N)."""
+
+    state: Array  # (N, S) new physical state
+    reward: Array  # (N,)
+    failure: Array  # (N,) int code into Physics.failure_words, 0 = none
+    success: Array  # (N,) bool, episode ended in success
+    terminated: Array  # (N,) bool
+    truncated: Array  # (N,) bool, time limit reached
+    hold: Array  # (N,) seconds spent continuously in the goal region
+    steps: Array  # (N,) control periods since reset
+
+
+class Physics:
+    """A plant and its task, vectorized over a batch of N instances.
+
+    Subclasses declare the class attributes and implement :meth:`derivatives`,
+    :meth:`check` and :meth:`reward`; override :meth:`actuate`,
+    :meth:`observe`, :meth:`in_goal`, :meth:`start_center`,
+    :meth:`advance_disturbance` and :meth:`draw` as needed. An instance is one
+    configuration (control period, integrator, options); parameters are data
+    passed with each call, so every sub-environment can have its own.
+
+    Parameters
+    ----------
+    dt : float, optional
+        Control period in seconds (the action is held over it).
+    substeps : int, optional
+        Integration steps inside one control period.
+    integrator : {"rk4", "euler"}
+        Fixed-step integration method.
+    time_limit : float, optional
+        Episode length in seconds (truncation).
+    start_spread : mapping, optional
+        Half-width of the uniform start distribution per state name (overrides
+        the class default).
+    """
+
+    #: gymnasium id, e.g. ``"pretrial/CartPole-v0"``
+    env_id: ClassVar[str] = ""
+    #: one-line description for listings
+    summary: ClassVar[str] = ""
+    param_table: ParamTable
+    state_names: tuple[str, ...]
+    state_units: tuple[str, ...]
+    obs_names: tuple[str, ...]
+    obs_units: tuple[str, ...]
+    action_names: tuple[str, ...]
+    action_units: tuple[str, ...]
+    #: the env's own failure words (``diverged`` and ``timeout`` are added)
+    failure_modes: tuple[str, ...] = ()
+    #: "survive": success = time limit reached with no failure;
+    #: "reach": success = goal region held for ``hold_time`` seconds.
+    success_mode: str = "survive"
+    hold_time: float = 0.0
+    success_rule: str = ""
+    reward_doc: str = ""
+    #: standard normal draws per instance per control period (gust processes)
+    noise_dim: int = 0
+    #: k > 0: observation and action are k equal egocentric blocks (one per
+    #: vehicle), so one shared network can drive every block
+    obs_blocks: int = 0
+    #: typical magnitude of each observation (None: 1 for all); pretrial scales
+    #: network inputs by it so that one set of NEAT defaults suits every plant
+    obs_scale: tuple[float, ...] | None = None
+    default_dt: ClassVar[float] = 0.02
+    default_substeps: ClassVar[int] = 1
+    default_integrator: ClassVar[str] = "rk4"
+    default_time_limit: ClassVar[float] = 10.0
+    default_start_spread: ClassVar[Mapping[str, float]] = {}
+
+    def __init__(
+        self,
+        dt: float | None = None,
+        substeps: int | None = None,
+        integrator: str | None = None,
+        time_limit: float | None = None,
+        start_spread: Mapping[str, float] | None = None,
+    ):
+        self.dt = _positive("dt", self.default_dt if dt is None else dt)
+        substeps = self.default_substeps if substeps is None else substeps
+        if isinstance(substeps, bool) or not isinstance(substeps, (int, np.integer)) or substeps < 1:
+            raise ValueError(f"substeps: {substeps!r} must be a whole number >= 1")
+        self.substeps = int(substeps)
+        integrator = self.default_integrator if integrator is None else integrator
+        if integrator not in INTEGRATORS:
+            raise ValueError(f"integrator: {integrator!r} not one of {', '.join(INTEGRATORS)}")
+        self.integrator = integrator
+        self.time_limit = _positive("time_limit", self.default_time_limit if time_limit is None else time_limit)
+        self.max_steps = max(1, int(round(self.time_limit / self.dt)))
+        spread = dict(self.default_start_spread)
+        for name, value in (start_spread or {}).items():
+            if name not in self.state_names:
+                raise ValueError(unknown_name_message("state", name, self.state_names))
+            v = float(value)
+            if not math.isfinite(v) or v < 0:
+                raise ValueError(f"start_spread {name}: {value!r} must be a finite number >= 0")
+            spread[name] = v
+        self.start_spread = np.array([spread.get(n, 0.0) for n in self.state_names], dtype=float)
+        self._step = _STEPPERS[self.integrator]
+        self.failure_words: tuple[str, ...] = ("",) + tuple(self.failure_modes) + (DIVERGED, TIMEOUT)
+        self.diverged_code = len(self.failure_words) - 2
+        self.timeout_code = len(self.failure_words) - 1
+
+    # ----------------------------------------------------------- sizes
+    @property
+    def state_dim(self) -> int:
+        return len(self.state_names)
+
+    @property
+    def obs_dim(self) -> int:
+        return len(self.obs_names)
+
+    @property
+    def action_dim(self) -> int:
+        return len(self.action_names)
+
+    def options(self) -> dict[str, Any]:
+        """Keyword arguments that rebuild this configuration (JSON-friendly)."""
+        return {
+            "dt": self.dt,
+            "substeps": self.substeps,
+            "integrator": self.integrator,
+            "time_limit": self.time_limit,
+            "start_spread": {n: float(s) for n, s in zip(self.state_names, self.start_spread) if s},
+        }
+
+    def param(self, params: Array, name: str) -> Array:
+        """Column ``name`` of ``params`` (N, P) as an (N,) view."""
+        return params[:, self.param_table.index(name)]
+
+    # ----------------------------------------------------------- to implement
+    def derivatives(self, state: Array, force: Array, params: Array) -> Array:
+        """Time derivative of ``state`` (N, S) under ``force`` (N, A) in physical units."""
+        raise NotImplementedError
+
+    def check(self, state: Array, force: Array, params: Array) -> Array:
+        """Failure code per instance (0 = none, else index into ``failure_words``)."""
+        raise NotImplementedError
+
+    def reward(self, state: Array, action: Array, params: Array, failure: Array, success: Array) -> Array:
+        """Shaped reward for the control period that ended in ``state``."""
+        raise NotImplementedError
+
+    def actuate(self, action: Array, params: Array) -> Array:
+        """Map actions in [-1, 1] (N, A) to physical inputs (N, A)."""
+        raise NotImplementedError
+
+    def observe(self, state: Array, params: Array) -> Array:
+        """Observation (N, O); the default observes the whole state."""
+        return state.copy()
+
+    def in_goal(self, state: Array, params: Array) -> Array:
+        """Whether each instance is inside the goal region (reach tasks)."""
+        return np.zeros(state.shape[0], dtype=bool)
+
+    def start_center(self, params: Array) -> Array:
+        """Centre of the start distribution (N, S); default the origin."""
+        return np.zeros((params.shape[0], self.state_dim))
+
+    def advance_disturbance(self, state: Array, params: Array, noise: Array) -> Array:
+        """Update disturbance states once per control period (held within it)."""
+        return state
+
+    def draw(self, ax: Any, state: Array, params: Array) -> None:
+        """Draw one instance on a matplotlib Axes (state (S,), params (P,))."""
+        raise NotImplementedError
+
+    # ----------------------------------------------------------- provided
+    def integrate(self, state: Array, force: Array, params: Array) -> Array:
+        """Advance ``state`` over one control period with ``force`` held."""
+        h = self.dt / self.substeps
+        f = self.derivatives
+        step = self._step
+        for _ in range(self.substeps):
+            state = step(f, state, force, params, h)
+        return state
+
+    def sample_start(self, rng: np.random.Generator, params: Array, scale: float | Array = 1.0) -> Array:
+        """Start states: ``start_center + scale * start_spread * U(-1, 1)``."""
+        n = params.shape[0]
+        u = rng.uniform(-1.0, 1.0, size=(n, self.state_dim))
+        return self.start_center(params) + np.asarray(scale, dtype=float).reshape(-1, 1) * self.start_spread * u
+
+    def transition(
+        self,
+        state: Array,
+        action: Array,
+        params: Array,
+        hold: Array,
+        steps: Array,
+        noise: Array | None = None,
+    ) -> Transition:
+        """One control period for a batch, with the episode rules applied.
+
+        Parameters
+        ----------
+        state : (N, S) array
+        action : (N, A) array, clipped to [-1, 1] here
+        params : (N, P) array
+        hold : (N,) seconds already spent in the goal region
+        steps : (N,) control periods already taken
+        noise : (N, noise_dim) standard normal draws, or None for none
+        """
+        action = np.clip(action, -1.0, 1.0)
+        with np.errstate(all="ignore"):
+            if self.noise_dim:
+                if noise is None:
+                    noise = np.zeros((state.shape[0], self.noise_dim))
+                state = self.advance_disturbance(state, params, noise)
+            force = self.actuate(action, params)
+            state = self.integrate(state, force, params)
+            bad = ~np.isfinite(state).all(axis=1) | (np.abs(state) > DIVERGENCE_BOUND).any(axis=1)
+            failure = np.asarray(self.check(state, force, params), dtype=np.int64)
+            failure[bad] = self.diverged_code
+            ok = failure == 0
+            steps = steps + 1
+            if self.success_mode == "reach":
+                goal = ok & self.in_goal(state, params)
+                hold = np.where(goal, hold + self.dt, 0.0)
+                success = goal & (hold >= self.hold_time - 1e-9)
+                terminated = ~ok | success
+                truncated = ~terminated & (steps >= self.max_steps)
+                failure[truncated] = self.timeout_code
+            else:
+                terminated = ~ok
+                truncated = ~terminated & (steps >= self.max_steps)
+                success = truncated.copy()
+            reward = self.reward(state, action, params, failure, success)
+            reward = np.where(np.isfinite(reward), reward, 0.0)
+        return Transition(state, reward, failure, success, terminated, truncated, hold, steps)
+
+    def describe(self) -> dict[str, Any]:
+        """Everything a listing needs: parameters, spaces, rules."""
+        return {
+            "id": self.env_id,
+            "summary": self.summary,
+            "state": [{"name": n, "unit": u} for n, u in zip(self.state_names, self.state_units)],
+            "observation": [{"name": n, "unit": u} for n, u in zip(self.obs_names, self.obs_units)],
+            "action": [
+                {"name": n, "unit": u, "low": -1.0, "high": 1.0}
+                for n, u in zip(self.action_names, self.action_units)
+            ],
+            "params": self.param_table.as_dicts(),
+            "failure_modes": list(self.failure_words[1:]),
+            "success_rule": self.success_rule,
+            "reward": self.reward_doc,
+            "options": self.options(),
+        }
+
+
+def _positive(name: str, value: Any) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name}: {value!r} is not a number") from None
+    if not math.isfinite(v) or v <= 0:
+        raise ValueError(f"{name}: {value!r} must be a finite number > 0")
+    return v
+
+
+def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: float = 1e-6) -> tuple[Array, Array]:
+    """Central-difference Jacobians ``A = df/dx``, ``B = df/du`` at one point.
+
+    ``state`` (S,), ``force`` (A,) in physical units, ``params`` (P,). All
+    perturbed points are evaluated in one batched call.
+    """
+    s, a = state.size, force.size
+    step_x = eps * np.maximum(1.0, np.abs(state))
+    step_u = eps * np.maximum(1.0, np.abs(force))
+    dx = np.concatenate([np.diag(step_x), -np.diag(step_x), np.zeros((2 * a, s))])
+    du = np.concatenate([np.zeros((2 * s, a)), np.diag(step_u), -np.diag(step_u)])
+    f = physics.derivatives(state + dx, force + du, np.tile(params, (dx.shape[0], 1)))
+    jac_a = (f[:s] - f[s : 2 * s]).T / (2 * step_x)
+    jac_b = (f[2 * s : 2 * s + a] - f[2 * s + a :]).T / (2 * step_u)
+    return jac_a, jac_b
+
+
+# --------------------------------------------------------------------------- #
+# gymnasium front doors
+# --------------------------------------------------------------------------- #
+class _Renderer:
+    """matplotlib renderer shared by the single and vector envs."""
+
+    def __init__(self, physics: Physics, mode: str | None):
+        self.physics = physics
+        self.mode = mode
+        self.fig = None
+        self.ax = None
+
+    def frame(self, state: Array, params: Array, t: float, note: str = "") -> Array | None:
+        import matplotlib
+
+        if self.fig is None:
+            if self.mode == "human":
+                import matplotlib.pyplot as plt
+
+                self.fig, self.ax = plt.subplots(figsize=(6, 4), dpi=100)
+            else:
+                from matplotlib.backends.backend_agg import FigureCanvasAgg
+                from matplotlib.figure import Figure
+
+                self.fig = Figure(figsize=(6, 4), dpi=100)
+                FigureCanvasAgg(self.fig)
+                self.ax = self.fig.add_subplot(1, 1, 1)
+        ax = self.ax
+        ax.clear()
+        self.physics.draw(ax, state, params)
+        label = f"t = {t:6.2f} s" + (f"   {note}" if note else "")
+        ax.text(0.01, 0.98, label, transform=ax.transAxes, va="top", ha="left", fontsize=9, family="monospace")
+        self.fig.canvas.draw()
+        if self.mode == "human":
+            import matplotlib.pyplot as plt
+
+            if matplotlib.get_backend().lower() != "agg":
+                plt.pause(0.001)
+            return None
+        buf = np.asarray(self.fig.canvas.buffer_rgba())
+        return buf[:, :, :3].copy()
+
+    def close(self) -> None:
+        if self.fig is not None and self.mode == "human":
+            import matplotlib.pyplot as plt
+
+            plt.close(self.fig)
+        self.fig = None
+        self.ax = None
+
+
+def _spaces(physics: Physics) -> tuple[spaces.Box, spaces.Box]:
+    obs = spaces.Box(-np.inf, np.inf, shape=(physics.obs_dim,), dtype=np.float64)
+    act = spaces.Box(-1.0, 1.0, shape=(physics.action_dim,), dtype=np.float64)
+    return obs, act
+
+
+def _split_kwargs(kwargs: dict[str, Any]) -> tuple[dict[str, Any], dict[str, Any]]:
+    params = kwargs.pop("params", None) or {}
+    if not isinstance(params, Mapping):
+        raise ValueError(f"params: expected a mapping of parameter names to values, got {type(params).__name__}")
+    return dict(params), kwargs
+
+
+class PhysicsEnv(gym.Env):
+    """gymnasium ``Env`` over one instance of a :class:`Physics`.
+
+    Keyword arguments are those of the physics class plus ``params`` (a mapping
+    of parameter overrides) and ``render_mode``.
+    """
+
+    physics_type: ClassVar[type[Physics]]
+    metadata: ClassVar[dict[str, Any]] = {"render_modes": ["human", "rgb_array"], "render_fps": 50}
+
+    def __init__(self, render_mode: str | None = None, **kwargs: Any):
+        overrides, kwargs = _split_kwargs(kwargs)
+        self.physics = self.physics_type(**kwargs)
+        self.param_table = self.physics.param_table
+        self._params = self.param_table.resolve(overrides)[None, :]
+        self.observation_space, self.action_space = _spaces(self.physics)
+        if render_mode is not None and render_mode not in self.metadata["render_modes"]:
+            raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
+        self.render_mode = render_mode
+        self.metadata = {**self.metadata, "render_fps": int(round(1.0 / self.physics.dt))}
+        self._renderer = _Renderer(self.physics, render_mode)
+        self._state: Array | None = None
+        self._hold = np.zeros(1)
+        self._steps = np.zeros(1, dtype=np.int64)
+        self._done = False
+
+    # exact names from the contract
+    @property
+    def dt(self) -> float:
+        return self.physics.dt
+
+    @property
+    def params(self) -> dict[str, float]:
+        return dict(zip(self.param_table.names, map(float, self._params[0])))
+
+    @property
+    def state(self) -> Array | None:
+        return None if self._state is None else self._state[0].copy()
+
+    def _info(self) -> dict[str, Any]:
+        return {"state": self._state[0].copy(), "time": float(self._steps[0] * self.physics.dt)}
+
+    def reset(self, *, seed: int | None = None, options: dict[str, Any] | None = None):
+        super().reset(seed=seed)
+        options = options or {}
+        if "state" in options:
+            s = np.asarray(options["state"], dtype=float).reshape(-1)
+            if s.shape != (self.physics.state_dim,):
+                raise ValueError(
+                    f"options['state']: expected {self.physics.state_dim} values "
+                    f"({', '.join(self.physics.state_names)}), got {s.size}"
+                )
+            self._state = s[None, :].copy()
+        else:
+            self._state = self.physics.sample_start(self.np_random, self._params, options.get("start_scale", 1.0))
+        self._hold = np.zeros(1)
+        self._steps = np.zeros(1, dtype=np.int64)
+        self._done = False
+        obs = self.physics.observe(self._state, self._params)[0]
+        if self.render_mode == "human":
+            self.render()
+        return obs, self._info()
+
+    def step(self, action):
+        if self._state is None:
+            raise RuntimeError("call reset() before step()")
+        a = np.asarray(action, dtype=float).reshape(1, self.physics.action_dim)
+        noise = self.np_random.standard_normal((1, self.physics.noise_dim)) if self.physics.noise_dim else None
+        tr = self.physics.transition(self._state, a, self._params, self._hold, self._steps, noise)
+        self._state, self._hold, self._steps = tr.state, tr.hold, tr.steps
+        obs = self.physics.observe(self._state, self._params)[0]
+        info = self._info()
+        terminated, truncated = bool(tr.terminated[0]), bool(tr.truncated[0])
+        if terminated or truncated:
+            info["success"] = bool(tr.success[0])
+            if not tr.success[0]:
+                info["failure"] = self.physics.failure_words[int(tr.failure[0])]
+        if self.render_mode == "human":
+            self.render()
+        return obs, float(tr.reward[0]), terminated, truncated, info
+
+    def render(self):
+        if self.render_mode is None:
+            gym.logger.warn("render() called without a render_mode; pass render_mode='rgb_array' or 'human'")
+            return None
+        if self._state is None:
+            raise RuntimeError("call reset() before render()")
+        return self._renderer.frame(self._state[0], self._params[0], float(self._steps[0] * self.physics.dt))
+
+    def close(self) -> None:
+        self._renderer.close()
+
+
+class PhysicsVectorEnv(VectorEnv):
+    """gymnasium ``VectorEnv``: N instances, each with its own parameters.
+
+    ``params`` maps names to a scalar (shared) or to N values. Finished
+    sub-environments are reset on the next call to :meth:`step` (gymnasium's
+    next-step autoreset), which ignores their action and returns reward 0.
+    """
+
+    physics_type: ClassVar[type[Physics]]
+    metadata: ClassVar[dict[str, Any]] = {
+        "render_modes": ["rgb_array"],
+        "render_fps": 50,
+        "autoreset_mode": AutoresetMode.NEXT_STEP,
+    }
+
+    def __init__(
+        self,
+        num_envs: int = 1,
+        max_episode_steps: int | None = None,
+        render_mode: str | None = None,
+        **kwargs: Any,
+    ):
+        overrides, kwargs = _split_kwargs(kwargs)
+        if max_episode_steps is not None:
+            dt = kwargs.get("dt", self.physics_type.default_dt)
+            kwargs["time_limit"] = int(max_episode_steps) * float(dt)
+        self.physics = self.physics_type(**kwargs)
+        self.num_envs = int(num_envs)
+        self.param_table = self.physics.param_table
+        self._params = self.param_table.resolve_batch(overrides, self.num_envs)
+        self.single_observation_space, self.single_action_space = _spaces(self.physics)
+        self.observation_space = gym.vector.utils.batch_space(self.single_observation_space, self.num_envs)
+        self.action_space = gym.vector.utils.batch_space(self.single_action_space, self.num_envs)
+        if render_mode is not None and render_mode not in self.metadata["render_modes"]:
+            raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
+        self.render_mode = render_mode
+        self._renderer = _Renderer(self.physics, render_mode)
+        self._state: Array | None = None
+        self._hold = np.zeros(self.num_envs)
+        self._steps = np.zeros(self.num_envs, dtype=np.int64)
+        self._prev_done = np.zeros(self.num_envs, dtype=bool)
+        self._words = np.array(self.physics.failure_words, dtype=object)
+
+    @property
+    def dt(self) -> float:
+        return self.physics.dt
+
+    @property
+    def params(self) -> Array:
+        """Parameters in use, shape (num_envs, P), columns as ``param_table``."""
+        return self._params.copy()
+
+    @property
+    def state(self) -> Array | None:
+        return None if self._state is None else self._state.copy()
+
+    def reset(self, *, seed: int | None = None, options: dict[str, Any] | None = None):
+        super().reset(seed=seed)
+        options = options or {}
+        if "state" in options:
+            s = np.broadcast_to(np.asarray(options["state"], dtype=float), (self.num_envs, self.physics.state_dim))
+            self._state = s.copy()
+        else:
+            self._state = self.physics.sample_start(self.np_random, self._params, options.get("start_scale", 1.0))
+        self._hold = np.zeros(self.num_envs)
+        self._steps = np.zeros(self.num_envs, dtype=np.int64)
+        self._prev_done = np.zeros(self.num_envs, dtype=bool)
+        return self.physics.observe(self._state, self._params), {"state": self._state.copy()}
+
+    def step(self, actions):
+        if self._state is None:
+            raise RuntimeError("call reset() before step()")
+        a = np.asarray(actions, dtype=float).reshape(self.num_envs, self.physics.action_dim)
+        noise = (
+            self.np_random.standard_normal((self.num_envs, self.physics.noise_dim)) if self.physics.noise_dim else None
+        )
+        tr = self.physics.transition(self._state, a, self._params, self._hold, self._steps, noise)
+        state, hold, steps = tr.state, tr.hold, tr.steps
+        reward, terminated, truncated = tr.reward, tr.terminated, tr.truncated
+        success = tr.success
+        redo = self._prev_done
+        if redo.any():
+            state[redo] = self.physics.sample_start(self.np_random, self._params[redo])
+            hold[redo] = 0.0
+            steps[redo] = 0
+            reward[redo] = 0.0
+            terminated[redo] = False
+            truncated[redo] = False
+            success[redo] = False
+        self._state, self._hold, self._steps = state, hold, steps
+        done = terminated | truncated
+        self._prev_done = done
+        failed = done & ~success
+        failure = np.where(failed, self._words[tr.failure], "")
+        info = {
+            "state": state.copy(),
+            "success": success.copy(),
+            "_success": done.copy(),
+            "failure": failure,
+            "_failure": failed.copy(),
+        }
+        return self.physics.observe(state, self._params), reward, terminated, truncated, info
+
+    def render(self):
+        if self.render_mode is None or self._state is None:
+            return None
+        return tuple(
+            self._renderer.frame(s, p, float(k * self.physics.dt))
+            for s, p, k in zip(self._state, self._params, self._steps)
+        )
+
+    def close_extras(self, **kwargs: Any) -> None:
+        self._renderer.close()

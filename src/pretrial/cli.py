@@ -1,0 +1,179 @@
+"""The ``pretrial`` command line.
+
+Each sub-command is a ``configure(parser)`` / ``run(args) -> int`` pair. Any
+:class:`~pretrial.errors.PretrialError` becomes one line on stderr and exit
+code 2 (``--debug`` shows the traceback too).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from collections.abc import Callable, Sequence
+from typing import Any
+
+from . import __version__
+from .console import emit_json, table
+from .errors import InputError, PretrialError
+
+
+# --------------------------------------------------------------------------- #
+# shared argument helpers
+# --------------------------------------------------------------------------- #
+def parse_literal(text: str) -> Any:
+    """Value of a ``NAME=VALUE`` option: bool, int, float or string."""
+    low = text.strip().lower()
+    if low in ("true", "false"):
+        return low == "true"
+    for cast in (int, float):
+        try:
+            return cast(text)
+        except ValueError:
+            pass
+    return text
+
+
+def parse_assignments(items: Sequence[str] | None, flag: str) -> dict[str, Any]:
+    """``["a=1", "b=x"]`` -> ``{"a": 1, "b": "x"}``; InputError naming the flag otherwise."""
+    out: dict[str, Any] = {}
+    for item in items or ():
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip() or not value.strip():
+            raise InputError(f"{flag} {item!r}: expected NAME=VALUE")
+        out[name.strip()] = parse_literal(value.strip())
+    return out
+
+
+def resolve_env_id(name: str) -> str:
+    """Accept a full id (``pretrial/CartPole-v0``) or its short form (``CartPole-v0``)."""
+    import pretrial_envs
+
+    ids = pretrial_envs.env_ids()
+    if name in ids:
+        return name
+    for env_id in ids:
+        if env_id.split("/", 1)[-1].lower() == name.lower():
+            return env_id
+    try:
+        pretrial_envs.physics_type(name)
+        return name
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
+
+
+# --------------------------------------------------------------------------- #
+# pretrial envs
+# --------------------------------------------------------------------------- #
+def _configure_envs(p: argparse.ArgumentParser) -> None:
+    p.add_argument("env_id", nargs="?", help="environment id (full or short, e.g. GantryCrane-v0)")
+    p.add_argument(
+        "--option",
+        action="append",
+        metavar="NAME=VALUE",
+        help="environment keyword argument, e.g. poles=2 or hoist=true (repeatable)",
+    )
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
+
+
+def _run_envs(args: argparse.Namespace) -> int:
+    import pretrial_envs
+
+    if args.env_id is None:
+        rows = []
+        for env_id in pretrial_envs.env_ids():
+            phys = pretrial_envs.physics_type(env_id)
+            rows.append({"id": env_id, "summary": phys.summary})
+        if args.json:
+            emit_json({"environments": rows})
+        else:
+            table(["id", "summary"], [[r["id"], r["summary"]] for r in rows])
+            print("\n`pretrial envs ID` shows an environment's parameters, spaces and success rule.")
+        return 0
+    env_id = resolve_env_id(args.env_id)
+    options = parse_assignments(args.option, "--option")
+    try:
+        physics = pretrial_envs.make_physics(env_id, **options)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{env_id}: {exc}") from None
+    info = physics.describe()
+    if args.json:
+        emit_json(info)
+        return 0
+    print(f"{env_id}: {info['summary']}")
+    opts = ", ".join(f"{k}={v}" for k, v in info["options"].items() if k != "start_spread")
+    print(f"options: {opts}\n")
+    print("Parameters")
+    table(
+        ["name", "unit", "nominal", "valid range", "role", "meaning"],
+        [[s["name"], s["unit"], s["nominal"], f"[{s['low']:g}, {s['high']:g}]", s["role"], s["doc"]]
+         for s in info["params"]],
+    )
+    for title, key in (("State", "state"), ("Observation", "observation")):
+        print(f"\n{title} ({len(info[key])})")
+        table(["#", "name", "unit"], [[i, d["name"], d["unit"]] for i, d in enumerate(info[key])])
+    print(f"\nAction ({len(info['action'])}, each in [-1, 1])")
+    table(["#", "name", "physical unit"], [[i, d["name"], d["unit"]] for i, d in enumerate(info["action"])])
+    print(f"\nSuccess: {info['success_rule']}")
+    print(f"Failure words: {', '.join(info['failure_modes'])}")
+    print(f"Reward: {info['reward']}")
+    return 0
+
+
+# --------------------------------------------------------------------------- #
+# entry point
+# --------------------------------------------------------------------------- #
+Command = tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]]
+
+COMMANDS: list[Command] = [
+    ("envs", _configure_envs, _run_envs),
+]
+
+HELP = {
+    "envs": "list the environments, or show one's parameters, spaces and success rule",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that reports usage errors as one line with exit code 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        self.exit(2, f"{self.prog}: error: {message} (see --help)\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="pretrial",
+        description="Evolve neural controllers with NEAT and measure how far they can be trusted "
+        "before a hardware trial.",
+    )
+    parser.add_argument("--version", action="version", version=f"pretrial {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show a traceback on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name, configure, run in COMMANDS:
+        p = sub.add_parser(name, help=HELP[name], description=HELP[name])
+        configure(p)
+        p.set_defaults(_run=run)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except PretrialError as exc:
+        if args.debug:
+            traceback.print_exc()
+        print(f"pretrial: error: {exc.message}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("pretrial: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,404 @@
+"""Run configs: TOML in, validated dataclasses out; every error names file and key.
+
+A config has four tables::
+
+    [task]              env, episodes, horizon, network layout
+    [task.options]      the env's keyword arguments (poles, hoist, dt, substeps, ...)
+    [task.params]       physics overrides (names from the env's parameter table)
+    [task.randomize]    NAME = [low, high]: drawn afresh each generation
+    [neat]              neat-python settings by name, merged onto the shipped defaults
+    [run]               generations, seed, fitness_target, checkpoint_every, workers, dask
+
+Unknown keys, wrong types and impossible values raise :class:`InputError` with
+one line: ``FILE: KEY: what is wrong (what is allowed)``, suggesting the nearest
+valid key.
+"""
+
+from __future__ import annotations
+
+import configparser
+import difflib
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from .errors import InputError
+
+NETWORK_LAYOUTS = ("whole", "shared")
+
+
+@dataclass(frozen=True)
+class TaskConfig:
+    """What is evolved against: the env, its options and the scenarios per genome."""
+
+    env: str
+    env_options: dict[str, Any] = field(default_factory=dict)
+    params: dict[str, float] = field(default_factory=dict)
+    episodes: int = 8
+    horizon: float | None = None  # seconds of simulated time; None = the env's time limit
+    network: str = "whole"  # "shared": one network per repeated observation block (drones)
+    randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """How long, how reproducible and where to run."""
+
+    generations: int = 100
+    seed: int = 0
+    fitness_target: float | None = None
+    checkpoint_every: int = 10
+    workers: int | str = "auto"
+    dask: str | None = None
+    finalists: int = 5
+    validation_episodes: int = 32
+
+
+@dataclass(frozen=True)
+class Config:
+    """A whole run config, as loaded from ``path``."""
+
+    path: str
+    task: TaskConfig
+    neat: dict[str, Any]
+    run: RunConfig
+    source_text: str = ""
+
+    @property
+    def name(self) -> str:
+        return Path(self.path).stem
+
+    def content_hash(self) -> str:
+        return hashlib.sha256(dump_toml(self.to_dict()).encode()).hexdigest()
+
+    def to_dict(self) -> dict[str, Any]:
+        """The resolved config as plain TOML-able data (what config.resolved.toml holds)."""
+        task: dict[str, Any] = {"env": self.task.env, "episodes": self.task.episodes, "network": self.task.network}
+        if self.task.horizon is not None:
+            task["horizon"] = self.task.horizon
+        task["env"] = self.task.env
+        out: dict[str, Any] = {"task": task}
+        if self.task.env_options:
+            task["options"] = dict(self.task.env_options)
+        if self.task.params:
+            task["params"] = dict(self.task.params)
+        if self.task.randomize:
+            task["randomize"] = {k: list(v) for k, v in self.task.randomize.items()}
+        out["neat"] = dict(self.neat)
+        run = {k: v for k, v in self.run.__dict__.items() if v is not None}
+        out["run"] = run
+        return out
+
+
+# --------------------------------------------------------------------------- #
+# reading
+# --------------------------------------------------------------------------- #
+class _Reader:
+    """Pops typed keys from one TOML table and reports the leftovers."""
+
+    def __init__(self, path: str, prefix: str, table: Any):
+        self.path = path
+        self.prefix = prefix
+        if not isinstance(table, dict):
+            self.fail(prefix, f"expected a table, got {_kind(table)}")
+        self.table = dict(table)
+        self.known: list[str] = []
+
+    def fail(self, key: str, message: str) -> None:
+        raise InputError(f"{self.path}: {key}: {message}")
+
+    def key(self, name: str) -> str:
+        return f"{self.prefix}.{name}" if self.prefix else name
+
+    def take(self, name: str, kind: type | tuple[type, ...], default: Any = ..., check=None, allowed: str = "") -> Any:
+        self.known.append(name)
+        if name not in self.table:
+            if default is ...:
+                self.fail(self.key(name), f"missing ({allowed or 'required'})")
+            return default
+        value = self.table.pop(name)
+        kinds = kind if isinstance(kind, tuple) else (kind,)
+        ok = isinstance(value, kinds) and not (isinstance(value, bool) and bool not in kinds)
+        if float in kinds and isinstance(value, int) and not isinstance(value, bool):
+            value, ok = float(value), True
+        if not ok:
+            names = " or ".join(_TYPE_NAMES.get(k, k.__name__) for k in kinds)
+            self.fail(self.key(name), f"expected {names}, got {_kind(value)} {value!r}")
+        if isinstance(value, float) and not math.isfinite(value):
+            self.fail(self.key(name), f"{value!r} is not a finite number")
+        if check is not None and not check(value):
+            self.fail(self.key(name), f"{value!r} not allowed ({allowed})")
+        return value
+
+    def table_of(self, name: str) -> dict[str, Any]:
+        self.known.append(name)
+        value = self.table.pop(name, {})
+        if not isinstance(value, dict):
+            self.fail(self.key(name), f"expected a table, got {_kind(value)}")
+        return value
+
+    def finish(self) -> None:
+        for extra in self.table:
+            near = difflib.get_close_matches(extra, self.known, n=1)
+            hint = f" (did you mean {self.key(near[0])!r}?)" if near else ""
+            valid = ", ".join(self.known)
+            self.fail(self.key(extra), f"unknown key{hint}; valid keys here: {valid}")
+
+
+_TYPE_NAMES = {int: "an integer", float: "a number", str: "a string", bool: "true/false", list: "a list", dict: "a table"}
+
+
+def _kind(value: Any) -> str:
+    return {bool: "boolean", int: "integer", float: "number", str: "string", list: "list", dict: "table"}.get(
+        type(value), type(value).__name__
+    )
+
+
+def read_toml(path: str | Path) -> tuple[dict[str, Any], str]:
+    """Parse a TOML file; InputError naming the file for anything unreadable."""
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{p}: no such file")
+    if p.is_dir():
+        raise InputError(f"{p}: is a directory, expected a TOML file")
+    try:
+        raw = p.read_bytes()
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise InputError(f"{p}: not a text file (expected UTF-8 TOML)") from None
+    except OSError as exc:
+        raise InputError(f"{p}: cannot read ({exc.strerror})") from None
+    if not text.strip():
+        raise InputError(f"{p}: file is empty (expected a TOML config)")
+    try:
+        return tomllib.loads(text), text
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{p}: malformed TOML: {exc}") from None
+
+
+def neat_defaults() -> configparser.ConfigParser:
+    """The shipped neat-python defaults (src/pretrial/data/neat-defaults.ini)."""
+    cp = configparser.ConfigParser()
+    cp.read_string(resources.files("pretrial").joinpath("data/neat-defaults.ini").read_text())
+    return cp
+
+
+def neat_key_sections() -> dict[str, str]:
+    """neat-python setting name -> section in its config file."""
+    cp = neat_defaults()
+    keys = {k: s for s in cp.sections() for k in cp[s]}
+    # settings neat-python accepts that our defaults leave to the library
+    for extra in ("seed",):
+        keys[extra] = "NEAT"
+    for attr in ("time_constant",):
+        for item in ("init_mean", "init_stdev", "init_type", "replace_rate", "mutate_rate", "mutate_power",
+                     "max_value", "min_value"):
+            keys[f"{attr}_{item}"] = "DefaultGenome"
+    return keys
+
+
+#: [neat] keys the run sets itself
+_DERIVED_NEAT = {
+    "num_inputs": "derived from the environment",
+    "num_outputs": "derived from the environment",
+    "fitness_threshold": "set [run].fitness_target instead",
+    "no_fitness_termination": "set [run].fitness_target instead",
+    "seed": "set [run].seed instead",
+}
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a run config; raises :class:`InputError` on any problem."""
+    import pretrial_envs
+
+    data, text = read_toml(path)
+    path = str(path)
+    top = _Reader(path, "", data)
+    task_t = top.table_of("task")
+    neat_t = top.table_of("neat")
+    run_t = top.table_of("run")
+    top.finish()
+
+    t = _Reader(path, "task", task_t)
+    env = t.take("env", str, allowed="an environment id, e.g. 'pretrial/CartPole-v0'")
+    if env not in pretrial_envs.env_ids():
+        try:
+            pretrial_envs.physics_type(env)
+        except ValueError as exc:
+            t.fail("task.env", str(exc))
+    episodes = t.take("episodes", int, 8, lambda v: 1 <= v <= 100_000, "a whole number from 1 to 100000")
+    horizon = t.take("horizon", float, None, lambda v: v > 0, "seconds of simulated time, > 0")
+    network = t.take("network", str, "whole", lambda v: v in NETWORK_LAYOUTS, " or ".join(NETWORK_LAYOUTS))
+    env_options = t.table_of("options")
+    params = t.table_of("params")
+    randomize_t = t.table_of("randomize")
+    t.finish()
+
+    try:
+        physics = pretrial_envs.make_physics(env, **env_options)
+    except TypeError as exc:
+        raise InputError(f"{path}: task.options: {exc}") from None
+    except ValueError as exc:
+        raise InputError(f"{path}: task.options: {exc}") from None
+    for name, value in params.items():
+        try:
+            physics.param_table.index(name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                raise ValueError(f"{value!r} is not a number")
+            physics.param_table.check_value(name, value)
+        except ValueError as exc:
+            raise InputError(f"{path}: task.params.{name}: {exc}") from None
+    params = {k: float(v) for k, v in params.items()}
+
+    from .perturb import spec_of
+
+    randomize: dict[str, tuple[float, float]] = {}
+    for name, rng in randomize_t.items():
+        key = f"task.randomize.{name}"
+        try:
+            spec = spec_of(physics, name)
+        except ValueError as exc:
+            raise InputError(f"{path}: {key}: {exc}") from None
+        if (
+            not isinstance(rng, list)
+            or len(rng) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in rng)
+        ):
+            raise InputError(f"{path}: {key}: expected [low, high] numbers, got {rng!r}")
+        lo, hi = float(rng[0]), float(rng[1])
+        if not (math.isfinite(lo) and math.isfinite(hi)) or lo > hi:
+            raise InputError(f"{path}: {key}: range [{lo:g}, {hi:g}] is reversed or not finite")
+        if lo < spec.low or hi > spec.high:
+            raise InputError(
+                f"{path}: {key}: range [{lo:g}, {hi:g}] leaves the valid range [{spec.low:g}, {spec.high:g}] {spec.unit}"
+            )
+        randomize[name] = (lo, hi)
+    if network == "shared" and not getattr(physics, "obs_blocks", 0):
+        raise InputError(f"{path}: task.network: 'shared' needs an env with repeated observation blocks; {env} has none")
+
+    sections = neat_key_sections()
+    neat: dict[str, Any] = {}
+    for name, value in neat_t.items():
+        key = f"neat.{name}"
+        if name in _DERIVED_NEAT:
+            raise InputError(f"{path}: {key}: not settable here ({_DERIVED_NEAT[name]})")
+        if name not in sections:
+            near = difflib.get_close_matches(name, list(sections), n=1)
+            hint = f" (did you mean 'neat.{near[0]}'?)" if near else ""
+            raise InputError(f"{path}: {key}: unknown neat-python setting{hint}")
+        if isinstance(value, dict):
+            raise InputError(f"{path}: {key}: expected a value, got a table")
+        if isinstance(value, float) and not math.isfinite(value):
+            raise InputError(f"{path}: {key}: {value!r} is not a finite number")
+        neat[name] = value
+
+    r = _Reader(path, "run", run_t)
+    generations = r.take("generations", int, 100, lambda v: 1 <= v <= 1_000_000, "a whole number >= 1")
+    seed = r.take("seed", int, 0, lambda v: 0 <= v < 2**63, "a whole number >= 0")
+    target = r.take("fitness_target", float, None)
+    every = r.take("checkpoint_every", int, 10, lambda v: v >= 1, "a whole number >= 1")
+    workers = r.take(
+        "workers", (int, str), "auto", lambda v: v == "auto" or (isinstance(v, int) and v >= 1), "'auto' or >= 1"
+    )
+    dask = r.take("dask", str, None, lambda v: bool(v.strip()), "'local' or a scheduler address like tcp://host:8786")
+    finalists = r.take("finalists", int, 5, lambda v: v >= 1, "a whole number >= 1")
+    validation = r.take("validation_episodes", int, 32, lambda v: v >= 1, "a whole number >= 1")
+    r.finish()
+
+    cfg = Config(
+        path=path,
+        task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize),
+        neat=neat,
+        run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation),
+        source_text=text,
+    )
+    build_neat_ini(cfg, 1, 1)  # surfaces neat-python's own objections now, with the key named
+    return cfg
+
+
+def build_neat_ini(cfg: Config, num_inputs: int, num_outputs: int) -> str:
+    """The merged neat-python config file text for this run."""
+    cp = neat_defaults()
+    sections = neat_key_sections()
+    for name, value in cfg.neat.items():
+        if isinstance(value, bool):
+            text = "true" if value else "false"
+        elif isinstance(value, list):
+            text = " ".join(str(v) for v in value)
+        else:
+            text = str(value)
+        cp[sections[name]][name] = text
+    cp["DefaultGenome"]["num_inputs"] = str(num_inputs)
+    cp["DefaultGenome"]["num_outputs"] = str(num_outputs)
+    lines = []
+    for s in cp.sections():
+        lines.append(f"[{s}]")
+        lines.extend(f"{k} = {v}" for k, v in cp[s].items())
+        lines.append("")
+    text = "\n".join(lines)
+    _check_neat_text(cfg.path, text)
+    return text
+
+
+def _check_neat_text(path: str, text: str) -> None:
+    import os
+    import tempfile
+
+    import neat
+
+    fd, tmp = tempfile.mkstemp(suffix=".ini")
+    try:
+        with os.fdopen(fd, "w") as f:
+            f.write(text)
+        neat.Config(
+            neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet, neat.DefaultStagnation, tmp
+        )
+    except Exception as exc:  # neat-python raises bare Exception/RuntimeError/AssertionError
+        msg = " ".join(str(exc).split()) or type(exc).__name__
+        raise InputError(f"{path}: [neat]: neat-python refuses the merged settings: {msg}") from None
+    finally:
+        os.unlink(tmp)
+
+
+# --------------------------------------------------------------------------- #
+# writing
+# --------------------------------------------------------------------------- #
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        if isinstance(v, float) and not math.isfinite(v):
+            return "inf" if v > 0 else ("-inf" if v < 0 else "nan")
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def dump_toml(data: dict[str, Any]) -> str:
+    """Write nested tables of scalars and lists as TOML (enough for our files)."""
+    out: list[str] = []
+
+    def emit(prefix: str, table: dict[str, Any]) -> None:
+        scalars = {k: v for k, v in table.items() if not isinstance(v, dict)}
+        tables = {k: v for k, v in table.items() if isinstance(v, dict)}
+        if prefix:
+            out.append(f"[{prefix}]")
+        out.extend(f"{_bare(k)} = {_toml_value(v)}" for k, v in scalars.items())
+        if prefix or scalars:
+            out.append("")
+        for k, v in tables.items():
+            emit(f"{prefix}.{_bare(k)}" if prefix else _bare(k), v)
+
+    emit("", data)
+    return "\n".join(out).rstrip() + "\n"
+
+
+def _bare(key: str) -> str:
+    return key if key.replace("_", "").replace("-", "").isalnum() else _toml_value(key)

@@ -1,0 +1,171 @@
+"""What can be perturbed, and how each perturbation acts on the control loop.
+
+Two kinds of names can be varied in a config's ``[task.randomize]`` or a sweep
+plan: any physics parameter from the environment's own table, and the generic
+perturbations below, which act on any environment between the policy and the
+plant. They are declared once, in :data:`PERTURBATIONS`, with the same
+:class:`~pretrial_envs.core.ParamSpec` rows the environments use; the nominal
+value of each is "no perturbation".
+
+:class:`Loop` applies them vectorized over a batch of rows (one row = one
+scenario, possibly repeated for many genomes):
+
+* sensor path: ``measured = quantize(obs + bias + noise_std * n)``, delayed by
+  ``sensor_delay_s`` (rounded to whole control periods);
+* actuator path: the policy's command is delayed by ``actuator_delay_s``,
+  passed through a deadband, multiplied by ``actuator_gain``, slew-limited by
+  ``actuator_rate_limit`` (full scale per second), lagged by a first-order
+  ``actuator_lag_s`` and clipped to the actuator range [-1, 1].
+
+Delays are whole control periods because the plant only sees a new action at
+a control step; a delay below half a period rounds to none (stated in reports).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+from pretrial_envs.core import ParamSpec, ParamTable, Physics, unknown_name_message
+
+from . import streams
+
+PERTURBATIONS = ParamTable(
+    [
+        ParamSpec("actuator_gain", "-", 1.0, 0.0, 100.0, "multiplier on every actuator command", "actuator"),
+        ParamSpec("actuator_lag_s", "s", 0.0, 0.0, 10.0, "first-order actuator time constant", "actuator"),
+        ParamSpec("actuator_delay_s", "s", 0.0, 0.0, 10.0, "transport delay of commands", "actuator"),
+        ParamSpec("actuator_deadband", "-", 0.0, 0.0, 1.0, "commands below this (full scale) give zero", "actuator"),
+        ParamSpec(
+            "actuator_rate_limit", "1/s", float("inf"), 0.0, float("inf"), "slew limit, full scale per second",
+            "actuator",
+        ),
+        ParamSpec("sensor_noise_std", "obs unit", 0.0, 0.0, 1e6, "white noise std added to every observation", "sensor"),
+        ParamSpec("sensor_bias", "obs unit", 0.0, -1e6, 1e6, "constant offset added to every observation", "sensor"),
+        ParamSpec("sensor_delay_s", "s", 0.0, 0.0, 10.0, "age of the observation the policy sees", "sensor"),
+        ParamSpec("sensor_quantization", "obs unit", 0.0, 0.0, 1e6, "observation resolution (0 = exact)", "sensor"),
+        ParamSpec("start_scale", "-", 1.0, 0.0, 100.0, "multiplier on the start-state ranges", "start"),
+    ]
+)
+
+#: counter offsets so the streams of one scenario never overlap
+_SENSOR_STREAM, _PLANT_STREAM = 0, 1
+_STREAMS = 2
+
+
+def split_names(physics: Physics, names: list[str]) -> tuple[list[str], list[str]]:
+    """Split varied names into (physics parameters, generic perturbations).
+
+    Raises ValueError for a name that is neither, suggesting the nearest.
+    """
+    phys, pert = [], []
+    valid = list(physics.param_table.names) + list(PERTURBATIONS.names)
+    for name in names:
+        if name in physics.param_table:
+            phys.append(name)
+        elif name in PERTURBATIONS:
+            pert.append(name)
+        else:
+            raise ValueError(unknown_name_message("parameter or perturbation", name, valid))
+    return phys, pert
+
+
+def spec_of(physics: Physics, name: str) -> ParamSpec:
+    """The table row for a physics parameter or a generic perturbation."""
+    if name in physics.param_table:
+        return physics.param_table[name]
+    if name in PERTURBATIONS:
+        return PERTURBATIONS[name]
+    split_names(physics, [name])  # raises with the nearest-name hint
+    raise AssertionError  # pragma: no cover
+
+
+class Loop:
+    """The perturbed control loop around a plant, for a batch of ``n`` rows.
+
+    Parameters
+    ----------
+    physics : Physics
+        The plant (its ``dt`` sets the control period).
+    values : mapping of str to array
+        Generic perturbation values per row (missing names take their nominal).
+    keys : (n,) uint64 array
+        Scenario keys for the random streams (see :mod:`pretrial.streams`).
+    """
+
+    def __init__(self, physics: Physics, values: Mapping[str, np.ndarray], keys: np.ndarray):
+        self.physics = physics
+        n = len(keys)
+        self.n = n
+        self.keys = keys
+        for name in values:
+            PERTURBATIONS.index(name)  # unknown names fail loudly
+        v = {s.name: np.broadcast_to(np.asarray(values.get(s.name, s.nominal), float), (n,)) for s in PERTURBATIONS}
+        dt = physics.dt
+        self.gain = v["actuator_gain"][:, None]
+        self.deadband = v["actuator_deadband"][:, None]
+        self.max_slew = (v["actuator_rate_limit"] * dt)[:, None]
+        lag = v["actuator_lag_s"]
+        # exact first-order response to a command held over one period
+        self.lag_alpha = np.where(lag > 0, -np.expm1(-dt / np.where(lag > 0, lag, 1.0)), 1.0)[:, None]
+        self.noise_std = v["sensor_noise_std"][:, None]
+        self.bias = v["sensor_bias"][:, None]
+        self.quantum = v["sensor_quantization"][:, None]
+        self.act_delay = np.rint(v["actuator_delay_s"] / dt).astype(np.int64)
+        self.obs_delay = np.rint(v["sensor_delay_s"] / dt).astype(np.int64)
+        self.start_scale = v["start_scale"].copy()
+        self._any_sensor = bool(np.any(self.noise_std) or np.any(self.bias) or np.any(self.quantum))
+        self._any_act_shape = bool(
+            np.any(self.gain != 1.0) or np.any(self.deadband) or np.any(np.isfinite(self.max_slew))
+            or np.any(self.lag_alpha != 1.0)
+        )
+        self._obs_buf: np.ndarray | None = None
+        self._act_buf: np.ndarray | None = None
+        self._applied: np.ndarray | None = None
+        self._rows = np.arange(n)
+
+    def reset(self, obs0: np.ndarray) -> None:
+        """Start of an episode: delay lines hold the first observation and zero commands."""
+        a = self.physics.action_dim
+        dmax = int(self.obs_delay.max(initial=0))
+        self._obs_buf = np.repeat(obs0[None], dmax + 1, axis=0) if dmax else None
+        amax = int(self.act_delay.max(initial=0))
+        self._act_buf = np.zeros((amax + 1, self.n, a)) if amax else None
+        self._applied = np.zeros((self.n, a))
+
+    def sense(self, obs: np.ndarray, step: int) -> np.ndarray:
+        """What the policy measures at control step ``step`` from the true ``obs``."""
+        if self._obs_buf is not None:
+            depth = self._obs_buf.shape[0]
+            self._obs_buf[step % depth] = obs
+            obs = self._obs_buf[(step - self.obs_delay) % depth, self._rows]
+            # before the line has filled, the oldest entry is the first observation
+        if not self._any_sensor:
+            return obs
+        counter = _STREAMS * step + _SENSOR_STREAM
+        out = obs + self.bias + self.noise_std * streams.normal(self.keys, counter, obs.shape[1])
+        return np.where(self.quantum > 0, np.round(out / np.where(self.quantum > 0, self.quantum, 1.0)) * self.quantum, out)
+
+    def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
+        """Action applied to the plant at ``step`` for the policy's ``command``."""
+        command = np.clip(command, -1.0, 1.0)
+        if self._act_buf is not None:
+            depth = self._act_buf.shape[0]
+            self._act_buf[step % depth] = command
+            lagged = (step - self.act_delay) % depth
+            command = np.where((step >= self.act_delay)[:, None], self._act_buf[lagged, self._rows], 0.0)
+        if not self._any_act_shape:
+            self._applied = command
+            return command
+        u = np.where(np.abs(command) <= self.deadband, 0.0, command) * self.gain
+        prev = self._applied
+        u = prev + np.clip(u - prev, -self.max_slew, self.max_slew)
+        u = prev + self.lag_alpha * (u - prev)
+        u = np.clip(u, -1.0, 1.0)
+        self._applied = u
+        return u
+
+    def plant_noise(self, step: int) -> np.ndarray | None:
+        """Standard normal draws for the plant's disturbance processes, or None."""
+        k = self.physics.noise_dim
+        return streams.normal(self.keys, _STREAMS * step + _PLANT_STREAM, k) if k else None

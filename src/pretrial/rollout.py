@@ -1,0 +1,182 @@
+"""Batched episodes: policies x scenarios -> outcomes, at numpy speed.
+
+One call runs every (policy, scenario) pair as a row of one batch and steps
+them together through the perturbed loop (:class:`~pretrial.perturb.Loop`) and
+the plant's physics core (:meth:`~pretrial_envs.core.Physics.transition`).
+Rows are ordered policy-major: row ``g * S + s`` is policy ``g`` in scenario
+``s``. Every policy sees the same scenarios, draw for draw (common random
+numbers), because all randomness is keyed by the scenario, not by the row.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Protocol
+
+import numpy as np
+from pretrial_envs.core import Physics
+
+from . import streams
+from .perturb import PERTURBATIONS, Loop
+
+
+class BatchPolicy(Protocol):
+    """What the rollout engine drives: G policies acting on G x S rows."""
+
+    n_policies: int
+
+    def reset(self, batch_size: int) -> None:
+        """Clear recurrent state for ``batch_size`` scenarios per policy."""
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Env actions (G*S, A) in [-1, 1] for observations (G*S, O), policy-major rows."""
+
+
+@dataclass
+class Scenarios:
+    """S scenarios: physics parameters, generic perturbations, start states, stream keys."""
+
+    params: np.ndarray  # (S, P)
+    start: np.ndarray  # (S, state_dim)
+    keys: np.ndarray  # (S,) uint64
+    perturb: dict[str, np.ndarray] = field(default_factory=dict)  # name -> (S,)
+
+    def __len__(self) -> int:
+        return len(self.keys)
+
+    def subset(self, idx: np.ndarray | slice) -> Scenarios:
+        return Scenarios(self.params[idx], self.start[idx], self.keys[idx], {k: v[idx] for k, v in self.perturb.items()})
+
+
+def draw_scenarios(
+    physics: Physics,
+    n: int,
+    seed: int | np.random.SeedSequence,
+    base_params: Mapping[str, float] | None = None,
+    ranges: Mapping[str, tuple[float, float]] | None = None,
+    fixed: Mapping[str, float | np.ndarray] | None = None,
+) -> Scenarios:
+    """Draw ``n`` scenarios: uniform values in ``ranges``, start states and stream keys.
+
+    ``base_params`` are the run's physics overrides; ``ranges`` maps physics or
+    perturbation names to (low, high); ``fixed`` sets names to given values
+    (scalars or (n,) arrays). Everything is a pure function of ``seed``.
+    """
+    ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
+    values_ss, start_ss, keys_ss = ss.spawn(3)
+    rng = np.random.default_rng(values_ss)
+    params = physics.param_table.resolve_batch(base_params, n)
+    perturb: dict[str, np.ndarray] = {}
+    table = physics.param_table
+    settings: dict[str, np.ndarray] = {}
+    # draw in sorted name order so adding a name never reshuffles the others' draws
+    for name in sorted(ranges or {}):
+        lo, hi = ranges[name]
+        settings[name] = rng.uniform(lo, hi, n) if hi > lo else np.full(n, float(lo))
+    for name, value in (fixed or {}).items():
+        settings[name] = np.broadcast_to(np.asarray(value, float), (n,)).copy()
+    for name, v in settings.items():
+        if name in table:
+            params[:, table.index(name)] = v
+        else:
+            PERTURBATIONS.index(name)
+            perturb[name] = v
+    scale = perturb.get("start_scale", 1.0)
+    start = physics.sample_start(np.random.default_rng(start_ss), params, scale)
+    return Scenarios(params, start, streams.scenario_keys(keys_ss, n), perturb)
+
+
+@dataclass
+class Outcome:
+    """Per-row results of a batch of episodes (arrays of shape (G, S))."""
+
+    returns: np.ndarray
+    success: np.ndarray
+    failure: np.ndarray  # int codes into physics.failure_words
+    steps: np.ndarray
+    failure_words: tuple[str, ...]
+    trace: dict[str, np.ndarray] | None = None  # (T+1, rows, ...) when recorded
+
+    def failure_counts(self) -> dict[str, int]:
+        """Failure word -> number of episodes that ended with it."""
+        codes, counts = np.unique(self.failure[~self.success], return_counts=True)
+        return {self.failure_words[c]: int(k) for c, k in zip(codes, counts)}
+
+
+def run_episodes(
+    physics: Physics,
+    policy: BatchPolicy,
+    scenarios: Scenarios,
+    max_steps: int | None = None,
+    record: bool = False,
+) -> Outcome:
+    """Run every policy of ``policy`` on every scenario until all rows end.
+
+    Parameters
+    ----------
+    physics : Physics
+        The plant configuration (control period, integrator, time limit).
+    policy : BatchPolicy
+        G policies; ``policy.n_policies`` sets G.
+    scenarios : Scenarios
+        S scenarios shared by all policies.
+    max_steps : int, optional
+        Episode length in control periods (defaults to the env's time limit).
+    record : bool
+        Keep per-step states, observations and actions (for replay; small batches only).
+    """
+    g, s = policy.n_policies, len(scenarios)
+    rows = g * s
+    params = np.tile(scenarios.params, (g, 1))
+    keys = np.tile(scenarios.keys, g)
+    loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
+    state = np.tile(scenarios.start, (g, 1))
+    limit = physics.max_steps if max_steps is None else int(max_steps)
+    hold = np.zeros(rows)
+    steps = np.zeros(rows, dtype=np.int64)
+    returns = np.zeros(rows)
+    success = np.zeros(rows, dtype=bool)
+    failure = np.zeros(rows, dtype=np.int64)
+    active = np.ones(rows, dtype=bool)
+    policy.reset(s)
+    obs = physics.observe(state, params)
+    loop.reset(obs)
+    trace: dict[str, list[np.ndarray]] | None = {"state": [state.copy()], "obs": [], "action": []} if record else None
+    for k in range(limit):
+        measured = loop.sense(obs, k)
+        command = policy.act(measured)
+        action = loop.actuate(command, k)
+        tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k))
+        returns += np.where(active, tr.reward, 0.0)
+        ended = active & (tr.terminated | tr.truncated)
+        out_of_time = active & ~ended & (k + 1 >= limit)
+        if out_of_time.any():
+            # the run's horizon ends the episode before the env's own time limit
+            if physics.success_mode == "survive":
+                success[out_of_time] = True
+            else:
+                failure[out_of_time] = physics.timeout_code
+        success[ended] = tr.success[ended]
+        failure[ended] = tr.failure[ended]
+        # finished rows keep their last state, so later steps cannot disturb them
+        state = np.where(active[:, None], tr.state, state)
+        hold, steps = tr.hold, np.where(active, tr.steps, steps)
+        if trace is not None:
+            trace["obs"].append(measured.copy())
+            trace["action"].append(action.copy())
+            trace["state"].append(state.copy())
+        active &= ~(ended | out_of_time)
+        if not active.any():
+            break
+        obs = physics.observe(state, params)
+    failure[success] = 0
+    shape = (g, s)
+    return Outcome(
+        returns.reshape(shape),
+        success.reshape(shape),
+        failure.reshape(shape),
+        steps.reshape(shape),
+        physics.failure_words,
+        {k: np.asarray(v) for k, v in trace.items()} if trace is not None else None,
+    )
