@@ -19,7 +19,7 @@ import gymnasium as gym
 import numpy as np
 from gymnasium.envs.classic_control.cartpole import CartPoleVectorEnv
 
-import pretrial_envs
+import pretrial_envs  # noqa: F401  (registers the pretrial/ ids with gymnasium)
 
 
 def steps_per_second(env, actions, steps: int, repeats: int = 3) -> float:

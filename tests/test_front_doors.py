@@ -61,7 +61,7 @@ def test_contract_attributes(env_id, kwargs):
     assert all(env0.unwrapped.params[n] == 0.0 for n in zero)
     assert isinstance(env.action_space, gym.spaces.Box)
     assert np.all(env.action_space.low == -1) and np.all(env.action_space.high == 1)
-    obs, info = env.reset(seed=3)
+    _, info = env.reset(seed=3)
     assert np.array_equal(info["state"], u.state)
     exact = u.state + 0.01
     env.reset(seed=3, options={"state": exact})

@@ -155,7 +155,8 @@ class ParamTable(Sequence[ParamSpec]):
 
         Each override is a scalar (shared) or a sequence of length ``n``.
         """
-        p = np.tile(self.nominal, (n, 1))
+        # column-major: the physics reads whole parameter columns, which are then contiguous
+        p = np.asfortranarray(np.tile(self.nominal, (n, 1)))
         for name, value in (overrides or {}).items():
             col = self.index(name)
             arr = np.asarray(value, dtype=object)
@@ -416,7 +417,7 @@ class Physics:
                 state = self.advance_disturbance(state, params, noise)
             force = self.actuate(action, params)
             state = self.integrate(state, force, params)
-            bad = ~np.isfinite(state).all(axis=1) | (np.abs(state) > DIVERGENCE_BOUND).any(axis=1)
+            bad = ~(_max_abs_per_row(state) <= DIVERGENCE_BOUND)  # NaN compares False: diverged too
             failure = np.asarray(self.check(state, force, params), dtype=np.int64)
             failure[bad] = self.diverged_code
             ok = failure == 0
@@ -453,6 +454,18 @@ class Physics:
             "reward": self.reward_doc,
             "options": self.options(),
         }
+
+
+def _max_abs_per_row(a: Array) -> Array:
+    """``max_j |a[:, j]|`` per row, NaN propagating.
+
+    A loop over the few columns: numpy's ``axis=1`` reductions over short rows
+    cost about 130 us at N = 10,000, ten times this.
+    """
+    m = np.abs(a[:, 0])
+    for j in range(1, a.shape[1]):
+        np.maximum(m, np.abs(a[:, j]), out=m)
+    return m
 
 
 def _positive(name: str, value: Any) -> float:
@@ -680,7 +693,7 @@ class PhysicsVectorEnv(VectorEnv):
         self._hold = np.zeros(self.num_envs)
         self._steps = np.zeros(self.num_envs, dtype=np.int64)
         self._prev_done = np.zeros(self.num_envs, dtype=bool)
-        self._words = np.array(self.physics.failure_words, dtype=object)
+        self._words = np.array(self.physics.failure_words)
 
     @property
     def dt(self) -> float:
@@ -719,8 +732,8 @@ class PhysicsVectorEnv(VectorEnv):
         state, hold, steps = tr.state, tr.hold, tr.steps
         reward, terminated, truncated = tr.reward, tr.terminated, tr.truncated
         success = tr.success
-        redo = self._prev_done
-        if redo.any():
+        redo = np.flatnonzero(self._prev_done)  # integer rows: cheaper than repeated boolean masks
+        if redo.size:
             state[redo] = self.physics.sample_start(self.np_random, self._params[redo])
             hold[redo] = 0.0
             steps[redo] = 0
@@ -732,13 +745,16 @@ class PhysicsVectorEnv(VectorEnv):
         done = terminated | truncated
         self._prev_done = done
         failed = done & ~success
-        failure = np.where(failed, self._words[tr.failure], "")
+        # np.zeros of a string dtype is a lazily zeroed page: only failed rows cost a write
+        failure = np.zeros(self.num_envs, dtype=self._words.dtype)
+        if failed.any():
+            failure[failed] = self._words[tr.failure[failed]]
         info = {
             "state": state.copy(),
-            "success": success.copy(),
+            "success": success,
             "_success": done.copy(),
             "failure": failure,
-            "_failure": failed.copy(),
+            "_failure": failed,
         }
         return self.physics.observe(state, self._params), reward, terminated, truncated, info
 

@@ -149,7 +149,9 @@ class _Reader:
             self.fail(self.key(extra), f"unknown key{hint}; valid keys here: {valid}")
 
 
-_TYPE_NAMES = {int: "an integer", float: "a number", str: "a string", bool: "true/false", list: "a list", dict: "a table"}
+_TYPE_NAMES = {
+    int: "an integer", float: "a number", str: "a string", bool: "true/false", list: "a list", dict: "a table",
+}
 
 
 def _kind(value: Any) -> str:
@@ -274,11 +276,14 @@ def load_config(path: str | Path) -> Config:
             raise InputError(f"{path}: {key}: range [{lo:g}, {hi:g}] is reversed or not finite")
         if lo < spec.low or hi > spec.high:
             raise InputError(
-                f"{path}: {key}: range [{lo:g}, {hi:g}] leaves the valid range [{spec.low:g}, {spec.high:g}] {spec.unit}"
+                f"{path}: {key}: range [{lo:g}, {hi:g}] leaves the valid range "
+                f"[{spec.low:g}, {spec.high:g}] {spec.unit}"
             )
         randomize[name] = (lo, hi)
     if network == "shared" and not getattr(physics, "obs_blocks", 0):
-        raise InputError(f"{path}: task.network: 'shared' needs an env with repeated observation blocks; {env} has none")
+        raise InputError(
+            f"{path}: task.network: 'shared' needs an env with repeated observation blocks; {env} has none"
+        )
 
     sections = neat_key_sections()
     neat: dict[str, Any] = {}

@@ -26,6 +26,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 import numpy as np
+
 from pretrial_envs.core import ParamSpec, ParamTable, Physics, unknown_name_message
 
 from . import streams
@@ -40,7 +41,7 @@ PERTURBATIONS = ParamTable(
             "actuator_rate_limit", "1/s", float("inf"), 0.0, float("inf"), "slew limit, full scale per second",
             "actuator",
         ),
-        ParamSpec("sensor_noise_std", "obs unit", 0.0, 0.0, 1e6, "white noise std added to every observation", "sensor"),
+        ParamSpec("sensor_noise_std", "obs unit", 0.0, 0.0, 1e6, "white noise std added to each observation", "sensor"),
         ParamSpec("sensor_bias", "obs unit", 0.0, -1e6, 1e6, "constant offset added to every observation", "sensor"),
         ParamSpec("sensor_delay_s", "s", 0.0, 0.0, 10.0, "age of the observation the policy sees", "sensor"),
         ParamSpec("sensor_quantization", "obs unit", 0.0, 0.0, 1e6, "observation resolution (0 = exact)", "sensor"),
@@ -144,7 +145,8 @@ class Loop:
             return obs
         counter = _STREAMS * step + _SENSOR_STREAM
         out = obs + self.bias + self.noise_std * streams.normal(self.keys, counter, obs.shape[1])
-        return np.where(self.quantum > 0, np.round(out / np.where(self.quantum > 0, self.quantum, 1.0)) * self.quantum, out)
+        q = np.where(self.quantum > 0, self.quantum, 1.0)
+        return np.where(self.quantum > 0, np.round(out / q) * q, out)
 
     def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
         """Action applied to the plant at ``step`` for the policy's ``command``."""

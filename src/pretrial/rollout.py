@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from typing import Protocol
 
 import numpy as np
+
 from pretrial_envs.core import Physics
 
 from . import streams
@@ -46,7 +47,8 @@ class Scenarios:
         return len(self.keys)
 
     def subset(self, idx: np.ndarray | slice) -> Scenarios:
-        return Scenarios(self.params[idx], self.start[idx], self.keys[idx], {k: v[idx] for k, v in self.perturb.items()})
+        perturb = {k: v[idx] for k, v in self.perturb.items()}
+        return Scenarios(self.params[idx], self.start[idx], self.keys[idx], perturb)
 
 
 def draw_scenarios(
@@ -128,7 +130,7 @@ def run_episodes(
     """
     g, s = policy.n_policies, len(scenarios)
     rows = g * s
-    params = np.tile(scenarios.params, (g, 1))
+    params = np.asfortranarray(np.tile(scenarios.params, (g, 1)))  # contiguous parameter columns
     keys = np.tile(scenarios.keys, g)
     loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
     state = np.tile(scenarios.start, (g, 1))

@@ -1,0 +1,524 @@
+"""One or two poles hinged on a cart that runs on a straight track.
+
+One pole: the cart-pole of Barto, Sutton & Anderson (1983) with the corrected
+friction equations of Florian (2007). Two poles: the double-pole balancing
+benchmark (Wieland 1991) in the form used by Gomez & Miikkulainen and by
+Stanley & Miikkulainen (2002). The equations and their sign conventions are
+written out on :class:`CartPoleEnv`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .core import Array, ParamSpec, ParamTable, Physics, PhysicsEnv, PhysicsVectorEnv
+
+#: Tilt of the long pole at the start of the two-pole benchmark, rad (0.07 rad, about 4 degrees;
+#: the value used with Stanley & Miikkulainen 2002, from memory).
+TWO_POLE_START_TILT = 0.07
+
+OBSERVE_MODES = ("full", "positions")
+POLE_COUNTS = (1, 2)
+
+_FRICTION_SPEED_DOC = (
+    "velocity scale v_eps of the Coulomb smoothing sgn(v) ~ tanh(v / v_eps); for a stable explicit "
+    "integration keep (dt / substeps) * friction force / (cart_mass * v_eps) below about 2"
+)
+
+SINGLE_POLE_PARAMS = ParamTable(
+    [
+        ParamSpec("gravity", "m/s^2", 9.8, 0.0, 50.0, "gravitational acceleration"),
+        ParamSpec("cart_mass", "kg", 1.0, 0.01, 100.0, "mass of the cart"),
+        ParamSpec("pole_mass", "kg", 0.1, 1e-4, 10.0, "mass of the pole (uniform rod)"),
+        ParamSpec("pole_half_length", "m", 0.5, 0.01, 10.0, "half the pole length (pivot to centre of mass)"),
+        ParamSpec("max_force", "N", 10.0, 0.0, 1000.0, "force on the cart at action +-1", "limit"),
+        ParamSpec(
+            "cart_friction",
+            "-",
+            5e-4,
+            0.0,
+            0.2,
+            "Coulomb coefficient of the cart on the track (friction force = coefficient * normal force)",
+            "loss",
+        ),
+        ParamSpec("pole_friction", "N m s", 2e-6, 0.0, 0.01, "viscous friction coefficient of the pivot", "loss"),
+        ParamSpec("friction_speed", "m/s", 0.01, 1e-4, 1.0, _FRICTION_SPEED_DOC),
+        ParamSpec("track_half_length", "m", 2.4, 0.1, 100.0, "the episode fails when |x| exceeds this", "task"),
+        ParamSpec(
+            "fail_angle",
+            "rad",
+            math.radians(12.0),
+            0.01,
+            math.pi,
+            "the episode fails when |theta| exceeds this",
+            "task",
+        ),
+    ]
+)
+
+TWO_POLE_PARAMS = ParamTable(
+    [
+        ParamSpec("gravity", "m/s^2", 9.8, 0.0, 50.0, "gravitational acceleration"),
+        ParamSpec("cart_mass", "kg", 1.0, 0.01, 100.0, "mass of the cart"),
+        ParamSpec("pole_mass", "kg", 0.1, 1e-6, 10.0, "mass of the first (long) pole, a uniform rod"),
+        ParamSpec("pole_half_length", "m", 0.5, 0.01, 10.0, "half the length of the first pole"),
+        ParamSpec("pole2_mass", "kg", 0.01, 1e-6, 10.0, "mass of the second (short) pole, a uniform rod"),
+        ParamSpec("pole2_half_length", "m", 0.05, 0.01, 10.0, "half the length of the second pole"),
+        ParamSpec("max_force", "N", 10.0, 0.0, 1000.0, "force on the cart at action +-1", "limit"),
+        ParamSpec(
+            "cart_friction_force", "N", 5e-4, 0.0, 2.0, "Coulomb friction force of the cart on the track", "loss"
+        ),
+        ParamSpec("pole_friction", "N m s", 2e-6, 0.0, 0.01, "viscous friction coefficient of the first pivot", "loss"),
+        ParamSpec(
+            "pole2_friction", "N m s", 2e-6, 0.0, 0.01, "viscous friction coefficient of the second pivot", "loss"
+        ),
+        ParamSpec("friction_speed", "m/s", 0.01, 1e-4, 1.0, _FRICTION_SPEED_DOC),
+        ParamSpec("track_half_length", "m", 2.4, 0.1, 100.0, "the episode fails when |x| exceeds this", "task"),
+        ParamSpec(
+            "fail_angle",
+            "rad",
+            math.radians(36.0),
+            0.01,
+            math.pi,
+            "the episode fails when either |theta| exceeds this",
+            "task",
+        ),
+    ]
+)
+
+#: Reward shaping weights (see ``reward_doc``).
+ANGLE_WEIGHT = 0.5
+OFFSET_WEIGHT = 0.25
+
+_REWARD_DOC = (
+    f"each control period without failure: 1 - {ANGLE_WEIGHT} * mean_i (theta_i / fail_angle)^2 "
+    f"- {OFFSET_WEIGHT} * (x / track_half_length)^2, so between 0.25 and 1; 0 for the period that fails"
+)
+_SUCCESS_RULE = "survive: reach the time limit with every pole within fail_angle and the cart within the track"
+
+
+class CartPolePhysics(Physics):
+    """Cart-pole physics core: one pole (Florian 2007) or two poles (Wieland 1991).
+
+    Parameters
+    ----------
+    poles : {1, 2}
+        Number of poles hinged on the cart.
+    observe : {"full", "positions"}
+        ``"positions"`` leaves the velocities out of the observation.
+    **kwargs
+        ``dt``, ``substeps``, ``integrator``, ``time_limit``, ``start_spread``
+        of :class:`~pretrial_envs.core.Physics`.
+    """
+
+    env_id = "pretrial/CartPole-v0"
+    summary = "one or two poles balanced on a cart on a track (Florian 2007 friction; double-pole benchmark)"
+    param_table = SINGLE_POLE_PARAMS
+    state_names = ("x", "x_dot", "theta", "theta_dot")
+    state_units = ("m", "m/s", "rad", "rad/s")
+    obs_names = state_names
+    obs_units = state_units
+    action_names = ("force",)
+    action_units = ("N",)
+    failure_modes = ("pole_fell", "off_track")
+    success_mode = "survive"
+    success_rule = _SUCCESS_RULE
+    reward_doc = _REWARD_DOC
+    default_dt = 0.02
+    default_substeps = 2
+    default_integrator = "rk4"
+    default_time_limit = 10.0
+    default_start_spread: ClassVar[Mapping[str, float]] = {"x": 0.05, "x_dot": 0.05, "theta": 0.05, "theta_dot": 0.05}
+
+    def __init__(self, poles: int = 1, observe: str = "full", **kwargs: Any):
+        if isinstance(poles, bool) or not isinstance(poles, (int, np.integer)) or int(poles) not in POLE_COUNTS:
+            raise ValueError(f"poles: {poles!r} must be 1 or 2")
+        if observe not in OBSERVE_MODES:
+            raise ValueError(f"observe: {observe!r} not one of {', '.join(OBSERVE_MODES)}")
+        self.poles = int(poles)
+        self.observe_mode = observe
+        if self.poles == 2:
+            self.param_table = TWO_POLE_PARAMS
+            self.state_names = ("x", "x_dot", "theta1", "theta1_dot", "theta2", "theta2_dot")
+            self.state_units = ("m", "m/s", "rad", "rad/s", "rad", "rad/s")
+            # The benchmark starts every trial from the same state (Stanley & Miikkulainen 2002).
+            self.default_start_spread = {}
+            self.default_time_limit = 20.0
+        if observe == "positions":
+            self.obs_names = self.state_names[0::2]
+            self.obs_units = self.state_units[0::2]
+        else:
+            self.obs_names = self.state_names
+            self.obs_units = self.state_units
+        super().__init__(**kwargs)
+        self._col = {name: i for i, name in enumerate(self.param_table.names)}
+
+    def options(self) -> dict[str, Any]:
+        return {"poles": self.poles, "observe": self.observe_mode, **super().options()}
+
+    # ----------------------------------------------------------- dynamics
+    def derivatives(self, state: Array, force: Array, params: Array) -> Array:
+        if self.poles == 1:
+            return self._one_pole(state, force, params)[0]
+        return self._two_poles(state, force, params)
+
+    def normal_force(self, state: Array, force: Array, params: Array) -> Array:
+        """Normal force N_c of the track on the cart, N (one pole only; Florian 2007)."""
+        if self.poles != 1:
+            raise ValueError("normal_force: defined for poles=1 only (the two-pole model uses a friction force)")
+        return self._one_pole(state, force, params)[1]
+
+    def _one_pole(self, state: Array, force: Array, params: Array) -> tuple[Array, Array]:
+        # In-place arithmetic into a few buffers: at N = 10,000 every fresh temporary costs about
+        # as much as the arithmetic itself (allocation and page faults), so the peak is kept small.
+        c = self._col
+        g = params[:, c["gravity"]]
+        m = params[:, c["pole_mass"]]
+        half = params[:, c["pole_half_length"]]
+        x_dot = state[:, 1]
+        w = state[:, 3]
+        total = params[:, c["cart_mass"]] + m
+        ml = m * half
+        sin = np.sin(state[:, 2])
+        cos = np.cos(state[:, 2])
+        mlw2 = w * w
+        mlw2 *= ml
+        # mu_c * smoothed sgn(x_dot); the sign of N_c multiplies it below.
+        mu_c = params[:, c["cart_friction"]]
+        if mu_c.any():
+            slip = np.divide(x_dot, params[:, c["friction_speed"]])
+            np.tanh(slip, out=slip)
+            slip *= mu_c
+        else:  # frictionless track: skip the tanh (the largest single cost at large N)
+            slip = np.zeros_like(x_dot)
+        # g sin(theta) - mu_p theta_dot / (m l): gravity and pivot friction on the pole.
+        g_sin = g * sin
+        pivot = params[:, c["pole_friction"]] * w
+        pivot /= ml
+        g_sin -= pivot
+        del pivot
+        out = np.empty_like(state)
+        out[:, 0] = x_dot
+        out[:, 2] = w
+
+        def solve(s: Array) -> Array:
+            # s = mu_c sgn(N_c) sgn(x_dot). With s = 0 every operation reduces to gymnasium's
+            # CartPole-v1 expression in the same order, so the frictionless model matches it bit for bit.
+            temp = s * cos
+            temp += sin
+            temp *= mlw2
+            temp += force[:, 0]
+            temp /= total
+            buf = s * g
+            temp -= buf  # (F + m l w^2 (sin + s cos)) / (M + m) - s g
+            np.multiply(s, sin, out=buf)
+            np.subtract(cos, buf, out=buf)  # lever = cos - s sin
+            den = cos * buf
+            den *= m
+            den /= total
+            np.subtract(4.0 / 3.0, den, out=den)
+            den *= half
+            th_acc = cos * temp
+            np.subtract(g_sin, th_acc, out=th_acc)
+            th_acc /= den
+            np.multiply(ml, th_acc, out=den)
+            den *= buf
+            den /= total
+            np.subtract(temp, den, out=den)
+            out[:, 1] = den
+            out[:, 3] = th_acc
+            # N_c = (M + m) g - m l (theta'' sin + theta'^2 cos)
+            np.multiply(th_acc, sin, out=temp)
+            temp *= ml
+            np.multiply(mlw2, cos, out=buf)
+            temp += buf
+            np.multiply(total, g, out=buf)
+            np.subtract(buf, temp, out=temp)
+            return temp
+
+        normal = solve(slip)
+        # Florian 2007: solve assuming N_c > 0, then solve again where N_c came out negative
+        # (only friction depends on that sign).
+        negative = normal < 0.0
+        if negative.any() and slip.any():
+            normal = solve(np.where(negative, -slip, slip))
+        return out, normal
+
+    def _two_poles(self, state: Array, force: Array, params: Array) -> Array:
+        c = self._col
+        g = params[:, c["gravity"]]
+        x_dot = state[:, 1]
+        out = np.empty_like(state)
+        out[:, 0] = x_dot
+        out[:, 2] = state[:, 3]
+        out[:, 4] = state[:, 5]
+        # Cart: F - mu_c sgn(x_dot) + sum_i F~_i over M + sum_i m~_i (Wieland 1991).
+        num = np.divide(x_dot, params[:, c["friction_speed"]])
+        np.tanh(num, out=num)
+        num *= params[:, c["cart_friction_force"]]
+        np.subtract(force[:, 0], num, out=num)
+        den = params[:, c["cart_mass"]].copy()
+        poles = []
+        for col, m_name, l_name, mu_name in (
+            (2, "pole_mass", "pole_half_length", "pole_friction"),
+            (4, "pole2_mass", "pole2_half_length", "pole2_friction"),
+        ):
+            m = params[:, c[m_name]]
+            half = params[:, c[l_name]]
+            w = state[:, col + 1]
+            sin = np.sin(state[:, col])
+            cos = np.cos(state[:, col])
+            # Pivot friction as an acceleration of the pole's centre, mu_p theta' / (m l).
+            piv = params[:, c[mu_name]] * w
+            piv /= m
+            piv /= half
+            g_sin = g * sin
+            # Effective force m (l w^2 sin + 3/4 cos (piv - g sin)) and mass m (1 - 3/4 cos^2).
+            t = np.subtract(piv, g_sin)
+            t *= cos
+            t *= 0.75
+            eff = w * w
+            eff *= half
+            eff *= sin
+            eff += t
+            eff *= m
+            num += eff
+            np.multiply(cos, cos, out=t)
+            t *= -0.75
+            t += 1.0
+            t *= m
+            den += t
+            poles.append((col, half, cos, piv, g_sin))
+        num /= den  # x_acc
+        out[:, 1] = num
+        for col, half, cos, piv, g_sin in poles:
+            # theta'' = 3 / (4 l) (g sin - x'' cos - mu_p theta' / (m l))
+            cos *= num
+            np.subtract(g_sin, cos, out=g_sin)
+            g_sin -= piv
+            g_sin *= 0.75
+            g_sin /= half
+            out[:, col + 1] = g_sin
+        return out
+
+    # ----------------------------------------------------------- task
+    def actuate(self, action: Array, params: Array) -> Array:
+        return action * params[:, self._col["max_force"], None]
+
+    def check(self, state: Array, force: Array, params: Array) -> Array:
+        # Column by column: axis=1 reductions over two or three columns are slow at large N.
+        fail = params[:, self._col["fail_angle"]]
+        fell = np.abs(state[:, 2]) > fail
+        if self.poles == 2:
+            fell |= np.abs(state[:, 4]) > fail
+        off = np.abs(state[:, 0]) > params[:, self._col["track_half_length"]]
+        return np.where(fell, 1, np.where(off, 2, 0))
+
+    def reward(self, state: Array, action: Array, params: Array, failure: Array, success: Array) -> Array:
+        fail = params[:, self._col["fail_angle"]]
+        tilt = state[:, 2] / fail
+        tilt *= tilt
+        if self.poles == 2:
+            tilt2 = state[:, 4] / fail
+            tilt2 *= tilt2
+            tilt += tilt2
+            tilt *= 0.5
+        offset = state[:, 0] / params[:, self._col["track_half_length"]]
+        offset *= offset
+        tilt *= -ANGLE_WEIGHT
+        tilt += 1.0
+        offset *= OFFSET_WEIGHT
+        tilt -= offset
+        tilt[failure != 0] = 0.0
+        return tilt
+
+    def observe(self, state: Array, params: Array) -> Array:
+        if self.observe_mode == "positions":
+            return state[:, 0::2].copy()
+        return state.copy()
+
+    def start_center(self, params: Array) -> Array:
+        center = np.zeros((params.shape[0], self.state_dim))
+        if self.poles == 2:
+            center[:, 2] = TWO_POLE_START_TILT
+        return center
+
+    # ----------------------------------------------------------- drawing
+    def draw(self, ax: Any, state: Array, params: Array) -> None:
+        from matplotlib.patches import Rectangle
+
+        c = self._col
+        track = float(params[c["track_half_length"]])
+        fail = float(params[c["fail_angle"]])
+        lengths = [2.0 * float(params[c["pole_half_length"]])]
+        if self.poles == 2:
+            lengths.append(2.0 * float(params[c["pole2_half_length"]]))
+        reach = max(lengths)
+        cart_w = 0.15 * track + 0.05
+        cart_h = 0.5 * cart_w
+        x = float(state[0])
+        ax.plot([-track, track], [-0.5 * cart_h, -0.5 * cart_h], color="0.35", lw=2, zorder=1)
+        for end in (-track, track):
+            ax.plot([end, end], [-cart_h, 0.2 * cart_h], color="0.35", lw=3, zorder=1)
+        ax.add_patch(
+            Rectangle((x - 0.5 * cart_w, -0.5 * cart_h), cart_w, cart_h, facecolor="0.6", edgecolor="0.2", zorder=2)
+        )
+        for side in (-1.0, 1.0):
+            ang = side * fail
+            ax.plot([x, x + reach * math.sin(ang)], [0.0, reach * math.cos(ang)], color="tab:red", lw=0.6, ls=":")
+        for k, (length, color) in enumerate(zip(lengths, ("tab:blue", "tab:orange"), strict=False)):
+            th = float(state[2 + 2 * k])
+            tip = (x + length * math.sin(th), length * math.cos(th))
+            ax.plot([x, tip[0]], [0.0, tip[1]], color=color, lw=4 if k == 0 else 3, solid_capstyle="round", zorder=3)
+        ax.plot([x], [0.0], marker="o", color="k", ms=4, zorder=4)
+        ax.set_aspect("equal")
+        ax.set_xlim(-track - reach - cart_w, track + reach + cart_w)
+        ax.set_ylim(-reach - cart_h, reach + cart_h)
+        ax.set_xlabel("x [m]")
+        ax.set_yticks([])
+
+
+class CartPoleEnv(PhysicsEnv):
+    r"""One or two poles balanced on a cart that moves along a straight track.
+
+    Description
+    -----------
+    A cart of mass ``cart_mass`` runs on a horizontal track centred at x = 0.
+    One pole (``poles=1``) or two poles of different lengths side by side
+    (``poles=2``) are hinged on the cart and must be kept upright by pushing the
+    cart left and right. Poles are uniform rods (moment of inertia about the
+    centre m (2 l)^2 / 12, where l is the half-length). Unlike gymnasium's
+    ``CartPole-v1`` the force is continuous, the track and the pivots have
+    friction, and the equations are integrated with RK4 by default.
+
+    Sign convention (gymnasium's): theta = 0 is upright, positive theta leans
+    the pole toward +x, a positive force pushes the cart toward +x.
+
+    Action space
+    ------------
+    ``Box(-1, 1, (1,))``: force on the cart = action * ``max_force`` (N),
+    held over one control period ``dt``.
+
+    Observation space
+    -----------------
+    ``observe="full"`` (default): the state. One pole
+    ``[x, x_dot, theta, theta_dot]`` (m, m/s, rad, rad/s); two poles
+    ``[x, x_dot, theta1, theta1_dot, theta2, theta2_dot]``.
+    ``observe="positions"``: the partially observed variant without velocities,
+    ``[x, theta]`` or ``[x, theta1, theta2]``; a controller must estimate the
+    velocities itself (recurrent network).
+
+    Rewards
+    -------
+    Shaped so that evolution sees a gradient before it can balance: each
+    control period without failure earns
+    ``1 - 0.5 * mean_i (theta_i / fail_angle)^2 - 0.25 * (x / track_half_length)^2``
+    (between 0.25 and 1); the period that fails earns 0.
+
+    Starting state
+    --------------
+    One pole: every state variable uniform in (-0.05, 0.05), as gymnasium's
+    CartPole-v1. Two poles: the benchmark's fixed start, the long pole tilted
+    0.07 rad (about 4 degrees; value from memory), everything else zero.
+    ``start_spread={...}`` changes the half-widths per state name.
+
+    Episode end
+    -----------
+    Failure words: ``pole_fell`` (|theta| > ``fail_angle`` for any pole),
+    ``off_track`` (|x| > ``track_half_length``), ``diverged`` (the numbers blew
+    up). Success (survive): the time limit is reached with no failure, which
+    truncates the episode. Defaults: 10 s (500 steps, as CartPole-v1) for one
+    pole, 20 s for two poles; the two-pole benchmark's 100,000 steps is
+    ``time_limit=2000``.
+
+    Arguments
+    ---------
+    ``gymnasium.make("pretrial/CartPole-v0", ...)`` accepts
+
+    ============== ========================================================
+    poles          1 (default) or 2
+    observe        ``"full"`` (default) or ``"positions"``
+    dt             control period, s (default 0.02)
+    substeps       integration steps per control period (default 2)
+    integrator     ``"rk4"`` (default) or ``"euler"``
+    time_limit     episode length, s
+    start_spread   ``{state name: half-width}`` of the uniform start
+    params         ``{name: value}`` overrides of the parameter table
+    ============== ========================================================
+
+    One-pole parameters (nominal): gravity 9.8 m/s^2, cart_mass 1.0 kg,
+    pole_mass 0.1 kg, pole_half_length 0.5 m, max_force 10 N (gymnasium's
+    CartPole-v1 constants); cart_friction 5e-4 (Coulomb coefficient) and
+    pole_friction 2e-6 N m s, the friction values of Barto, Sutton & Anderson
+    (1983) (from memory), small enough to leave the task unchanged but not
+    zero, because no real track is frictionless; pass
+    ``params={"cart_friction": 0, "pole_friction": 0}`` for the ideal plant.
+    Two-pole parameters follow the benchmark setting of Stanley & Miikkulainen
+    (2002): cart 1 kg; poles 0.1 kg / half-length 0.5 m and 0.01 kg /
+    half-length 0.05 m; 10 N; track +-2.4 m; fail angle 36 degrees; cart
+    friction force 5e-4 N; pivot friction 2e-6 N m s; RK4 at 0.01 s with a
+    decision every 0.02 s (dt=0.02, substeps=2).
+
+    Equations
+    ---------
+    One pole, Florian (2007), "Correct equations for the dynamics of the
+    cart-pole system", with cart mass M, pole mass m, half-length l, Coulomb
+    coefficient mu_c, pivot friction mu_p, force F:
+
+    .. math::
+
+        N_c &= (M + m) g - m l (\ddot\theta \sin\theta + \dot\theta^2 \cos\theta) \\
+        \ddot x &= \frac{F + m l (\dot\theta^2 \sin\theta - \ddot\theta \cos\theta)
+                   - \mu_c N_c \,\mathrm{sgn}(N_c \dot x)}{M + m} \\
+        \tfrac{4}{3} l \ddot\theta &= g \sin\theta - \ddot x \cos\theta - \frac{\mu_p \dot\theta}{m l}
+
+    Eliminating N_c and x'' with s = mu_c sgn(N_c) sgn(x_dot) gives
+
+    .. math::
+
+        \ddot\theta = \frac{g \sin\theta - \cos\theta \left(\frac{F + m l \dot\theta^2
+            (\sin\theta + s \cos\theta)}{M + m} - s g\right) - \frac{\mu_p \dot\theta}{m l}}
+            {l \left(\frac43 - \frac{m \cos\theta (\cos\theta - s \sin\theta)}{M + m}\right)}
+
+    solved first assuming N_c > 0 and again, per instance, where N_c comes out
+    negative (Florian's procedure); with s = 0 it reduces to gymnasium's
+    CartPole-v1. The tests check the result against the three balances above.
+
+    Two poles (i = 1, 2), Wieland (1991) as used by Gomez & Miikkulainen and
+    Stanley & Miikkulainen (2002), with a cart friction force mu_c in N:
+
+    .. math::
+
+        \tilde F_i &= m_i l_i \dot\theta_i^2 \sin\theta_i
+                     + \tfrac34 m_i \cos\theta_i \left(\frac{\mu_{pi}\dot\theta_i}{m_i l_i} - g \sin\theta_i\right) \\
+        \tilde m_i &= m_i (1 - \tfrac34 \cos^2\theta_i) \\
+        \ddot x &= \frac{F - \mu_c \mathrm{sgn}(\dot x) + \sum_i \tilde F_i}{M + \sum_i \tilde m_i} \\
+        \ddot\theta_i &= \frac{3}{4 l_i}\left(g \sin\theta_i - \ddot x \cos\theta_i
+                         - \frac{\mu_{pi}\dot\theta_i}{m_i l_i}\right)
+
+    Coulomb friction near zero speed: ``sgn(x_dot)`` is replaced by
+    ``tanh(x_dot / v_eps)`` with ``v_eps = friction_speed`` (0.01 m/s). The
+    smoothed force still opposes the motion everywhere, so friction never adds
+    energy; the price is a slow creep under a force below the breakaway force
+    (steady speed ``v_eps * atanh(F / F_breakaway)``). Large friction with a
+    small ``friction_speed`` makes the equations stiff: keep
+    ``(dt / substeps) * F_c / (cart_mass * friction_speed)`` below about 2, where
+    F_c is the friction force (about ``cart_friction * (M + m) g`` for one pole,
+    ``cart_friction_force`` for two); the parameter ranges (``cart_friction`` up
+    to 0.2, ``cart_friction_force`` up to 2 N) respect this at the default
+    RK4 step of 0.01 s with the nominal masses.
+
+    Pivot friction is viscous (torque ``-mu_p theta_dot``), as in Florian 2007.
+    """
+
+    physics_type = CartPolePhysics
+
+
+class CartPoleVectorEnv(PhysicsVectorEnv):
+    """N cart-poles stepped together, each with its own parameters (see :class:`CartPoleEnv`)."""
+
+    physics_type = CartPolePhysics
