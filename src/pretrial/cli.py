@@ -121,16 +121,116 @@ def _run_envs(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------- #
+# pretrial evolve
+# --------------------------------------------------------------------------- #
+def _workers_arg(text: str) -> int | str:
+    if text == "auto":
+        return text
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1")
+    return n
+
+
+def _positive_int(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number") from None
+    if n < 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be >= 0")
+    return n
+
+
+def _configure_evolve(p: argparse.ArgumentParser) -> None:
+    p.add_argument("config", help="run config (TOML), e.g. configs/cartpole.toml")
+    p.add_argument("--out", metavar="DIR", help="run directory (default runs/<config>-<UTC time>/)")
+    p.add_argument("--seed", type=_positive_int, help="override [run].seed")
+    p.add_argument("--generations", type=_positive_int, help="override [run].generations")
+    p.add_argument("--workers", type=_workers_arg, help="worker processes: N or auto (default: the config's, auto)")
+    p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")
+    p.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint")
+    p.add_argument("--quiet", action="store_true", help="no per-generation lines")
+    p.add_argument("--json", action="store_true", help="print a final JSON summary instead of text")
+
+
+def _run_evolve(args: argparse.Namespace) -> int:
+    import dataclasses
+    import time
+    from pathlib import Path
+
+    from .config import load_config
+    from .evolution import Evolution
+    from .execution import make_executor
+
+    cfg = load_config(args.config)
+    run = cfg.run
+    if args.seed is not None:
+        run = dataclasses.replace(run, seed=args.seed)
+    if args.generations is not None:
+        if args.generations < 1:
+            raise InputError(f"--generations {args.generations}: must be >= 1")
+        run = dataclasses.replace(run, generations=args.generations)
+    if args.workers is not None:
+        run = dataclasses.replace(run, workers=args.workers)
+    if args.dask is not None:
+        run = dataclasses.replace(run, dask=args.dask)
+    cfg = dataclasses.replace(cfg, run=run)
+    if args.resume:
+        run_dir = Path(args.resume)
+    elif args.out:
+        run_dir = Path(args.out)
+    else:
+        run_dir = Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
+    quiet = args.quiet or args.json
+    log = (lambda _line: None) if quiet else (lambda line: print(line, flush=True))
+    with make_executor(run.workers, run.dask) as executor:
+        evo = Evolution(cfg, run_dir, executor, log, command_line=["pretrial", *sys.argv[1:]])
+        if args.resume:
+            evo.resume()
+        else:
+            evo.create()
+            if not quiet:
+                ex = executor.describe()
+                print(f"evolving {cfg.task.env} from {cfg.path} (seed {run.seed}, {run.generations} generations, "
+                      f"{ex['executor']} x{ex['workers']}) -> {run_dir}", flush=True)
+        summary = evo.run(run.generations)
+    if args.json:
+        emit_json(summary)
+        return 0
+    print(f"\nrun directory: {run_dir}")
+    print(f"champion: {summary['champion']}  (validation success {summary['validation_success_rate']:.1%} "
+          f"over {cfg.run.validation_episodes} fresh episodes, {summary['evaluations']} evaluations, "
+          f"{summary['seconds']:.1f} s)")
+    names = {c[0] for c in COMMANDS}
+    nxt = []
+    if "replay" in names:
+        nxt.append(f"pretrial replay {run_dir} --gif {run_dir}/replay.gif")
+    if "sweep" in names:
+        nxt.append(f"pretrial sweep {run_dir} --plan configs/sweeps/<plan>.toml --baseline lqr")
+    if nxt:
+        print("next:")
+        for line in nxt:
+            print(f"  {line}")
+    return 0
+
+
+# --------------------------------------------------------------------------- #
 # entry point
 # --------------------------------------------------------------------------- #
 Command = tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]]
 
 COMMANDS: list[Command] = [
     ("envs", _configure_envs, _run_envs),
+    ("evolve", _configure_evolve, _run_evolve),
 ]
 
 HELP = {
     "envs": "list the environments, or show one's parameters, spaces and success rule",
+    "evolve": "evolve a controller with NEAT from a run config",
 }
 
 

@@ -73,7 +73,11 @@ class Config:
         return Path(self.path).stem
 
     def content_hash(self) -> str:
-        return hashlib.sha256(dump_toml(self.to_dict()).encode()).hexdigest()
+        """SHA-256 of what decides the results (where the work runs is left out)."""
+        data = self.to_dict()
+        for key in ("workers", "dask"):
+            data["run"].pop(key, None)
+        return hashlib.sha256(dump_toml(data).encode()).hexdigest()
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain TOML-able data (what config.resolved.toml holds)."""

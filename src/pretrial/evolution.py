@@ -1,0 +1,450 @@
+"""Evolution runs: neat-python drives the search, pretrial evaluates in batches.
+
+The generation loop is neat-python's own (``DefaultReproduction``,
+``DefaultSpeciesSet``, ``DefaultStagnation``), driven here rather than through
+``Population.run`` so that every generation can be checkpointed, reported and
+reseeded. A run is a pure function of (config, seed):
+
+* scenarios of generation ``k`` come from ``SeedSequence(seed, spawn_key=(1, k))``
+  and every genome sees the same ones (common random numbers);
+* Python's global ``random`` (which neat-python uses) is reseeded from
+  ``SeedSequence(seed, spawn_key=(2, k))`` right before reproduction, so nothing
+  an evaluation backend does to it can leak into the search;
+* genomes are cut into fixed chunks of :data:`CHUNK` whatever the worker count.
+
+The champion is picked by re-testing the best few genomes ever seen on fresh
+scenarios the run never trained on (``spawn_key=(3,)``).
+"""
+
+from __future__ import annotations
+
+import copy
+import csv
+import io
+import json
+import platform
+import random
+import sys
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import __version__, checkpoint
+from .config import Config, build_neat_ini, dump_toml
+from .errors import InputError
+from .execution import Executor
+from .files import atomic_write_text, check_writable_dir, write_json
+from .network import NetworkSpec, PopulationNetwork, spec_from_genome
+from .policy import IOMap, PopulationPolicy, policy_to_dict, save_policy
+from .rollout import Scenarios, draw_scenarios, run_episodes
+
+#: genomes per work item: fixed, so results never depend on the number of workers
+CHUNK = 32
+
+HISTORY_FIELDS = ("generation", "evaluations", "best", "mean", "stdev", "species", "best_nodes", "best_connections")
+
+_SCENARIO_STREAM, _NEAT_STREAM, _VALIDATION_STREAM = 1, 2, 3
+
+
+# --------------------------------------------------------------------------- #
+# the task as workers see it
+# --------------------------------------------------------------------------- #
+@dataclass(frozen=True)
+class Task:
+    """Everything a worker needs to evaluate networks (picklable, small)."""
+
+    env_id: str
+    options: dict[str, Any]
+    params: dict[str, float]
+    max_steps: int
+    io: IOMap
+    randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
+
+    def physics(self):
+        key = (self.env_id, json.dumps(self.options, sort_keys=True))
+        phys = _PHYSICS_CACHE.get(key)
+        if phys is None:
+            import pretrial_envs
+
+            phys = _PHYSICS_CACHE[key] = pretrial_envs.make_physics(self.env_id, **self.options)
+        return phys
+
+
+_PHYSICS_CACHE: dict[tuple[str, str], Any] = {}
+
+
+def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray]:
+    """Mean return and success rate per network over the scenarios (runs in a worker)."""
+    task, specs, scenarios = item
+    policy = PopulationPolicy(PopulationNetwork(specs), task.io)
+    out = run_episodes(task.physics(), policy, scenarios, task.max_steps)
+    return out.returns.mean(axis=1), out.success.mean(axis=1)
+
+
+def make_task(cfg: Config) -> Task:
+    """Derive the network's inputs, outputs and scaling from the env."""
+    import pretrial_envs
+
+    physics = pretrial_envs.make_physics(cfg.task.env, **cfg.task.env_options)
+    blocks = physics.obs_blocks if cfg.task.network == "shared" else 1
+    n_in, n_out = physics.obs_dim // blocks, physics.action_dim // blocks
+    scale = physics.obs_scale
+    obs_scale = [1.0 / s for s in scale] if scale else None
+    act = str(cfg.neat.get("activation_default", "tanh"))
+    # sigmoid outputs live in [0, 1]; map them onto the actuator range [-1, 1]
+    a_scale, a_offset = ((2.0, -1.0) if act == "sigmoid" else (1.0, 0.0))
+    io_map = IOMap(
+        n_in, n_out, blocks, obs_scale=obs_scale,
+        action_scale=[a_scale] * physics.action_dim, action_offset=[a_offset] * physics.action_dim,
+    )
+    steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
+    opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
+    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize))
+
+
+# --------------------------------------------------------------------------- #
+# the run
+# --------------------------------------------------------------------------- #
+def _seed_int(seed: int, *key: int) -> int:
+    return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
+
+
+def _scenarios(task: Task, n: int, seed: int, *key: int) -> Scenarios:
+    ss = np.random.SeedSequence(seed, spawn_key=key)
+    return draw_scenarios(task.physics(), n, ss, task.params, task.randomize)
+
+
+def _neat_config(path: Path):
+    import neat
+
+    return neat.Config(neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet,
+                       neat.DefaultStagnation, str(path))
+
+
+def _size(genome: Any, neat_config: Any) -> tuple[int, int]:
+    spec_nodes = len(genome.nodes)
+    conns = sum(1 for c in genome.connections.values() if c.enabled)
+    return spec_nodes, conns
+
+
+@dataclass
+class RunState:
+    """What a checkpoint holds: enough to continue exactly where the run was."""
+
+    generation: int
+    population: dict
+    species: Any
+    reproduction: Any
+    node_indexer_next: int | None
+    history: list[dict[str, Any]]
+    species_sizes: list[dict[int, int]]
+    hall: list[Any]  # best genomes ever seen (deep copies), best first
+    evaluations: int
+    finished: bool = False
+
+
+class Evolution:
+    """One evolution run in its run directory.
+
+    Parameters
+    ----------
+    cfg : Config
+        The validated run config (CLI overrides already applied).
+    run_dir : Path
+        The run directory (created; must not hold another run unless resuming).
+    executor : Executor
+        Where batches are evaluated.
+    log : callable
+        Receives one line per generation and the closing lines.
+    """
+
+    def __init__(self, cfg: Config, run_dir: Path, executor: Executor, log: Callable[[str], None] = print,
+                 command_line: Sequence[str] = ()):
+        self.cfg = cfg
+        self.run_dir = run_dir
+        self.executor = executor
+        self.log = log
+        self.command_line = list(command_line)
+        self.task = make_task(cfg)
+        self.ini_path = run_dir / "neat.ini"
+        self.manifest_path = run_dir / "manifest.json"
+        self.manifest: dict[str, Any] = {}
+        self.neat_config: Any = None
+        self.state: RunState | None = None
+        self.timing: list[float] = []
+
+    # ------------------------------------------------------------ set-up
+    def create(self) -> None:
+        """Lay out a new run directory and the initial population."""
+        check_writable_dir(self.run_dir)
+        if self.run_dir.exists() and any(self.run_dir.iterdir()):
+            raise InputError(f"{self.run_dir}: already holds files; pick another --out or --resume it")
+        self.run_dir.mkdir(parents=True, exist_ok=True)
+        (self.run_dir / "checkpoints").mkdir(exist_ok=True)
+        (self.run_dir / "plots").mkdir(exist_ok=True)
+        atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
+        atomic_write_text(self.ini_path, build_neat_ini(self.cfg, self.task.io.num_inputs, self.task.io.num_outputs))
+        self.neat_config = _neat_config(self.ini_path)
+        self.manifest = {
+            "pretrial": __version__,
+            "versions": _versions(),
+            "seed": self.cfg.run.seed,
+            "config": self.cfg.path,
+            "config_sha256": self.cfg.content_hash(),
+            "command": self.command_line,
+            "host": platform.node(),
+            "execution": self.executor.describe(),
+            "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "checkpoints": {},
+        }
+        write_json(self.manifest_path, self.manifest)
+        cfg = self.neat_config
+        random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, 0))
+        from neat.reporting import ReporterSet
+
+        reporters = ReporterSet()
+        stagnation = cfg.stagnation_type(cfg.stagnation_config, reporters)
+        reproduction = cfg.reproduction_type(cfg.reproduction_config, reporters, stagnation)
+        population = reproduction.create_new(cfg.genome_type, cfg.genome_config, cfg.pop_size)
+        species = cfg.species_set_type(cfg.species_set_config, reporters)
+        species.speciate(cfg, population, 0)
+        self.state = RunState(0, population, species, reproduction, None, [], [], [], 0)
+
+    def resume(self) -> None:
+        """Continue from the newest checkpoint recorded in the manifest."""
+        if not self.manifest_path.is_file():
+            raise InputError(f"{self.run_dir}: not a run directory (no manifest.json)")
+        try:
+            self.manifest = json.loads(self.manifest_path.read_text())
+        except (OSError, ValueError) as exc:
+            raise InputError(f"{self.manifest_path}: unreadable ({exc})") from None
+        recorded = self.manifest.get("checkpoints") or {}
+        if not recorded:
+            raise InputError(f"{self.run_dir}: no checkpoint yet; start the run again")
+        name = max(recorded, key=lambda n: int(n.split("-")[-1].split(".")[0]))
+        self.neat_config = _neat_config(self.ini_path)
+        st = checkpoint.load(self.run_dir / "checkpoints" / name, recorded[name])
+        self.state = RunState(**st)
+        from neat.reporting import ReporterSet
+
+        reporters = ReporterSet()
+        self.state.species.reporters = reporters
+        self.state.reproduction.reporters = reporters
+        self.state.reproduction.stagnation.reporters = reporters
+        gc = self.neat_config.genome_config
+        gc.innovation_tracker = self.state.reproduction.innovation_tracker
+        if self.state.node_indexer_next is not None:
+            import itertools
+
+            gc.node_indexer = itertools.count(self.state.node_indexer_next)
+        self._rewrite_history()
+        self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
+
+    # ------------------------------------------------------------ generations
+    def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios) -> tuple[np.ndarray, np.ndarray]:
+        specs = [spec_from_genome(g, self.neat_config) for g in genomes]
+        items = [(self.task, specs[i : i + CHUNK], scenarios) for i in range(0, len(specs), CHUNK)]
+        parts = self.executor.map(evaluate_chunk, items)
+        return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+
+    def run(self, generations: int) -> dict[str, Any]:
+        """Evolve until ``generations`` have been evaluated or the fitness target is reached."""
+        st = self.state
+        assert st is not None
+        cfg = self.neat_config
+        target = self.cfg.run.fitness_target
+        every = self.cfg.run.checkpoint_every
+        reached = st.finished
+        try:
+            while st.generation < generations and not reached:
+                t0 = time.perf_counter()
+                k = st.generation
+                genomes = [st.population[key] for key in sorted(st.population)]
+                scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k)
+                fitness, _ = self.evaluate(genomes, scen)
+                for g, f in zip(genomes, fitness):
+                    g.fitness = float(f)
+                st.evaluations += len(genomes) * self.cfg.task.episodes
+                best = max(genomes, key=lambda g: g.fitness)
+                nodes, conns = _size(best, cfg)
+                row = {
+                    "generation": k,
+                    "evaluations": st.evaluations,
+                    "best": float(best.fitness),
+                    "mean": float(np.mean(fitness)),
+                    "stdev": float(np.std(fitness)),
+                    "species": len(st.species.species),
+                    "best_nodes": nodes,
+                    "best_connections": conns,
+                }
+                st.history.append(row)
+                st.species_sizes.append({int(sid): len(s.members) for sid, s in st.species.species.items()})
+                self._update_hall(genomes)
+                reached = target is not None and best.fitness >= target
+                if not reached:  # also after the last one, so a resume with more generations continues
+                    random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, k + 1))
+                    st.population = st.reproduction.reproduce(cfg, st.species, cfg.pop_size, k)
+                    if not st.species.species:
+                        st.population = st.reproduction.create_new(cfg.genome_type, cfg.genome_config, cfg.pop_size)
+                    st.species.speciate(cfg, st.population, k + 1)
+                st.generation = k + 1
+                st.finished = reached
+                self._write_csv(self.run_dir / "history.csv", HISTORY_FIELDS, st.history)
+                elapsed = time.perf_counter() - t0
+                self.timing.append(elapsed)
+                self._append_timing(k, elapsed)
+                if st.generation % every == 0 or reached or st.generation >= generations:
+                    self.save_checkpoint()
+                self._report(row, generations, reached, target)
+        except KeyboardInterrupt:
+            # The state is consistent at generation boundaries only; the last checkpoint stands.
+            self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
+            raise
+        return self.finish(reached)
+
+    def _update_hall(self, genomes: Sequence[Any]) -> None:
+        st = self.state
+        n = self.cfg.run.finalists
+        pool = {g.key: g for g in st.hall}
+        for g in sorted(genomes, key=lambda g: (-g.fitness, g.key))[:n]:
+            if g.key not in pool or pool[g.key].fitness < g.fitness:
+                pool[g.key] = copy.deepcopy(g)
+        st.hall = sorted(pool.values(), key=lambda g: (-g.fitness, g.key))[:n]
+
+    def _report(self, row: dict[str, Any], generations: int, reached: bool, target: float | None) -> None:
+        done = row["generation"] + 1
+        mean_t = float(np.mean(self.timing[-5:]))
+        eta = "" if reached else f"  eta {_clock(mean_t * max(0, generations - done))}"
+        self.log(
+            f"gen {row['generation']:4d}  best {row['best']:10.4g}  mean {row['mean']:10.4g}  "
+            f"species {row['species']:3d}  size {row['best_nodes']}n/{row['best_connections']}c  "
+            f"evals {row['evaluations']:8d}  {self.timing[-1]:6.2f} s/gen{eta}"
+        )
+        if reached:
+            self.log(f"fitness target {target:g} reached at generation {row['generation']}")
+
+    # ------------------------------------------------------------ files
+    def save_checkpoint(self) -> None:
+        st = self.state
+        gc = self.neat_config.genome_config
+        nxt = None
+        if gc.node_indexer is not None:
+            nxt = int(repr(gc.node_indexer)[len("count(") : -1])
+        st.node_indexer_next = nxt
+        name = f"generation-{st.generation}.pkl"
+        state = dict(st.__dict__)
+        digest = checkpoint.save(self.run_dir / "checkpoints" / name, state)
+        self.manifest.setdefault("checkpoints", {})[name] = digest
+        write_json(self.manifest_path, self.manifest)
+
+    def _append_timing(self, k: int, seconds: float) -> None:
+        path = self.run_dir / "timing.csv"
+        rows = []
+        if path.exists():
+            with open(path, newline="") as f:
+                rows = [r for r in csv.DictReader(f) if int(r["generation"]) < k]
+        rows.append({"generation": k, "seconds": f"{seconds:.4f}"})
+        self._write_csv(path, ("generation", "seconds"), rows)
+
+    def _rewrite_history(self) -> None:
+        self._write_csv(self.run_dir / "history.csv", HISTORY_FIELDS, self.state.history)
+
+    @staticmethod
+    def _write_csv(path: Path, fields: Sequence[str], rows: Sequence[dict[str, Any]]) -> None:
+        buf = io.StringIO()
+        w = csv.DictWriter(buf, fieldnames=list(fields), lineterminator="\n")
+        w.writeheader()
+        for r in rows:
+            w.writerow({k: (repr(v) if isinstance(v, float) else v) for k, v in r.items()})
+        atomic_write_text(path, buf.getvalue())
+
+    # ------------------------------------------------------------ champion
+    def finish(self, reached: bool) -> dict[str, Any]:
+        """Re-test the finalists on fresh scenarios, write champion.json and the plots."""
+        st = self.state
+        scen = _scenarios(self.task, self.cfg.run.validation_episodes, self.cfg.run.seed, _VALIDATION_STREAM)
+        returns, success = self.evaluate(st.hall, scen)
+        order = sorted(range(len(st.hall)), key=lambda i: (-success[i], -returns[i], st.hall[i].key))
+        i = order[0]
+        champ = st.hall[i]
+        finalists = [
+            {"genome": int(st.hall[j].key), "training_fitness": float(st.hall[j].fitness),
+             "validation_return": float(returns[j]), "validation_success_rate": float(success[j])}
+            for j in order
+        ]
+        training = {
+            "seed": self.cfg.run.seed,
+            "generations": st.generation,
+            "evaluations": st.evaluations,
+            "episodes_per_genome": self.cfg.task.episodes,
+            "horizon_steps": self.task.max_steps,
+            "randomize": {k: list(v) for k, v in self.task.randomize.items()},
+            "fitness_target": self.cfg.run.fitness_target,
+            "target_reached": bool(reached),
+            "config_sha256": self.cfg.content_hash(),
+            "validation_episodes": self.cfg.run.validation_episodes,
+            "finalists": finalists,
+        }
+        physics = self.task.physics()
+        params = dict(zip(physics.param_table.names, physics.param_table.resolve(self.task.params).tolist()))
+        doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
+                             env_params=params, io=self.task.io, training=training)
+        save_policy(self.run_dir / "champion.json", doc)
+        self._plots(doc, physics)
+        summary = {
+            "run_dir": str(self.run_dir),
+            "champion": str(self.run_dir / "champion.json"),
+            "generations": st.generation,
+            "evaluations": st.evaluations,
+            "target_reached": bool(reached),
+            "best_training_fitness": float(champ.fitness),
+            "validation_success_rate": float(success[i]),
+            "validation_return": float(returns[i]),
+            "seconds": float(sum(self.timing)),
+        }
+        self.manifest["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+        self.manifest["seconds_this_session"] = float(sum(self.timing))
+        write_json(self.manifest_path, self.manifest)
+        return summary
+
+    def _plots(self, doc: dict[str, Any], physics: Any) -> None:
+        from .plots import plot_fitness, plot_network, plot_species
+
+        plots = self.run_dir / "plots"
+        plots.mkdir(exist_ok=True)
+        st = self.state
+        plot_fitness(st.history, plots / "fitness.png", self.cfg.run.fitness_target)
+        plot_species(st.species_sizes, plots / "species.png")
+        blocks = self.task.io.blocks
+        names_in = list(physics.obs_names[: physics.obs_dim // blocks])
+        names_out = list(physics.action_names[: physics.action_dim // blocks])
+        plot_network(doc["network"], plots / "network.png", names_in, names_out)
+
+
+def _clock(seconds: float) -> str:
+    seconds = int(round(seconds))
+    h, rem = divmod(seconds, 3600)
+    m, s = divmod(rem, 60)
+    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
+
+
+def _versions() -> dict[str, str]:
+    import gymnasium
+    import matplotlib
+    import neat
+    import scipy
+
+    return {
+        "python": sys.version.split()[0],
+        "numpy": np.__version__,
+        "scipy": scipy.__version__,
+        "gymnasium": gymnasium.__version__,
+        "neat-python": getattr(neat, "__version__", "2.x"),
+        "matplotlib": matplotlib.__version__,
+    }
+
+
