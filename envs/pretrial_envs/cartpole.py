@@ -101,6 +101,14 @@ _REWARD_DOC = (
 _SUCCESS_RULE = "survive: reach the time limit with every pole within fail_angle and the cart within the track"
 
 
+#: typical magnitudes of the observations (track half-length, fail angles, common rates):
+#: network inputs are divided by these so one set of NEAT defaults suits both variants
+_OBS_SCALE = {
+    "x": 2.4, "x_dot": 1.0, "theta": 0.21, "theta_dot": 1.0,
+    "theta1": 0.63, "theta1_dot": 2.0, "theta2": 0.63, "theta2_dot": 4.0,
+}
+
+
 class CartPolePhysics(Physics):
     """Cart-pole physics core: one pole (Florian 2007) or two poles (Wieland 1991).
 
@@ -154,6 +162,7 @@ class CartPolePhysics(Physics):
         else:
             self.obs_names = self.state_names
             self.obs_units = self.state_units
+        self.obs_scale = tuple(_OBS_SCALE[n] for n in self.obs_names)
         super().__init__(**kwargs)
         self._col = {name: i for i, name in enumerate(self.param_table.names)}
 

@@ -108,6 +108,10 @@ class DronePairPhysics(Physics):
         "gust_z",
     )
     state_units = (*_BODY_UNITS, *_BODY_UNITS, "N", "N", "N", "N", "m/s", "m/s")
+    #: two egocentric blocks of 12: one shared network can fly either drone
+    obs_blocks = 2
+    #: typical magnitudes per block entry (field size, pitch limit, common rates)
+    obs_scale = (2.0, 2.0, 0.5, 1.0, 1.0, 2.0, 4.0, 2.0, 2.0, 2.0, 1.0, 1.0) * 2
     obs_names = tuple(f"d{i}_{n}" for i in (0, 1) for n in _BLOCK)
     obs_units = (*_BLOCK_UNITS, *_BLOCK_UNITS)
     action_names = ("d0_rotor_left", "d0_rotor_right", "d1_rotor_left", "d1_rotor_right")

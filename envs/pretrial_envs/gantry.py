@@ -161,6 +161,9 @@ class GantryPhysics(Physics):
             self.obs_names, self.obs_units = self.state_names, self.state_units
             self.action_names = ("trolley_force", "hoist_speed")
             self.action_units = ("N", "m/s")
+        # typical magnitudes (rail, max sway, common rates): network inputs are divided by these
+        scale = {"x": 2.5, "x_dot": 1.0, "phi": 0.5, "phi_dot": 1.0, "l": 1.0, "l_dot": 0.5}
+        self.obs_scale = tuple(scale[n] for n in self.obs_names)
         super().__init__(**kwargs)
         # column indices, looked up once (derivatives runs 4x per RK4 substep)
         self._col = {name: self.param_table.index(name) for name in self.param_table.names}

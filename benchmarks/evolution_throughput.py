@@ -1,0 +1,177 @@
+"""Evaluating a NEAT population on the cart-pole: the hand-written loop beside pretrial's batched rollout.
+
+Run: ``python benchmarks/evolution_throughput.py [--genomes 150] [--episodes 16] [--seed 0]``
+
+Both paths evaluate the same neat-python genomes (a population made from
+pretrial's shipped neat-python defaults, then mutated so that most genomes
+carry a hidden node or more), each on the same number of episodes of at most
+500 steps, in this one process, on one core:
+
+(a) by hand, as users write it: per genome ``neat.nn.FeedForwardNetwork.create``,
+    per episode ``gymnasium.make("CartPole-v1")`` stepped one step at a time with
+    ``action = 1 if net.activate(obs)[0] > 0 else 0`` until terminated or truncated;
+(b) pretrial: ``stack_genomes`` -> ``PopulationPolicy`` (``IOMap(4, 1)``) ->
+    ``pretrial.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
+    gymnasium's (forward Euler, dt 0.02 s, one substep, 10 s, gravity 9.8,
+    frictionless). Its action is the tanh output times ``max_force`` rather than
+    a bang-bang push, so episode lengths differ a little between the paths.
+
+Random genomes mostly fail within a few dozen steps, so the figure of merit is
+useful env-steps per second: steps actually simulated while the episode was
+alive (a: ``env.step`` calls; b: the sum of ``Outcome.steps``). pretrial also
+steps rows that have already ended until the last one ends; its rate of
+computed row-steps is printed too. Each timing covers the whole evaluation
+(compiling the networks, making the environments, drawing start states). If (a)
+would take longer than ``--hand-seconds``, it stops after a whole genome once
+that budget is spent (genomes taken in a seeded random order), and the
+comparison uses per-step rates, never totals. ``--profile`` prints where (b)
+spends its time.
+
+The last line is ``ratio: N``, (b) over (a) in useful env-steps per second.
+Target: N >= 30; the product's bar (DESIGN.md) is 100.
+"""
+
+from __future__ import annotations
+
+import argparse
+import cProfile
+import os
+import pstats
+import statistics
+import tempfile
+import time
+from typing import Any
+
+import gymnasium
+import neat
+import numpy as np
+
+from pretrial.config import neat_defaults
+from pretrial.network import stack_genomes
+from pretrial.policy import IOMap, PopulationPolicy
+from pretrial.rollout import Outcome, draw_scenarios, run_episodes
+from pretrial_envs.cartpole import CartPolePhysics
+
+HORIZON = 500  # CartPole-v1's max_episode_steps; pretrial: 10 s at dt 0.02
+GYM_PARAMS = {"gravity": 9.8, "cart_friction": 0.0, "pole_friction": 0.0}
+
+
+def neat_config(genomes: int) -> neat.Config:
+    """neat-python config from pretrial's shipped defaults, for 4 inputs and 1 output."""
+    cp = neat_defaults()
+    cp["DefaultGenome"]["num_inputs"] = "4"
+    cp["DefaultGenome"]["num_outputs"] = "1"
+    cp["NEAT"]["pop_size"] = str(genomes)
+    fd, path = tempfile.mkstemp(suffix=".ini")
+    try:
+        with os.fdopen(fd, "w") as f:
+            cp.write(f)
+        return neat.Config(neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet,
+                           neat.DefaultStagnation, path)
+    finally:
+        os.unlink(path)
+
+
+def make_genomes(config: neat.Config, seed: int, mutations: int) -> list[Any]:
+    """A fresh population, each genome then mutated ``mutations`` times by neat-python's own operators."""
+    population = neat.Population(config, seed=seed)  # seeds Python's random, which neat-python draws from
+    genomes = list(population.population.values())
+    for _ in range(mutations):
+        for genome in genomes:
+            genome.mutate(config.genome_config)
+    return genomes
+
+
+def by_hand(genomes: list[Any], config: neat.Config, episodes: int, seed: int,
+            budget: float) -> tuple[int, float, float, int]:
+    """The hand-written loop. Returns (env.step calls, seconds, seconds in make + reset, genomes done)."""
+    order = np.random.default_rng(seed).permutation(len(genomes))
+    steps, setup, done = 0, 0.0, 0
+    t0 = time.perf_counter()
+    for i in order:
+        net = neat.nn.FeedForwardNetwork.create(genomes[i], config)
+        for ep in range(episodes):
+            t_setup = time.perf_counter()
+            env = gymnasium.make("CartPole-v1")
+            obs, _ = env.reset(seed=seed + ep)  # every genome sees the same start states
+            setup += time.perf_counter() - t_setup
+            while True:
+                obs, _, terminated, truncated, _ = env.step(1 if net.activate(obs)[0] > 0 else 0)
+                steps += 1
+                if terminated or truncated:
+                    break
+            env.close()
+        done += 1
+        if time.perf_counter() - t0 > budget:
+            break
+    return steps, time.perf_counter() - t0, setup, done
+
+
+def with_pretrial(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, episodes: int,
+                  seed: int) -> tuple[Outcome, float]:
+    """pretrial's batched evaluation of all genomes. Returns (outcome, seconds)."""
+    t0 = time.perf_counter()
+    policy = PopulationPolicy(stack_genomes(genomes, config), IOMap(4, 1))
+    scenarios = draw_scenarios(physics, episodes, seed, base_params=GYM_PARAMS)
+    outcome = run_episodes(physics, policy, scenarios, max_steps=HORIZON)
+    return outcome, time.perf_counter() - t0
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--genomes", type=int, default=150, help="population size (default 150)")
+    ap.add_argument("--episodes", type=int, default=16, help="episodes per genome (default 16)")
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--mutations", type=int, default=30, help="mutation rounds applied to the new population")
+    ap.add_argument("--hand-seconds", type=float, default=30.0,
+                    help="time budget of the hand-written loop; past it, (a) stops after the current genome")
+    ap.add_argument("--repeats", type=int, default=3, help="timed runs of (b); the median is reported")
+    ap.add_argument("--profile", action="store_true", help="print cProfile's top entries for (b)")
+    args = ap.parse_args()
+
+    config = neat_config(args.genomes)
+    genomes = make_genomes(config, args.seed, args.mutations)
+    hidden = [sum(1 for k in g.nodes if k not in config.genome_config.output_keys) for g in genomes]
+    enabled = [sum(1 for c in g.connections.values() if c.enabled) for g in genomes]
+    physics = CartPolePhysics(integrator="euler", dt=0.02, substeps=1, time_limit=10.0)
+    g, e = len(genomes), args.episodes
+    print(f"{g} genomes (hidden nodes: mean {np.mean(hidden):.1f}, max {max(hidden)}; enabled connections: "
+          f"mean {np.mean(enabled):.1f}) x {e} episodes, horizon {HORIZON} steps, cart-pole euler dt 0.02")
+
+    with_pretrial(genomes, config, physics, e, args.seed)  # warm-up: first-call allocations and caches
+    runs = [with_pretrial(genomes, config, physics, e, args.seed) for _ in range(max(1, args.repeats))]
+    outcome = runs[0][0]
+    t_b = statistics.median(t for _, t in runs)
+    useful_b = int(outcome.steps.sum())
+    computed_b = outcome.steps.size * int(outcome.steps.max())  # every row is stepped until the last one ends
+
+    steps_a, t_a, setup_a, done_a = by_hand(genomes, config, e, args.seed, args.hand_seconds)
+    rate_a = steps_a / t_a
+    rate_a_no_setup = steps_a / (t_a - setup_a)
+    rate_b = useful_b / t_b
+
+    print(f"\n(a) by hand, neat-python + gymnasium: {done_a} of {g} genomes, {done_a * e} episodes, "
+          f"{steps_a:,} steps (mean {steps_a / (done_a * e):.1f} per episode) in {t_a:.2f} s")
+    print(f"    {rate_a:12,.0f} env-steps/s   ({setup_a / t_a:.0%} of the time in gymnasium.make + reset; "
+          f"without it {rate_a_no_setup:,.0f} env-steps/s)")
+    print(f"(b) pretrial run_episodes, one core: {g} genomes, {g * e} episodes, {useful_b:,} useful steps "
+          f"(mean {useful_b / (g * e):.1f} per episode, {outcome.success.mean():.0%} reach the horizon) "
+          f"in {t_b:.3f} s (median of {len(runs)})")
+    print(f"    {rate_b:12,.0f} env-steps/s useful")
+    print(f"    {computed_b / t_b:12,.0f} row-steps/s computed ({computed_b:,} row-steps, "
+          f"{useful_b / computed_b:.0%} of them useful)")
+    print(f"ratio without make + reset in (a): {rate_b / rate_a_no_setup:.1f}")
+
+    if args.profile:
+        prof = cProfile.Profile()
+        prof.enable()
+        with_pretrial(genomes, config, physics, e, args.seed)
+        prof.disable()
+        print("\n(b) profile, top entries by own time:")
+        pstats.Stats(prof).sort_stats("tottime").print_stats(15)
+
+    print(f"ratio: {rate_b / rate_a:.1f}")
+
+
+if __name__ == "__main__":
+    main()
