@@ -27,6 +27,11 @@ that budget is spent (genomes taken in a seeded random order), and the
 comparison uses per-step rates, never totals. ``--profile`` prints where (b)
 spends its time.
 
+The ratio depends on the population, not only on the code: one genome that
+survives long keeps all finished rows of (b) stepping, so a population of
+random genomes (most episodes over in ~15 steps) is (b)'s hardest case, and
+one whose genomes all balance for 500 steps its easiest.
+
 The last line is ``ratio: N``, (b) over (a) in useful env-steps per second.
 Target: N >= 30; the product's bar (DESIGN.md) is 100.
 """

@@ -167,6 +167,18 @@ class Loop:
         self._applied = u
         return u
 
+    def take(self, rows: np.ndarray) -> None:
+        """Keep only ``rows`` (indices), with their delay lines and actuator state."""
+        for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
+                     "act_delay", "obs_delay", "start_scale", "_applied"):
+            setattr(self, name, getattr(self, name)[rows])
+        if self._obs_buf is not None:
+            self._obs_buf = self._obs_buf[:, rows]
+        if self._act_buf is not None:
+            self._act_buf = self._act_buf[:, rows]
+        self.n = len(rows)
+        self._rows = np.arange(self.n)
+
     def plant_noise(self, step: int) -> np.ndarray | None:
         """Standard normal draws for the plant's disturbance processes, or None."""
         k = self.physics.noise_dim

@@ -147,7 +147,9 @@ class IOMap:
         if obs.ndim < 2 or obs.shape[-1] != self.obs_dim:
             raise ValueError(f"observations of shape {obs.shape}: expected (..., B, {self.obs_dim})")
         offset, scale = self._arrays[0], self._arrays[1]
-        x = (obs - offset) * scale
+        # on 2-D rows numpy broadcasts a short last axis far faster than on 3-D
+        x = obs.reshape(-1, self.obs_dim) - offset
+        x *= scale
         return x.reshape(*obs.shape[:-2], obs.shape[-2] * self.blocks, self.num_inputs)
 
     def actions(self, outputs: np.ndarray) -> np.ndarray:
@@ -183,6 +185,13 @@ class PopulationPolicy:
     def reset(self, batch_size: int) -> None:
         """Clear recurrent state for ``batch_size`` scenarios per policy."""
         self.network.reset(batch_size * self.io.blocks)
+
+    def select(self, keep: np.ndarray) -> PopulationPolicy | None:
+        """The policies ``keep`` (indices) alone, or None where state would be lost (recurrent)."""
+        if self.network.recurrent:
+            return None
+        net = PopulationNetwork([self.network.specs[i] for i in keep])
+        return PopulationPolicy(net, self.io)
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         """Env actions (G * B, action_dim) for observations (G * B, obs_dim), policy-major rows."""

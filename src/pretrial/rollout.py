@@ -137,10 +137,15 @@ def run_episodes(
     limit = physics.max_steps if max_steps is None else int(max_steps)
     hold = np.zeros(rows)
     steps = np.zeros(rows, dtype=np.int64)
+    # results by original row; `where` maps the rows still stepped to them
     returns = np.zeros(rows)
     success = np.zeros(rows, dtype=bool)
     failure = np.zeros(rows, dtype=np.int64)
+    length = np.zeros(rows, dtype=np.int64)
+    where = np.arange(rows)
+    ret = np.zeros(rows)
     active = np.ones(rows, dtype=bool)
+    policies = np.arange(g)  # original index of each policy still stepped
     policy.reset(s)
     obs = physics.observe(state, params)
     loop.reset(obs)
@@ -150,17 +155,17 @@ def run_episodes(
         command = policy.act(measured)
         action = loop.actuate(command, k)
         tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k))
-        returns += np.where(active, tr.reward, 0.0)
+        ret += np.where(active, tr.reward, 0.0)
         ended = active & (tr.terminated | tr.truncated)
         out_of_time = active & ~ended & (k + 1 >= limit)
         if out_of_time.any():
             # the run's horizon ends the episode before the env's own time limit
             if physics.success_mode == "survive":
-                success[out_of_time] = True
+                success[where[out_of_time]] = True
             else:
-                failure[out_of_time] = physics.timeout_code
-        success[ended] = tr.success[ended]
-        failure[ended] = tr.failure[ended]
+                failure[where[out_of_time]] = physics.timeout_code
+        success[where[ended]] = tr.success[ended]
+        failure[where[ended]] = tr.failure[ended]
         # finished rows keep their last state, so later steps cannot disturb them
         state = np.where(active[:, None], tr.state, state)
         hold, steps = tr.hold, np.where(active, tr.steps, steps)
@@ -171,7 +176,25 @@ def run_episodes(
         active &= ~(ended | out_of_time)
         if not active.any():
             break
+        live = active.reshape(-1, s).any(axis=1)
+        if trace is None and live.sum() <= 0.5 * len(live):
+            # Most policies have finished every scenario: drop them from the batch. Rows are
+            # independent, so this changes no result, only the work done per step.
+            smaller = policy.select(np.flatnonzero(live)) if hasattr(policy, "select") else None
+            if smaller is not None:
+                keep = np.flatnonzero(np.repeat(live, s))
+                returns[where] = ret
+                length[where] = steps
+                policy, policies = smaller, policies[live]
+                where, ret, state, hold, steps, active = (
+                    where[keep], ret[keep], state[keep], hold[keep], steps[keep], active[keep]
+                )
+                params = np.asfortranarray(params[keep])
+                loop.take(keep)
         obs = physics.observe(state, params)
+    returns[where] = ret
+    length[where] = steps
+    steps = length
     failure[success] = 0
     shape = (g, s)
     return Outcome(
