@@ -188,7 +188,7 @@ def _run_evolve(args: argparse.Namespace) -> int:
     quiet = args.quiet or args.json
     log = (lambda _line: None) if quiet else (lambda line: print(line, flush=True))
     with make_executor(run.workers, run.dask) as executor:
-        evo = Evolution(cfg, run_dir, executor, log, command_line=["pretrial", *sys.argv[1:]])
+        evo = Evolution(cfg, run_dir, executor, log, command_line=["pretrial", *args.argv])
         if args.resume:
             evo.resume()
         else:
@@ -263,6 +263,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
+    # what the manifest records: the words actually given, also when main() is called with a list
+    args.argv = list(sys.argv[1:] if argv is None else argv)
     try:
         return int(args._run(args) or 0)
     except PretrialError as exc:

@@ -219,8 +219,6 @@ _DERIVED_NEAT = {
 
 def load_config(path: str | Path) -> Config:
     """Read and validate a run config; raises :class:`InputError` on any problem."""
-    import pretrial_envs
-
     data, text = read_toml(path)
     path = str(path)
     top = _Reader(path, "", data)
@@ -231,11 +229,6 @@ def load_config(path: str | Path) -> Config:
 
     t = _Reader(path, "task", task_t)
     env = t.take("env", str, allowed="an environment id, e.g. 'pretrial/CartPole-v0'")
-    if env not in pretrial_envs.env_ids():
-        try:
-            pretrial_envs.physics_type(env)
-        except ValueError as exc:
-            t.fail("task.env", str(exc))
     episodes = t.take("episodes", int, 8, lambda v: 1 <= v <= 100_000, "a whole number from 1 to 100000")
     horizon = t.take("horizon", float, None, lambda v: v > 0, "seconds of simulated time, > 0")
     network = t.take("network", str, "whole", lambda v: v in NETWORK_LAYOUTS, " or ".join(NETWORK_LAYOUTS))
@@ -244,8 +237,12 @@ def load_config(path: str | Path) -> Config:
     randomize_t = t.table_of("randomize")
     t.finish()
 
+    from .generic import make_plant
+
     try:
-        physics = pretrial_envs.make_physics(env, **env_options)
+        physics = make_plant(env, **env_options)
+    except InputError as exc:
+        raise InputError(f"{path}: task.env: {exc.message}") from None
     except TypeError as exc:
         raise InputError(f"{path}: task.options: {exc}") from None
     except ValueError as exc:
@@ -303,6 +300,10 @@ def load_config(path: str | Path) -> Config:
             raise InputError(f"{path}: {key}: expected a value, got a table")
         if isinstance(value, float) and not math.isfinite(value):
             raise InputError(f"{path}: {key}: {value!r} is not a finite number")
+        # configparser would read '%' as interpolation and a line break as a new setting
+        if any(isinstance(v, str) and ("%" in v or not v.isprintable()) for v in (value if isinstance(value, list)
+                                                                                  else [value])):
+            raise InputError(f"{path}: {key}: {value!r} must be one line of printable text without '%'")
         neat[name] = value
 
     r = _Reader(path, "run", run_t)
@@ -325,15 +326,41 @@ def load_config(path: str | Path) -> Config:
         run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation),
         source_text=text,
     )
-    build_neat_ini(cfg, 1, 1)  # surfaces neat-python's own objections now, with the key named
+    # surface neat-python's own objections now, naming the key when one alone upsets it
+    reason = _neat_refusal(_neat_text(neat, 1, 1))
+    if reason is not None:
+        for name, value in neat.items():
+            one = _neat_refusal(_neat_text({name: value}, 1, 1))
+            if one is not None:
+                hint = _neat_hint(name)
+                raise InputError(f"{path}: neat.{name}: {value!r} refused by neat-python: {one}{hint}")
+        raise InputError(f"{path}: [neat]: neat-python refuses the merged settings: {reason}")
     return cfg
+
+
+def _neat_hint(name: str) -> str:
+    """What neat-python allows for ``name`` where its own refusal does not say."""
+    if name != "initial_connection":
+        return ""
+    from neat.genome import DefaultGenomeConfig
+
+    allowed = ", ".join(DefaultGenomeConfig.allowed_connectivity)
+    return f" (allowed: {allowed}; the partial ones take a fraction, e.g. 'partial_direct 0.5')"
 
 
 def build_neat_ini(cfg: Config, num_inputs: int, num_outputs: int) -> str:
     """The merged neat-python config file text for this run."""
+    text = _neat_text(cfg.neat, num_inputs, num_outputs)
+    reason = _neat_refusal(text)
+    if reason is not None:
+        raise InputError(f"{cfg.path}: [neat]: neat-python refuses the merged settings: {reason}")
+    return text
+
+
+def _neat_text(settings: dict[str, Any], num_inputs: int, num_outputs: int) -> str:
     cp = neat_defaults()
     sections = neat_key_sections()
-    for name, value in cfg.neat.items():
+    for name, value in settings.items():
         if isinstance(value, bool):
             text = "true" if value else "false"
         elif isinstance(value, list):
@@ -348,12 +375,11 @@ def build_neat_ini(cfg: Config, num_inputs: int, num_outputs: int) -> str:
         lines.append(f"[{s}]")
         lines.extend(f"{k} = {v}" for k, v in cp[s].items())
         lines.append("")
-    text = "\n".join(lines)
-    _check_neat_text(cfg.path, text)
-    return text
+    return "\n".join(lines)
 
 
-def _check_neat_text(path: str, text: str) -> None:
+def _neat_refusal(text: str) -> str | None:
+    """neat-python's objection to a config file text, or None if it accepts it."""
     import os
     import tempfile
 
@@ -367,10 +393,10 @@ def _check_neat_text(path: str, text: str) -> None:
             neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet, neat.DefaultStagnation, tmp
         )
     except Exception as exc:  # neat-python raises bare Exception/RuntimeError/AssertionError
-        msg = " ".join(str(exc).split()) or type(exc).__name__
-        raise InputError(f"{path}: [neat]: neat-python refuses the merged settings: {msg}") from None
+        return " ".join(str(exc).split()) or type(exc).__name__
     finally:
         os.unlink(tmp)
+    return None
 
 
 # --------------------------------------------------------------------------- #
@@ -384,10 +410,16 @@ def _toml_value(v: Any) -> str:
             return "inf" if v > 0 else ("-inf" if v < 0 else "nan")
         return repr(v)
     if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+        return '"' + "".join(_TOML_ESCAPES.get(c, c) for c in v) + '"'
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
     raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+#: TOML basic strings must escape quote, backslash and control characters other than tab
+_TOML_ESCAPES = {'"': '\\"', "\\": "\\\\"} | {
+    chr(c): f"\\u{c:04x}" for c in (*range(0x09), *range(0x0A, 0x20), 0x7F)
+}
 
 
 def dump_toml(data: dict[str, Any]) -> str:
@@ -410,4 +442,5 @@ def dump_toml(data: dict[str, Any]) -> str:
 
 
 def _bare(key: str) -> str:
-    return key if key.replace("_", "").replace("-", "").isalnum() else _toml_value(key)
+    # bare keys are ASCII letters, digits, '_' and '-' only
+    return key if key.isascii() and key.replace("_", "").replace("-", "").isalnum() else _toml_value(key)

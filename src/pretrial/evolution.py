@@ -68,9 +68,9 @@ class Task:
         key = (self.env_id, json.dumps(self.options, sort_keys=True))
         phys = _PHYSICS_CACHE.get(key)
         if phys is None:
-            import pretrial_envs
+            from .generic import make_plant
 
-            phys = _PHYSICS_CACHE[key] = pretrial_envs.make_physics(self.env_id, **self.options)
+            phys = _PHYSICS_CACHE[key] = make_plant(self.env_id, **self.options)
         return phys
 
 
@@ -87,9 +87,9 @@ def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple
 
 def make_task(cfg: Config) -> Task:
     """Derive the network's inputs, outputs and scaling from the env."""
-    import pretrial_envs
+    from .generic import make_plant
 
-    physics = pretrial_envs.make_physics(cfg.task.env, **cfg.task.env_options)
+    physics = make_plant(cfg.task.env, **cfg.task.env_options)
     blocks = physics.obs_blocks if cfg.task.network == "shared" else 1
     n_in, n_out = physics.obs_dim // blocks, physics.action_dim // blocks
     scale = physics.obs_scale

@@ -20,6 +20,7 @@ from typing import Any
 
 import gymnasium as gym
 import numpy as np
+
 from pretrial_envs.core import ParamTable, Physics
 
 from .errors import InputError
@@ -39,6 +40,8 @@ class GymnasiumPlant(Physics):
     """
 
     param_table = ParamTable([])
+    #: each row is a live env object: rows cannot be dropped or reordered mid-episode
+    rows_movable = False
     failure_modes = ("terminated",)
     success_rule = "the episode reaches its time limit without terminating"
     reward_doc = "the env's own reward"
@@ -124,3 +127,20 @@ class GymnasiumPlant(Physics):
         for env in self._envs:
             env.close()
         self._envs = []
+
+
+def make_plant(env_id: str, **options: Any) -> Physics:
+    """The batch plant of ``env_id``: its physics core, else the generic gymnasium path.
+
+    ValueError/TypeError from the env's own option checks propagate; an id that
+    neither pretrial nor gymnasium knows raises :class:`InputError`.
+    """
+    import pretrial_envs
+
+    try:
+        kind = pretrial_envs.physics_type(env_id)
+    except ValueError as exc:
+        if env_id not in gym.registry:
+            raise InputError(str(exc)) from None
+        return GymnasiumPlant(env_id, **options)
+    return kind(**options)

@@ -146,6 +146,7 @@ def run_episodes(
     ret = np.zeros(rows)
     active = np.ones(rows, dtype=bool)
     policies = np.arange(g)  # original index of each policy still stepped
+    movable = getattr(physics, "rows_movable", True)
     policy.reset(s)
     obs = physics.observe(state, params)
     loop.reset(obs)
@@ -177,7 +178,7 @@ def run_episodes(
         if not active.any():
             break
         live = active.reshape(-1, s).any(axis=1)
-        if trace is None and live.sum() <= 0.5 * len(live):
+        if trace is None and movable and live.sum() <= 0.5 * len(live):
             # Most policies have finished every scenario: drop them from the batch. Rows are
             # independent, so this changes no result, only the work done per step.
             smaller = policy.select(np.flatnonzero(live)) if hasattr(policy, "select") else None
