@@ -275,6 +275,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("pretrial: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # output piped into e.g. `head`, which closed early: not an error of ours
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -239,6 +239,9 @@ def load_config(path: str | Path) -> Config:
 
     from .generic import make_plant
 
+    spread = env_options.get("start_spread", {})
+    if not isinstance(spread, dict):  # the core would fail on .items() with an AttributeError
+        t.fail("task.options.start_spread", f"expected a table of state name = spread, got {_kind(spread)} {spread!r}")
     try:
         physics = make_plant(env, **env_options)
     except InputError as exc:

@@ -265,11 +265,18 @@ class Evolution:
                 k = st.generation
                 genomes = [st.population[key] for key in sorted(st.population)]
                 scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k)
-                fitness, _ = self.evaluate(genomes, scen)
+                try:
+                    fitness, succ = self.evaluate(genomes, scen)
+                except KeyboardInterrupt:
+                    # Nothing of generation k is recorded yet: the state is exactly its start.
+                    self.save_checkpoint()
+                    raise
                 for g, f in zip(genomes, fitness):
                     g.fitness = float(f)
                 st.evaluations += len(genomes) * self.cfg.task.episodes
-                best = max(genomes, key=lambda g: g.fitness)
+                ibest = int(np.argmax(fitness))  # first of equals, as max() over the sorted genomes
+                best = genomes[ibest]
+                self._best_success = float(succ[ibest])
                 nodes, conns = _size(best, cfg)
                 row = {
                     "generation": k,
@@ -301,7 +308,7 @@ class Evolution:
                     self.save_checkpoint()
                 self._report(row, generations, reached, target)
         except KeyboardInterrupt:
-            # The state is consistent at generation boundaries only; the last checkpoint stands.
+            # Interrupted while evaluating: checkpointed above. Elsewhere: the last checkpoint stands.
             self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
         return self.finish(reached)
@@ -320,7 +327,8 @@ class Evolution:
         mean_t = float(np.mean(self.timing[-5:]))
         eta = "" if reached else f"  eta {_clock(mean_t * max(0, generations - done))}"
         self.log(
-            f"gen {row['generation']:4d}  best {row['best']:10.4g}  mean {row['mean']:10.4g}  "
+            f"gen {row['generation']:4d}  best {row['best']:10.4g} ({self._best_success:4.0%} ok)  "
+            f"mean {row['mean']:10.4g}  "
             f"species {row['species']:3d}  size {row['best_nodes']}n/{row['best_connections']}c  "
             f"evals {row['evaluations']:8d}  {self.timing[-1]:6.2f} s/gen{eta}"
         )
