@@ -101,7 +101,7 @@ def test_minimal_config_takes_defaults(tmp_path):
 
 
 def test_integer_where_a_number_is_expected_is_a_float(tmp_path):
-    cfg = load_config(write(tmp_path, '[task]\nenv = "pretrial/CartPole-v0"\nhorizon = 5\n[task.params]\ncart_mass = 2\n'))
+    cfg = load_config(write(tmp_path, BASE_TASK + "horizon = 5\n[task.params]\ncart_mass = 2\n"))
     assert cfg.task.horizon == 5.0 and isinstance(cfg.task.horizon, float)
     assert isinstance(cfg.task.params["cart_mass"], float)
 
@@ -201,6 +201,10 @@ BAD = [
     (BASE_TASK + "[task.options]\npoles = 3\n", "task.options", "poles"),
     (BASE_TASK + "[task.options]\npolse = 2\n", "task.options", "polse"),
     (BASE_TASK + "options = 4\n", "task.options", "expected a table"),
+    (BASE_TASK + "[task.options]\nstart_spread = 5\n", "task.options.start_spread", "expected a table"),
+    (BASE_TASK + "[task.options]\nstart_spread = {q = 0.1}\n", "task.options", "unknown state 'q'"),
+    (BASE_TASK + '[task.options]\nintegrator = "leapfrog"\n', "task.options", "integrator"),
+    (BASE_TASK + "[task.options]\ndt = -0.01\n", "task.options", "dt"),
     (BASE_TASK + "[task.params]\ncart_mas = 1.0\n", "task.params.cart_mas", "did you mean 'cart_mass'"),
     (BASE_TASK + "[task.params]\ncart_mass = 1000.0\n", "task.params.cart_mass", "outside its valid range"),
     (BASE_TASK + "[task.params]\ncart_mass = 0.0\n", "task.params.cart_mass", "outside its valid range"),
@@ -254,6 +258,19 @@ def test_first_bad_neat_key_is_named_among_good_ones(tmp_path):
     text = BASE_TASK + '[neat]\npop_size = 40\nconn_add_prob = 0.2\ninitial_connection = "nowhere"\nelitism = 1\n'
     msg = refused(write(tmp_path, text))
     assert ": neat.initial_connection: " in msg and "nowhere" in msg
+
+
+def test_neat_settings_refused_only_together_are_both_named(tmp_path):
+    # neat-python accepts each alone but refuses a minimum above the maximum
+    text = BASE_TASK + "[neat]\npop_size = 40\nbias_min_value = 5.0\nelitism = 1\nbias_max_value = -5.0\n"
+    msg = refused(write(tmp_path, text))
+    assert ": neat.bias_min_value, neat.bias_max_value: " in msg and "together" in msg
+
+
+def test_node_time_constant_settings_reach_neat_python(tmp_path):
+    # advertised by neat_key_sections for neat-python 2.0's node genes (reference: neat.genes.DefaultNodeGene)
+    cfg = load_config(write(tmp_path, BASE_TASK + "[neat]\ntime_constant_init_mean = 2.0\n"))
+    assert neat_config(build_neat_ini(cfg, 4, 1), tmp_path).genome_config.time_constant_init_mean == 2.0
 
 
 # --------------------------------------------------------------------------- #
@@ -341,6 +358,18 @@ def test_fuzz_tomlish_text(tmp_path, tables, env, junk):
         lines += [f"{k} = {_fuzz_toml(v)}" for k, v in table.items()]
     lines.append(junk)  # sometimes valid, mostly not
     _load_expecting_only_input_errors(write(tmp_path, "\n".join(lines)))
+
+
+_OPTION_KEYS = ["poles", "observe", "dt", "substeps", "integrator", "time_limit", "start_spread", "hold_time",
+                "hoist", "polse"]
+
+
+@_FUZZ
+@given(st.sampled_from(_ENVS[:3]), st.dictionaries(st.sampled_from(_OPTION_KEYS), _values, max_size=4))
+def test_fuzz_env_options(tmp_path, env, options):
+    # the env's keyword arguments reach its constructor: whatever it objects to must come back as InputError
+    body = "\n".join(f"{k} = {_fuzz_toml(v)}" for k, v in options.items())
+    _load_expecting_only_input_errors(write(tmp_path, f'[task]\nenv = "{env}"\n[task.options]\n{body}\n'))
 
 
 # --------------------------------------------------------------------------- #

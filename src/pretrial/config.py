@@ -337,7 +337,14 @@ def load_config(path: str | Path) -> Config:
             if one is not None:
                 hint = _neat_hint(name)
                 raise InputError(f"{path}: neat.{name}: {value!r} refused by neat-python: {one}{hint}")
-        raise InputError(f"{path}: [neat]: neat-python refuses the merged settings: {reason}")
+        # only a combination fails (e.g. a min above a max): drop every key the refusal does not need
+        culprits = dict(neat)
+        for name in list(culprits):
+            rest = {k: v for k, v in culprits.items() if k != name}
+            if _neat_refusal(_neat_text(rest, 1, 1)) is not None:
+                culprits = rest
+        keys = ", ".join(f"neat.{k}" for k in culprits)
+        raise InputError(f"{path}: {keys}: neat-python refuses these settings together: {reason}")
     return cfg
 
 

@@ -26,6 +26,7 @@ import platform
 import random
 import sys
 import time
+import tomllib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -222,6 +223,7 @@ class Evolution:
             self.manifest = json.loads(self.manifest_path.read_text())
         except (OSError, ValueError) as exc:
             raise InputError(f"{self.manifest_path}: unreadable ({exc})") from None
+        self._check_same_config()
         recorded = self.manifest.get("checkpoints") or {}
         if not recorded:
             raise InputError(f"{self.run_dir}: no checkpoint yet; start the run again")
@@ -243,6 +245,21 @@ class Evolution:
             gc.node_indexer = itertools.count(self.state.node_indexer_next)
         self._rewrite_history()
         self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
+
+    def _check_same_config(self) -> None:
+        """Refuse to continue a run under settings that would change its results (seed, task, [neat], ...)."""
+        path = self.run_dir / "config.resolved.toml"
+        try:
+            old = _flat(tomllib.loads(path.read_text()))
+        except (OSError, ValueError) as exc:
+            raise InputError(f"{path}: unreadable ({exc})") from None
+        new = _flat(self.cfg.to_dict())
+        differ = sorted(k for k in old.keys() | new.keys() if k not in _RESUME_MAY_CHANGE and old.get(k) != new.get(k))
+        if differ:
+            raise InputError(
+                f"{self.cfg.path}: {differ[0]} differs from the run being resumed ({path}); resume with the same "
+                f"config and seed (only --generations, --workers, --dask and [run] checkpoint_every may change)"
+            )
 
     # ------------------------------------------------------------ generations
     def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios) -> tuple[np.ndarray, np.ndarray]:
@@ -431,6 +448,20 @@ class Evolution:
         names_in = list(physics.obs_names[: physics.obs_dim // blocks])
         names_out = list(physics.action_names[: physics.action_dim // blocks])
         plot_network(doc["network"], plots / "network.png", names_in, names_out)
+
+
+#: config keys a resume may change: they decide how long and where, not what the run computes
+_RESUME_MAY_CHANGE = frozenset({"run.generations", "run.checkpoint_every", "run.workers", "run.dask"})
+
+
+def _flat(table: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in table.items():
+        if isinstance(v, dict):
+            out.update(_flat(v, f"{prefix}{k}."))
+        else:
+            out[f"{prefix}{k}"] = v
+    return out
 
 
 def _clock(seconds: float) -> str:

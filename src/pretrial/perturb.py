@@ -108,17 +108,26 @@ class Loop:
         self.max_slew = (v["actuator_rate_limit"] * dt)[:, None]
         lag = v["actuator_lag_s"]
         # exact first-order response to a command held over one period
-        self.lag_alpha = np.where(lag > 0, -np.expm1(-dt / np.where(lag > 0, lag, 1.0)), 1.0)[:, None]
+        with np.errstate(over="ignore"):  # a lag far below dt is no lag: alpha = 1
+            self.lag_alpha = np.where(lag > 0, -np.expm1(-dt / np.where(lag > 0, lag, 1.0)), 1.0)[:, None]
         self.noise_std = v["sensor_noise_std"][:, None]
         self.bias = v["sensor_bias"][:, None]
         self.quantum = v["sensor_quantization"][:, None]
         self.act_delay = np.rint(v["actuator_delay_s"] / dt).astype(np.int64)
         self.obs_delay = np.rint(v["sensor_delay_s"] / dt).astype(np.int64)
         self.start_scale = v["start_scale"].copy()
-        self._any_sensor = bool(np.any(self.noise_std) or np.any(self.bias) or np.any(self.quantum))
+        # Per-row masks: a row whose element is nominal passes values through exactly, so its results never
+        # depend on what the other rows of the batch carry (a sweep sample replays alone bit for bit).
+        self._sensor_rows = (self.noise_std != 0) | (self.bias != 0) | (self.quantum > 0)
+        self._dead_rows = self.deadband > 0
+        self._slew_rows = np.isfinite(self.max_slew)
+        self._lag_rows = self.lag_alpha != 1.0
+        self._any_sensor = bool(self._sensor_rows.any())
+        self._any_quantum = bool(np.any(self.quantum > 0))
+        self._tiny_quantum = bool(np.any((self.quantum > 0) & (self.quantum < 1e-280)))
+        self._safe_quantum = np.where(self.quantum > 0, self.quantum, 1.0)
         self._any_act_shape = bool(
-            np.any(self.gain != 1.0) or np.any(self.deadband) or np.any(np.isfinite(self.max_slew))
-            or np.any(self.lag_alpha != 1.0)
+            np.any(self.gain != 1.0) or self._dead_rows.any() or self._slew_rows.any() or self._lag_rows.any()
         )
         self._obs_buf: np.ndarray | None = None
         self._act_buf: np.ndarray | None = None
@@ -145,8 +154,13 @@ class Loop:
             return obs
         counter = _STREAMS * step + _SENSOR_STREAM
         out = obs + self.bias + self.noise_std * streams.normal(self.keys, counter, obs.shape[1])
-        q = np.where(self.quantum > 0, self.quantum, 1.0)
-        return np.where(self.quantum > 0, np.round(out / q) * q, out)
+        if self._any_quantum:
+            with np.errstate(over="ignore", invalid="ignore"):
+                rounded = np.round(out / self._safe_quantum) * self._safe_quantum
+            if self._tiny_quantum:  # out / q can overflow: such a quantum is below the float spacing anyway
+                rounded = np.where(np.isfinite(rounded), rounded, out)
+            out = np.where(self.quantum > 0, rounded, out)
+        return np.where(self._sensor_rows, out, obs)
 
     def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
         """Action applied to the plant at ``step`` for the policy's ``command``."""
@@ -159,10 +173,11 @@ class Loop:
         if not self._any_act_shape:
             self._applied = command
             return command
-        u = np.where(np.abs(command) <= self.deadband, 0.0, command) * self.gain
+        u = np.where(self._dead_rows & (np.abs(command) <= self.deadband), 0.0, command) * self.gain
         prev = self._applied
-        u = prev + np.clip(u - prev, -self.max_slew, self.max_slew)
-        u = prev + self.lag_alpha * (u - prev)
+        # prev + (u - prev) is not always u in floating point: rows without a slew limit or lag skip them
+        u = np.where(self._slew_rows, prev + np.clip(u - prev, -self.max_slew, self.max_slew), u)
+        u = np.where(self._lag_rows, prev + self.lag_alpha * (u - prev), u)
         u = np.clip(u, -1.0, 1.0)
         self._applied = u
         return u
@@ -170,7 +185,8 @@ class Loop:
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
         for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
-                     "act_delay", "obs_delay", "start_scale", "_applied"):
+                     "act_delay", "obs_delay", "start_scale", "_applied", "_sensor_rows", "_dead_rows", "_slew_rows",
+                     "_lag_rows", "_safe_quantum"):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]
