@@ -172,7 +172,7 @@ class CartPolePhysics(Physics):
     # ----------------------------------------------------------- dynamics
     def derivatives(self, state: Array, force: Array, params: Array) -> Array:
         if self.poles == 1:
-            return self._one_pole(state, force, params)[0]
+            return self._one_pole(state, force, params, need_normal=False)[0]
         return self._two_poles(state, force, params)
 
     def normal_force(self, state: Array, force: Array, params: Array) -> Array:
@@ -181,7 +181,7 @@ class CartPolePhysics(Physics):
             raise ValueError("normal_force: defined for poles=1 only (the two-pole model uses a friction force)")
         return self._one_pole(state, force, params)[1]
 
-    def _one_pole(self, state: Array, force: Array, params: Array) -> tuple[Array, Array]:
+    def _one_pole(self, state: Array, force: Array, params: Array, need_normal: bool = True) -> tuple[Array, Array]:
         # In-place arithmetic into a few buffers: at N = 10,000 every fresh temporary costs about
         # as much as the arithmetic itself (allocation and page faults), so the peak is kept small.
         c = self._col
@@ -206,13 +206,36 @@ class CartPolePhysics(Physics):
             slip = np.zeros_like(x_dot)
         # g sin(theta) - mu_p theta_dot / (m l): gravity and pivot friction on the pole.
         g_sin = g * sin
-        pivot = params[:, c["pole_friction"]] * w
-        pivot /= ml
-        g_sin -= pivot
-        del pivot
+        mu_p = params[:, c["pole_friction"]]
+        if mu_p.any():
+            pivot = mu_p * w
+            pivot /= ml
+            g_sin -= pivot
+            del pivot
         out = np.empty_like(state)
         out[:, 0] = x_dot
         out[:, 2] = w
+        if not need_normal and not mu_c.any():
+            # Frictionless track: N_c is not needed, and gymnasium's CartPole-v1 expression is the
+            # whole model (same operations in the same order, so it matches bit for bit).
+            temp = mlw2 * sin
+            temp += force[:, 0]
+            temp /= total
+            den = cos * cos
+            den *= m
+            den /= total
+            np.subtract(4.0 / 3.0, den, out=den)
+            den *= half
+            th_acc = cos * temp
+            np.subtract(g_sin, th_acc, out=th_acc)
+            th_acc /= den
+            np.multiply(ml, th_acc, out=den)
+            den *= cos
+            den /= total
+            np.subtract(temp, den, out=den)
+            out[:, 1] = den
+            out[:, 3] = th_acc
+            return out, temp
 
         def solve(s: Array) -> Array:
             # s = mu_c sgn(N_c) sgn(x_dot). With s = 0 every operation reduces to gymnasium's
