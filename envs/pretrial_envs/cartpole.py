@@ -198,12 +198,11 @@ class CartPolePhysics(Physics):
         mlw2 *= ml
         # mu_c * smoothed sgn(x_dot); the sign of N_c multiplies it below.
         mu_c = params[:, c["cart_friction"]]
-        if mu_c.any():
+        slip = None
+        if mu_c.any():  # a frictionless track skips the tanh (the largest single cost at large N)
             slip = np.divide(x_dot, params[:, c["friction_speed"]])
             np.tanh(slip, out=slip)
             slip *= mu_c
-        else:  # frictionless track: skip the tanh (the largest single cost at large N)
-            slip = np.zeros_like(x_dot)
         # g sin(theta) - mu_p theta_dot / (m l): gravity and pivot friction on the pole.
         g_sin = g * sin
         mu_p = params[:, c["pole_friction"]]
@@ -215,13 +214,25 @@ class CartPolePhysics(Physics):
         out = np.empty_like(state)
         out[:, 0] = x_dot
         out[:, 2] = w
-        if not need_normal and not mu_c.any():
-            # Frictionless track: N_c is not needed, and gymnasium's CartPole-v1 expression is the
-            # whole model (same operations in the same order, so it matches bit for bit).
-            temp = mlw2 * sin
-            temp += force[:, 0]
-            temp /= total
-            den = cos * cos
+        def solve(s: Array | None) -> Array | None:
+            # s = mu_c sgn(N_c) sgn(x_dot); None for a frictionless track, where the operations
+            # are gymnasium's CartPole-v1 expression in the same order (bit-for-bit equal).
+            if s is None:
+                temp = mlw2 * sin
+                temp += force[:, 0]
+                temp /= total
+                lever = cos
+            else:
+                temp = s * cos
+                temp += sin
+                temp *= mlw2
+                temp += force[:, 0]
+                temp /= total
+                lever = s * g
+                temp -= lever  # (F + m l w^2 (sin + s cos)) / (M + m) - s g
+                np.multiply(s, sin, out=lever)
+                np.subtract(cos, lever, out=lever)  # lever = cos - s sin
+            den = cos * lever
             den *= m
             den /= total
             np.subtract(4.0 / 3.0, den, out=den)
@@ -230,53 +241,29 @@ class CartPolePhysics(Physics):
             np.subtract(g_sin, th_acc, out=th_acc)
             th_acc /= den
             np.multiply(ml, th_acc, out=den)
-            den *= cos
+            den *= lever
             den /= total
             np.subtract(temp, den, out=den)
             out[:, 1] = den
             out[:, 3] = th_acc
-            return out, temp
-
-        def solve(s: Array) -> Array:
-            # s = mu_c sgn(N_c) sgn(x_dot). With s = 0 every operation reduces to gymnasium's
-            # CartPole-v1 expression in the same order, so the frictionless model matches it bit for bit.
-            temp = s * cos
-            temp += sin
-            temp *= mlw2
-            temp += force[:, 0]
-            temp /= total
-            buf = s * g
-            temp -= buf  # (F + m l w^2 (sin + s cos)) / (M + m) - s g
-            np.multiply(s, sin, out=buf)
-            np.subtract(cos, buf, out=buf)  # lever = cos - s sin
-            den = cos * buf
-            den *= m
-            den /= total
-            np.subtract(4.0 / 3.0, den, out=den)
-            den *= half
-            th_acc = cos * temp
-            np.subtract(g_sin, th_acc, out=th_acc)
-            th_acc /= den
-            np.multiply(ml, th_acc, out=den)
-            den *= buf
-            den /= total
-            np.subtract(temp, den, out=den)
-            out[:, 1] = den
-            out[:, 3] = th_acc
+            if not need_normal and s is None:
+                return None
             # N_c = (M + m) g - m l (theta'' sin + theta'^2 cos)
             np.multiply(th_acc, sin, out=temp)
             temp *= ml
-            np.multiply(mlw2, cos, out=buf)
+            buf = mlw2 * cos
             temp += buf
             np.multiply(total, g, out=buf)
             np.subtract(buf, temp, out=temp)
             return temp
 
+        if not mu_c.any():
+            return out, solve(None)
         normal = solve(slip)
         # Florian 2007: solve assuming N_c > 0, then solve again where N_c came out negative
         # (only friction depends on that sign).
         negative = normal < 0.0
-        if negative.any() and slip.any():
+        if negative.any():
             normal = solve(np.where(negative, -slip, slip))
         return out, normal
 
