@@ -387,7 +387,11 @@ class Physics:
         """Start states: ``start_center + scale * start_spread * U(-1, 1)``."""
         n = params.shape[0]
         u = rng.uniform(-1.0, 1.0, size=(n, self.state_dim))
-        return self.start_center(params) + np.asarray(scale, dtype=float).reshape(-1, 1) * self.start_spread * u
+        scale = np.asarray(scale, dtype=float)
+        u *= self.start_spread if scale.ndim == 0 and scale == 1.0 else scale.reshape(-1, 1) * self.start_spread
+        center = self.start_center(params)
+        center += u
+        return center
 
     def transition(
         self,
@@ -434,7 +438,8 @@ class Physics:
                 truncated = ~terminated & (steps >= self.max_steps)
                 success = truncated.copy()
             reward = self.reward(state, action, params, failure, success)
-            reward = np.where(np.isfinite(reward), reward, 0.0)
+            if bad.any():  # finite states give finite rewards; a diverged row's reward is 0
+                reward = np.where(bad | ~np.isfinite(reward), 0.0, reward)
         return Transition(state, reward, failure, success, terminated, truncated, hold, steps)
 
     def describe(self) -> dict[str, Any]:
