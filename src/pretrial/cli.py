@@ -123,26 +123,25 @@ def _run_envs(args: argparse.Namespace) -> int:
 # --------------------------------------------------------------------------- #
 # pretrial evolve
 # --------------------------------------------------------------------------- #
-def _workers_arg(text: str) -> int | str:
-    if text == "auto":
-        return text
+def _whole(text: str, minimum: int) -> int:
     try:
         n = int(text)
     except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1")
+        n = minimum - 1
+    if n < minimum:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number >= {minimum}")
     return n
+
+
+def _workers_arg(text: str) -> int | str:
+    try:
+        return text if text == "auto" else _whole(text, 1)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1") from None
 
 
 def _positive_int(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number") from None
-    if n < 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: must be >= 0")
-    return n
+    return _whole(text, 0)
 
 
 def _configure_evolve(p: argparse.ArgumentParser) -> None:
