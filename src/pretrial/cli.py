@@ -148,7 +148,7 @@ def _configure_evolve(p: argparse.ArgumentParser) -> None:
     p.add_argument("config", help="run config (TOML), e.g. configs/cartpole.toml")
     p.add_argument("--out", metavar="DIR", help="run directory (default runs/<config>-<UTC time>/)")
     p.add_argument("--seed", type=_positive_int, help="override [run].seed")
-    p.add_argument("--generations", type=_positive_int, help="override [run].generations")
+    p.add_argument("--generations", type=lambda t: _whole(t, 1), help="override [run].generations")
     p.add_argument("--workers", type=_workers_arg, help="worker processes: N or auto (default: the config's, auto)")
     p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")
     p.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint")
@@ -170,8 +170,6 @@ def _run_evolve(args: argparse.Namespace) -> int:
     if args.seed is not None:
         run = dataclasses.replace(run, seed=args.seed)
     if args.generations is not None:
-        if args.generations < 1:
-            raise InputError(f"--generations {args.generations}: must be >= 1")
         run = dataclasses.replace(run, generations=args.generations)
     if args.workers is not None:
         run = dataclasses.replace(run, workers=args.workers)

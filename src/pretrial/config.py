@@ -84,7 +84,6 @@ class Config:
         task: dict[str, Any] = {"env": self.task.env, "episodes": self.task.episodes, "network": self.task.network}
         if self.task.horizon is not None:
             task["horizon"] = self.task.horizon
-        task["env"] = self.task.env
         out: dict[str, Any] = {"task": task}
         if self.task.env_options:
             task["options"] = dict(self.task.env_options)

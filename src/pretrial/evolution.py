@@ -126,10 +126,9 @@ def _neat_config(path: Path):
                        neat.DefaultStagnation, str(path))
 
 
-def _size(genome: Any, neat_config: Any) -> tuple[int, int]:
-    spec_nodes = len(genome.nodes)
-    conns = sum(1 for c in genome.connections.values() if c.enabled)
-    return spec_nodes, conns
+def _size(genome: Any) -> tuple[int, int]:
+    """(nodes, enabled connections) of a genome."""
+    return len(genome.nodes), sum(1 for c in genome.connections.values() if c.enabled)
 
 
 @dataclass
@@ -176,7 +175,9 @@ class Evolution:
         self.manifest: dict[str, Any] = {}
         self.neat_config: Any = None
         self.state: RunState | None = None
-        self.timing: list[float] = []
+        self.timing: list[float] = []  # seconds per generation of this session
+        self._timing_rows: list[dict[str, Any]] = []  # timing.csv, earlier sessions included
+        self._best_success = 0.0
 
     # ------------------------------------------------------------ set-up
     def create(self) -> None:
@@ -244,6 +245,10 @@ class Evolution:
 
             gc.node_indexer = itertools.count(self.state.node_indexer_next)
         self._rewrite_history()
+        timing = self.run_dir / "timing.csv"
+        if timing.exists():  # read once: rows of generations the checkpoint already holds
+            with open(timing, newline="") as f:
+                self._timing_rows = [r for r in csv.DictReader(f) if int(r["generation"]) < self.state.generation]
         self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
 
     def _check_same_config(self) -> None:
@@ -294,7 +299,7 @@ class Evolution:
                 ibest = int(np.argmax(fitness))  # first of equals, as max() over the sorted genomes
                 best = genomes[ibest]
                 self._best_success = float(succ[ibest])
-                nodes, conns = _size(best, cfg)
+                nodes, conns = _size(best)
                 row = {
                     "generation": k,
                     "evaluations": st.evaluations,
@@ -317,10 +322,11 @@ class Evolution:
                     st.species.speciate(cfg, st.population, k + 1)
                 st.generation = k + 1
                 st.finished = reached
-                self._write_csv(self.run_dir / "history.csv", HISTORY_FIELDS, st.history)
+                self._rewrite_history()
                 elapsed = time.perf_counter() - t0
                 self.timing.append(elapsed)
-                self._append_timing(k, elapsed)
+                self._timing_rows.append({"generation": k, "seconds": f"{elapsed:.4f}"})
+                self._write_csv(self.run_dir / "timing.csv", ("generation", "seconds"), self._timing_rows)
                 if st.generation % every == 0 or reached or st.generation >= generations:
                     self.save_checkpoint()
                 self._report(row, generations, reached, target)
@@ -365,15 +371,6 @@ class Evolution:
         digest = checkpoint.save(self.run_dir / "checkpoints" / name, state)
         self.manifest.setdefault("checkpoints", {})[name] = digest
         write_json(self.manifest_path, self.manifest)
-
-    def _append_timing(self, k: int, seconds: float) -> None:
-        path = self.run_dir / "timing.csv"
-        rows = []
-        if path.exists():
-            with open(path, newline="") as f:
-                rows = [r for r in csv.DictReader(f) if int(r["generation"]) < k]
-        rows.append({"generation": k, "seconds": f"{seconds:.4f}"})
-        self._write_csv(path, ("generation", "seconds"), rows)
 
     def _rewrite_history(self) -> None:
         self._write_csv(self.run_dir / "history.csv", HISTORY_FIELDS, self.state.history)

@@ -145,7 +145,6 @@ def run_episodes(
     where = np.arange(rows)
     ret = np.zeros(rows)
     active = np.ones(rows, dtype=bool)
-    policies = np.arange(g)  # original index of each policy still stepped
     movable = getattr(physics, "rows_movable", True)
     policy.reset(s)
     obs = physics.observe(state, params)
@@ -186,7 +185,7 @@ def run_episodes(
                 keep = np.flatnonzero(np.repeat(live, s))
                 returns[where] = ret
                 length[where] = steps
-                policy, policies = smaller, policies[live]
+                policy = smaller
                 where, ret, state, hold, steps, active = (
                     where[keep], ret[keep], state[keep], hold[keep], steps[keep], active[keep]
                 )
