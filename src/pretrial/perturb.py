@@ -15,7 +15,16 @@ scenario, possibly repeated for many genomes):
 * actuator path: the policy's command is delayed by ``actuator_delay_s``,
   passed through a deadband, multiplied by ``actuator_gain``, slew-limited by
   ``actuator_rate_limit`` (full scale per second), lagged by a first-order
-  ``actuator_lag_s`` and clipped to the actuator range [-1, 1].
+  ``actuator_lag_s`` and clipped to the actuator range [-1, 1];
+* timing: with ``control_jitter_s`` each new command reaches the plant
+  ``tau ~ U(0, jitter)`` seconds late (at most one period), the previous one
+  acting until then. The plant sees the time average of the two over the
+  period, ``prev + (1 - tau/dt) (new - prev)``: exact for the impulse the
+  period delivers, a first-order approximation of the path within it.
+
+``control_period_s`` (see :func:`apply_settings`) is the control period
+itself: the plant is rebuilt with that ``dt`` and enough integration substeps
+that the integration step never grows.
 
 Delays are whole control periods because the plant only sees a new action at
 a control step; a delay below half a period rounds to none (stated in reports).
@@ -23,7 +32,10 @@ a control step; a delay below half a period rounds to none (stated in reports).
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -45,9 +57,16 @@ PERTURBATIONS = ParamTable(
         ParamSpec("sensor_bias", "obs unit", 0.0, -1e6, 1e6, "constant offset added to every observation", "sensor"),
         ParamSpec("sensor_delay_s", "s", 0.0, 0.0, 10.0, "age of the observation the policy sees", "sensor"),
         ParamSpec("sensor_quantization", "obs unit", 0.0, 0.0, 1e6, "observation resolution (0 = exact)", "sensor"),
+        ParamSpec(
+            "control_jitter_s", "s", 0.0, 0.0, 10.0, "late arrival of each new command, uniform in [0, value]",
+            "timing",
+        ),
         ParamSpec("start_scale", "-", 1.0, 0.0, 100.0, "multiplier on the start-state ranges", "start"),
     ]
 )
+
+#: the control period as a varied name: the plant is rebuilt with this ``dt`` (not a per-row value)
+CONTROL_PERIOD = "control_period_s"
 
 #: counter offsets so the streams of one scenario never overlap
 _SENSOR_STREAM, _PLANT_STREAM = 0, 1
@@ -69,6 +88,100 @@ def split_names(physics: Physics, names: list[str]) -> tuple[list[str], list[str
         else:
             raise ValueError(unknown_name_message("parameter or perturbation", name, valid))
     return phys, pert
+
+
+def setting_names(physics: Physics) -> list[str]:
+    """Every name a replay ``--set`` or a sweep plan may vary on ``physics``."""
+    return [*physics.param_table.names, *PERTURBATIONS.names, CONTROL_PERIOD]
+
+
+def with_control_period(physics: Physics, period: float) -> Physics:
+    """``physics`` rebuilt with control period ``period`` s and an integration step no longer than before.
+
+    Raises ValueError for a period that is not a positive finite number or a
+    plant that cannot be rebuilt (a plain gymnasium env has its own period).
+    """
+    if not (isinstance(period, (int, float)) and math.isfinite(period) and period > 0):
+        raise ValueError(f"{CONTROL_PERIOD}: {period!r} must be a finite number > 0")
+    if period > physics.time_limit:
+        raise ValueError(f"{CONTROL_PERIOD}: {period!r} is longer than the episode ({physics.time_limit:g} s)")
+    options = physics.options()
+    if "dt" not in options:  # a plain gymnasium env fixes its own period
+        raise ValueError(f"{CONTROL_PERIOD}: {physics.env_id} sets its own control period; it cannot be varied")
+    h = physics.dt / physics.substeps
+    options.update(dt=float(period), substeps=max(1, math.ceil(period / h - 1e-9)))
+    return type(physics)(**options)
+
+
+@dataclass
+class Setup:
+    """A plant with named values set: what a replay ``--set`` or one sweep point runs.
+
+    Attributes
+    ----------
+    physics : Physics
+        The plant (rebuilt when the control period is set).
+    params : dict of str to float
+        Physics parameter overrides (the policy's own, then the settings).
+    perturb : dict of str to float
+        Generic perturbation values (only the ones set).
+    settings : dict of str to float
+        The settings as given, in the order given.
+    """
+
+    physics: Physics
+    params: dict[str, float]
+    perturb: dict[str, float] = field(default_factory=dict)
+    settings: dict[str, float] = field(default_factory=dict)
+
+    def words(self) -> str:
+        """``name=value`` words of the settings, as ``--set`` takes them (empty for nominal)."""
+        return " ".join(f"{k}={v!r}" for k, v in self.settings.items())
+
+
+def apply_settings(physics: Physics, base_params: Mapping[str, float] | None,
+                   settings: Mapping[str, Any] | None) -> Setup:
+    """Resolve named settings into physics overrides, perturbations and the control period.
+
+    Parameters
+    ----------
+    physics : Physics
+        The plant as configured (e.g. as the policy was trained).
+    base_params : mapping, optional
+        Physics overrides already in force (e.g. the policy's ``env.params``).
+    settings : mapping, optional
+        Name -> value for physics parameters, generic perturbations
+        (:data:`PERTURBATIONS`) or ``control_period_s``.
+
+    Raises
+    ------
+    ValueError
+        Naming the setting: unknown (with the nearest valid name), not a
+        number, or outside its valid range.
+    """
+    params = {k: float(v) for k, v in (base_params or {}).items()}
+    perturb: dict[str, float] = {}
+    given: dict[str, float] = {}
+    for name, value in (settings or {}).items():
+        if isinstance(value, bool):
+            raise ValueError(f"{name}: {value!r} is not a number")
+        if name == CONTROL_PERIOD:
+            try:
+                period = float(value)
+            except (TypeError, ValueError):
+                raise ValueError(f"{name}: {value!r} is not a number") from None
+            physics = with_control_period(physics, period)
+            given[name] = period
+            continue
+        spec = spec_of(physics, name) if name in physics.param_table or name in PERTURBATIONS else None
+        if spec is None:
+            raise ValueError(unknown_name_message("parameter or perturbation", name, setting_names(physics)))
+        table = physics.param_table if name in physics.param_table else PERTURBATIONS
+        v = table.check_value(name, value)
+        given[name] = v
+        (params if table is physics.param_table else perturb)[name] = v
+    physics.param_table.resolve(params)  # the combination must be valid too
+    return Setup(physics, params, perturb, given)
 
 
 def spec_of(physics: Physics, name: str) -> ParamSpec:
@@ -116,6 +229,8 @@ class Loop:
         self.act_delay = np.rint(v["actuator_delay_s"] / dt).astype(np.int64)
         self.obs_delay = np.rint(v["sensor_delay_s"] / dt).astype(np.int64)
         self.start_scale = v["start_scale"].copy()
+        self.jitter_frac = np.minimum(v["control_jitter_s"] / dt, 1.0)[:, None]
+        self._jitter_rows = self.jitter_frac > 0
         # Per-row masks: a row whose element is nominal passes values through exactly, so its results never
         # depend on what the other rows of the batch carry (a sweep sample replays alone bit for bit).
         self._sensor_rows = (self.noise_std != 0) | (self.bias != 0) | (self.quantum > 0)
@@ -126,12 +241,15 @@ class Loop:
         self._any_quantum = bool(np.any(self.quantum > 0))
         self._tiny_quantum = bool(np.any((self.quantum > 0) & (self.quantum < 1e-280)))
         self._safe_quantum = np.where(self.quantum > 0, self.quantum, 1.0)
+        self._any_jitter = bool(self._jitter_rows.any())
         self._any_act_shape = bool(
             np.any(self.gain != 1.0) or self._dead_rows.any() or self._slew_rows.any() or self._lag_rows.any()
+            or self._any_jitter
         )
         self._obs_buf: np.ndarray | None = None
         self._act_buf: np.ndarray | None = None
         self._applied: np.ndarray | None = None
+        self._held: np.ndarray | None = None
         self._rows = np.arange(n)
 
     def reset(self, obs0: np.ndarray) -> None:
@@ -142,6 +260,7 @@ class Loop:
         amax = int(self.act_delay.max(initial=0))
         self._act_buf = np.zeros((amax + 1, self.n, a)) if amax else None
         self._applied = np.zeros((self.n, a))
+        self._held = np.zeros((self.n, a))
 
     def sense(self, obs: np.ndarray, step: int) -> np.ndarray:
         """What the policy measures at control step ``step`` from the true ``obs``."""
@@ -180,13 +299,22 @@ class Loop:
         u = np.where(self._lag_rows, prev + self.lag_alpha * (u - prev), u)
         u = np.clip(u, -1.0, 1.0)
         self._applied = u
+        if self._any_jitter:
+            late = self.jitter_frac * self._jitter_draw(step)
+            u = np.where(self._jitter_rows, self._held + (1.0 - late) * (u - self._held), u)
+            self._held = u
         return u
+
+    def _jitter_draw(self, step: int) -> np.ndarray:
+        # the lane after the plant's noise lanes of the plant stream: no other draw changes
+        k = self.physics.noise_dim
+        return streams.uniform(self.keys, _STREAMS * step + _PLANT_STREAM, 2 * k + 1)[:, -1:]
 
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
         for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
                      "act_delay", "obs_delay", "start_scale", "_applied", "_sensor_rows", "_dead_rows", "_slew_rows",
-                     "_lag_rows", "_safe_quantum"):
+                     "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows", "_held"):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]

@@ -526,3 +526,24 @@ def load_policy(path: str | os.PathLike[str]) -> Policy:
     except (ValueError, RecursionError) as exc:  # e.g. an integer of thousands of digits, absurd nesting
         raise FileFormatError(f"{name}: not a usable JSON document ({type(exc).__name__}: {exc})") from None
     return Policy.from_dict(doc, name)
+
+
+#: the file a run directory keeps its champion in
+CHAMPION_FILE = "champion.json"
+
+
+def open_policy(path: str | os.PathLike[str]) -> Policy:
+    """A policy from a policy file or a run directory (its ``champion.json``).
+
+    Raises
+    ------
+    FileFormatError
+        As :func:`load_policy`; for a directory without a champion, says so.
+    """
+    p = Path(path)
+    if p.is_dir():
+        champion = p / CHAMPION_FILE
+        if not champion.is_file():
+            raise FileFormatError(f"{p}: is a directory without a {CHAMPION_FILE} (not a finished run directory)")
+        return load_policy(champion)
+    return load_policy(p)

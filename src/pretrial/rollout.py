@@ -63,30 +63,61 @@ def draw_scenarios(
 
     ``base_params`` are the run's physics overrides; ``ranges`` maps physics or
     perturbation names to (low, high); ``fixed`` sets names to given values
-    (scalars or (n,) arrays). Everything is a pure function of ``seed``.
+    (scalars or (n,) arrays). Everything is a pure function of ``seed``; with
+    no ``ranges``, scenario ``e`` is episode ``e`` of the seed (see
+    :func:`keyed_scenarios`), whatever ``n`` is.
     """
-    ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
-    values_ss, start_ss, keys_ss = ss.spawn(3)
-    rng = np.random.default_rng(values_ss)
-    params = physics.param_table.resolve_batch(base_params, n)
-    perturb: dict[str, np.ndarray] = {}
-    table = physics.param_table
+    if isinstance(seed, np.random.SeedSequence):
+        seed = int(seed.generate_state(1, dtype=np.uint64)[0])
+    seed = int(seed)
     settings: dict[str, np.ndarray] = {}
-    # draw in sorted name order so adding a name never reshuffles the others' draws
-    for name in sorted(ranges or {}):
-        lo, hi = ranges[name]
-        settings[name] = rng.uniform(lo, hi, n) if hi > lo else np.full(n, float(lo))
+    if ranges:
+        rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
+        # draw in sorted name order so adding a name never reshuffles the others' draws
+        for name in sorted(ranges):
+            lo, hi = ranges[name]
+            settings[name] = rng.uniform(lo, hi, n) if hi > lo else np.full(n, float(lo))
     for name, value in (fixed or {}).items():
         settings[name] = np.broadcast_to(np.asarray(value, float), (n,)).copy()
-    for name, v in settings.items():
+    params = physics.param_table.resolve_batch(base_params, n)
+    return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
+
+
+def keyed_scenarios(
+    physics: Physics,
+    seeds: np.ndarray,
+    episodes: np.ndarray,
+    params: np.ndarray,
+    settings: Mapping[str, np.ndarray] | None = None,
+) -> Scenarios:
+    """Scenarios whose start state and random streams are episode ``episodes[i]`` of seed ``seeds[i]``.
+
+    Row ``i`` depends on ``(seeds[i], episodes[i])`` and its own parameter
+    and perturbation values only, so a sweep sample replays alone with
+    ``pretrial replay --seed SEED --set ...`` to the same outcome.
+
+    Parameters
+    ----------
+    seeds : (n,) uint64 array
+    episodes : (n,) int array
+    params : (n, P) array
+        Physics parameter rows (settings for physics names are written into a copy).
+    settings : mapping of str to (n,) array, optional
+        Physics parameter or generic perturbation values per row.
+    """
+    params = np.array(params, dtype=float)
+    table = physics.param_table
+    perturb: dict[str, np.ndarray] = {}
+    for name, v in (settings or {}).items():
         if name in table:
             params[:, table.index(name)] = v
         else:
             PERTURBATIONS.index(name)
-            perturb[name] = v
+            perturb[name] = np.asarray(v, dtype=float)
+    keys = streams.episode_keys(seeds, episodes)
     scale = perturb.get("start_scale", 1.0)
-    start = physics.sample_start(np.random.default_rng(start_ss), params, scale)
-    return Scenarios(params, start, streams.scenario_keys(keys_ss, n), perturb)
+    start = physics.sample_start(streams.RowDraws(keys), params, scale)
+    return Scenarios(params, start, keys, perturb)
 
 
 @dataclass

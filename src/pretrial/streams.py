@@ -48,3 +48,51 @@ def normal(keys: np.ndarray, counter: int, dim: int) -> np.ndarray:
     """Standard normal draws, shape (len(keys), dim), for draw number ``counter``."""
     u = uniform(keys, counter, 2 * dim)
     return np.sqrt(-2.0 * np.log(u[:, :dim])) * np.cos(_TWO_PI * u[:, dim:])
+
+
+#: draw number of the start-state draws (the control loop's counters, 2 per step, never reach it)
+START_COUNTER = 2**63 - 1
+
+
+def episode_keys(seeds: np.ndarray | int, episodes: np.ndarray) -> np.ndarray:
+    """Key of episode ``e`` of integer seed ``N``: a function of ``(N, e)`` only.
+
+    So episode 3 of seed 42 is the same episode in a batch of 10,000 (a sweep)
+    and alone (``pretrial replay --seed 42 --episodes 4``, its fourth one).
+    """
+    s = np.broadcast_to(np.asarray(seeds, dtype=np.uint64), np.shape(episodes))
+    with np.errstate(over="ignore"):
+        return _mix(_mix(s + _GOLDEN) + np.asarray(episodes, dtype=np.uint64) * _STEP + _GOLDEN)
+
+
+class RowDraws:
+    """The part of :class:`numpy.random.Generator` that start-state samplers use, row-keyed.
+
+    Row ``i`` of every draw depends only on ``keys[i]`` and on how many draws
+    came before, never on the other rows.
+    """
+
+    def __init__(self, keys: np.ndarray, counter: int = START_COUNTER):
+        self.keys = np.asarray(keys, dtype=np.uint64)
+        self._counter = int(counter)
+
+    def _unit(self, size: int | tuple[int, ...] | None) -> np.ndarray:
+        n = len(self.keys)
+        shape = (n,) if size is None else ((size,) if isinstance(size, int) else tuple(size))
+        if shape[0] != n:
+            raise ValueError(f"RowDraws draws one row per key ({n}), not shape {shape}")
+        dim = int(np.prod(shape[1:], dtype=np.int64))
+        u = uniform(self.keys, self._counter, max(dim, 1))
+        self._counter -= 1
+        return (u[:, 0] if len(shape) == 1 else u.reshape(shape)) - _INV_2_53  # [0, 1)
+
+    def uniform(self, low: float = 0.0, high: float = 1.0,
+                size: int | tuple[int, ...] | None = None) -> np.ndarray:
+        """Uniform draws in [low, high), first axis one row per key."""
+        return low + (high - low) * self._unit(size)
+
+    def integers(self, low: int, high: int | None = None, size: int | tuple[int, ...] | None = None) -> np.ndarray:
+        """Whole numbers in [low, high), first axis one row per key."""
+        if high is None:
+            low, high = 0, low
+        return low + np.floor(self._unit(size) * (high - low)).astype(np.int64)
