@@ -15,7 +15,21 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .core import Array, ParamSpec, ParamTable, Physics, PhysicsEnv, PhysicsVectorEnv
+from .core import (
+    Array,
+    EpisodeMetric,
+    ParamSpec,
+    ParamTable,
+    Physics,
+    PhysicsEnv,
+    PhysicsVectorEnv,
+    TraceLimit,
+    column_sums,
+    holds_from,
+    masked_max,
+    state_mask,
+    tail_mask,
+)
 
 #: Tilt of the long pole at the start of the two-pole benchmark, rad (0.07 rad, about 4 degrees;
 #: the value used with Stanley & Miikkulainen 2002, from memory).
@@ -94,6 +108,10 @@ TWO_POLE_PARAMS = ParamTable(
 ANGLE_WEIGHT = 0.5
 OFFSET_WEIGHT = 0.25
 
+#: settled = every |theta| within this fraction of fail_angle and |x| within it of the track half-length
+#: (our choice for a balancing task, which has no step to take a 2 % band of)
+SETTLE_FRACTION = 0.1
+
 _REWARD_DOC = (
     f"each control period without failure: 1 - {ANGLE_WEIGHT} * mean_i (theta_i / fail_angle)^2 "
     f"- {OFFSET_WEIGHT} * (x / track_half_length)^2, so between 0.25 and 1; 0 for the period that fails"
@@ -141,6 +159,8 @@ class CartPolePhysics(Physics):
     default_integrator = "rk4"
     default_time_limit = 10.0
     default_start_spread: ClassVar[Mapping[str, float]] = {"x": 0.05, "x_dot": 0.05, "theta": 0.05, "theta_dot": 0.05}
+    #: the track friction of Florian 2007 is Coulomb (two poles: ``cart_friction_force``)
+    coulomb_params: tuple[str, ...] = ("cart_friction",)
 
     def __init__(self, poles: int = 1, observe: str = "full", **kwargs: Any):
         if isinstance(poles, bool) or not isinstance(poles, (int, np.integer)) or int(poles) not in POLE_COUNTS:
@@ -151,6 +171,7 @@ class CartPolePhysics(Physics):
         self.observe_mode = observe
         if self.poles == 2:
             self.param_table = TWO_POLE_PARAMS
+            self.coulomb_params = ("cart_friction_force",)
             self.state_names = ("x", "x_dot", "theta1", "theta1_dot", "theta2", "theta2_dot")
             self.state_units = ("m", "m/s", "rad", "rad/s", "rad", "rad/s")
             # The benchmark starts every trial from the same state (Stanley & Miikkulainen 2002).
@@ -366,6 +387,48 @@ class CartPolePhysics(Physics):
             center[:, 2] = TWO_POLE_START_TILT
         return center
 
+    # ----------------------------------------------------------- measures
+    def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
+        """The generic measures (:meth:`Physics.episode_metrics`) plus the balancing ones.
+
+        * ``peak_angle`` (rad): largest |theta| of any pole over the episode.
+        * ``peak_cart_excursion`` (m): largest |x| over the episode.
+        * ``settling_time`` (s): first time after which every |theta| stays
+          within ``SETTLE_FRACTION`` (10 %) of ``fail_angle`` and |x| within
+          10 % of ``track_half_length`` to the end of the episode; inf: never.
+        * ``residual_angle_rms`` (rad): RMS of the largest |theta| over the
+          last ``RESIDUAL_WINDOW_S`` (2 s) of the episode (all of it if shorter).
+        """
+        out = super().episode_metrics(states, actions, params, steps)
+        states = np.asarray(states, dtype=float)
+        n = states.shape[0]
+        valid = state_mask(n, steps)
+        angle = np.abs(states[:, :, 2::2]).max(axis=2)  # (T+1, N): the worst pole at each instant
+        x = np.abs(states[:, :, 0])
+        band = SETTLE_FRACTION * params[:, self._col["fail_angle"]]
+        room = SETTLE_FRACTION * params[:, self._col["track_half_length"]]
+        tail = tail_mask(n, steps, self.dt)
+        residual = np.sqrt(column_sums(np.where(tail, angle * angle, 0.0)) / np.maximum(tail.sum(axis=0), 1))
+        out["peak_angle"] = EpisodeMetric(masked_max(angle, valid), "rad", "largest |theta| of any pole")
+        out["peak_cart_excursion"] = EpisodeMetric(masked_max(x, valid), "m", "largest |x| of the cart")
+        out["settling_time"] = EpisodeMetric(
+            holds_from((angle <= band) & (x <= room), steps, self.dt), "s",
+            f"first time after which |theta| <= {SETTLE_FRACTION:g} fail_angle and |x| <= {SETTLE_FRACTION:g} "
+            "track_half_length hold to the end (inf: never)",
+        )
+        out["residual_angle_rms"] = EpisodeMetric(
+            residual, "rad", "RMS of the largest |theta| over the last 2 s of the episode"
+        )
+        return out
+
+    def trace_limits(self, params: Array) -> dict[str, list[TraceLimit]]:
+        fail = float(params[self._col["fail_angle"]])
+        track = float(params[self._col["track_half_length"]])
+        out = {"x": [TraceLimit(-track, track, "track ends")]}
+        for name in self.state_names[2::2]:
+            out[name] = [TraceLimit(-fail, fail, "fail_angle")]
+        return out
+
     # ----------------------------------------------------------- drawing
     def draw(self, ax: Any, state: Array, params: Array) -> None:
         from matplotlib.patches import Rectangle
@@ -532,6 +595,21 @@ class CartPoleEnv(PhysicsEnv):
     RK4 step of 0.01 s with the nominal masses.
 
     Pivot friction is viscous (torque ``-mu_p theta_dot``), as in Florian 2007.
+
+    Metrics
+    -------
+    What ``pretrial replay`` measures per episode (besides the generic
+    ``effort_rms_force``, RMS of the command as a fraction of full scale, and
+    ``saturated_fraction``, the fraction of periods at >= 0.999 of full scale):
+
+    ==================== ===== ===================================================
+    peak_angle           rad   largest |theta| of any pole
+    peak_cart_excursion  m     largest |x|
+    settling_time        s     first time after which every |theta| <= 0.1
+                               fail_angle and |x| <= 0.1 track_half_length hold
+                               to the end (inf: never)
+    residual_angle_rms   rad   RMS of the largest |theta| over the last 2 s
+    ==================== ===== ===================================================
     """
 
     physics_type = CartPolePhysics

@@ -218,6 +218,77 @@ class Transition(NamedTuple):
     steps: Array  # (N,) control periods since reset
 
 
+#: an applied command at or beyond this fraction of full scale counts as saturated (a hair below 1,
+#: so commands clipped to the limit and then rounded still count)
+SATURATION_LEVEL = 0.999
+
+#: residual measures (e.g. residual sway) look at the last this many seconds of an episode
+RESIDUAL_WINDOW_S = 2.0
+
+
+class EpisodeMetric(NamedTuple):
+    """One task measure per episode, from :meth:`Physics.episode_metrics`."""
+
+    values: Array  # (N,) one value per episode; inf means "never" (e.g. never settled)
+    unit: str
+    meaning: str
+    worst: str = "max"  # "max": larger is worse; "min": smaller is worse (e.g. a separation)
+
+
+class TraceLimit(NamedTuple):
+    """A task limit on one state, for plots of the state against time."""
+
+    low: float
+    high: float
+    label: str
+    kind: str = "limit"  # "limit": lines at low and high; "band": the region between (a tolerance)
+
+
+def state_mask(n_states: int, steps: Array) -> Array:
+    """(n_states, N) bool: recorded state k of episode i belongs to it (k <= steps[i])."""
+    return np.arange(n_states)[:, None] <= np.asarray(steps)[None, :]
+
+
+def tail_mask(n_states: int, steps: Array, dt: float, window: float = RESIDUAL_WINDOW_S) -> Array:
+    """(n_states, N) bool: the states of the last ``window`` seconds of each episode (all if shorter)."""
+    k = np.arange(n_states)[:, None]
+    steps = np.asarray(steps)[None, :]
+    return (k <= steps) & (k >= steps - int(round(window / dt)))
+
+
+def masked_max(values: Array, mask: Array) -> Array:
+    """Per-column maximum of ``values`` (T, N) over ``mask``; -inf for an empty column."""
+    return np.where(mask, values, -np.inf).max(axis=0)
+
+
+def masked_min(values: Array, mask: Array) -> Array:
+    """Per-column minimum of ``values`` (T, N) over ``mask``; inf for an empty column."""
+    return np.where(mask, values, np.inf).min(axis=0)
+
+
+def column_sums(values: Array) -> Array:
+    """Per-column sums of ``values`` (T, N), each summed alone, so a column's sum never depends on N.
+
+    (numpy sums a contiguous run pairwise but accumulates across rows naively, so
+    ``values.sum(axis=0)`` can differ in the last bit between a batch and a single episode.)
+    """
+    return np.ascontiguousarray(np.asarray(values, dtype=float).T).sum(axis=1)
+
+
+def holds_from(ok: Array, steps: Array, dt: float) -> Array:
+    """Settling time: the first ``k dt`` such that ``ok`` holds at every state from k to the episode's end.
+
+    ``ok`` is (T+1, N) for the recorded states 0..T; states after ``steps[i]``
+    are ignored. inf where the episode's last state is not ``ok`` (never settled).
+    """
+    n = ok.shape[0]
+    steps = np.asarray(steps)
+    bad = state_mask(n, steps) & ~np.asarray(ok, bool)
+    last_bad = n - 1 - np.argmax(bad[::-1], axis=0)
+    first = np.where(bad.any(axis=0), last_bad + 1, 0)
+    return np.where(first <= steps, first * dt, np.inf)
+
+
 class Physics:
     """A plant and its task, vectorized over a batch of N instances.
 
@@ -275,6 +346,9 @@ class Physics:
     default_integrator: ClassVar[str] = "rk4"
     default_time_limit: ClassVar[float] = 10.0
     default_start_spread: ClassVar[Mapping[str, float]] = {}
+    #: parameters that scale Coulomb (dry) friction terms; linear analyses set them to 0,
+    #: because a sign function has no derivative at rest (see :mod:`pretrial.linear`)
+    coulomb_params: tuple[str, ...] = ()
 
     def __init__(
         self,
@@ -365,6 +439,15 @@ class Physics:
         """Centre of the start distribution (N, S); default the origin."""
         return np.zeros((params.shape[0], self.state_dim))
 
+    def target_state(self, params: Array) -> Array:
+        """The state the task aims to hold, (N, S); default the origin.
+
+        Linear analyses look for the closed-loop equilibrium near it and the
+        LQR baseline is designed around it, so it should be a rest state of
+        the plant (for a reach task: at the goal, at rest).
+        """
+        return np.zeros((params.shape[0], self.state_dim))
+
     def advance_disturbance(self, state: Array, params: Array, noise: Array) -> Array:
         """Update disturbance states once per control period (held within it)."""
         return state
@@ -372,6 +455,67 @@ class Physics:
     def draw(self, ax: Any, state: Array, params: Array) -> None:
         """Draw one instance on a matplotlib Axes (state (S,), params (P,))."""
         raise NotImplementedError
+
+    def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
+        """Task measures of recorded episodes, vectorized over the episodes.
+
+        Parameters
+        ----------
+        states : (T+1, N, S) array
+            States at t = 0, dt, ..., T dt; an episode that ended after
+            ``steps[i] < T`` periods keeps its last state in later rows.
+        actions : (T, N, A) array
+            Applied actions in [-1, 1] (after the loop's perturbations).
+        params : (N, P) array
+        steps : (N,) int array
+            Control periods each episode lasted; only those count.
+
+        Returns
+        -------
+        dict of str to EpisodeMetric
+            Generic measures, for every plant:
+
+            * ``effort_rms_<action>``: root mean square of the applied
+              command over the episode, as a fraction of full scale (the
+              action in [-1, 1], not physical units, so that it means the same
+              on every plant; 1 = always at a limit).
+            * ``saturated_fraction`` (-): fraction of control periods in which
+              any command is at ``>= SATURATION_LEVEL`` (0.999) of full scale.
+            * ``settling_time`` (s, reach tasks): the first time after which
+              the goal rule (:meth:`in_goal`) holds at every state to the end
+              of the episode; inf if the last state is outside it.
+
+            Subclasses add their own (see each env's docstring).
+        """
+        states = np.asarray(states, dtype=float)
+        actions = np.asarray(actions, dtype=float)
+        steps = np.asarray(steps, dtype=np.int64)
+        counted = np.arange(actions.shape[0])[:, None] < steps[None, :]
+        periods = np.maximum(steps, 1)
+        out: dict[str, EpisodeMetric] = {}
+        for j, name in enumerate(self.action_names):
+            a = np.where(counted, actions[:, :, j], 0.0)
+            out[f"effort_rms_{name}"] = EpisodeMetric(
+                np.sqrt(column_sums(a * a) / periods), "full scale",
+                f"RMS of the applied {name} command as a fraction of full scale (1 = always at a limit)",
+            )
+        saturated = (np.abs(actions) >= SATURATION_LEVEL).any(axis=2) & counted
+        out["saturated_fraction"] = EpisodeMetric(
+            saturated.sum(axis=0) / periods, "-",
+            f"fraction of control periods with a command at >= {SATURATION_LEVEL:g} of full scale",
+        )
+        if self.success_mode == "reach":
+            n, rows = states.shape[:2]
+            ok = self.in_goal(states.reshape(n * rows, -1), np.tile(params, (n, 1))).reshape(n, rows)
+            out["settling_time"] = EpisodeMetric(
+                holds_from(ok, steps, self.dt), "s",
+                "first time after which the goal rule holds to the end of the episode (inf: never)",
+            )
+        return out
+
+    def trace_limits(self, params: Array) -> dict[str, list[TraceLimit]]:
+        """Task limits per state name, for plots of states against time (params (P,)); default none."""
+        return {}
 
     # ----------------------------------------------------------- provided
     def integrate(self, state: Array, force: Array, params: Array) -> Array:

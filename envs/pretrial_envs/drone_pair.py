@@ -12,7 +12,19 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .core import Array, ParamSpec, ParamTable, Physics, PhysicsEnv, PhysicsVectorEnv
+from .core import (
+    Array,
+    EpisodeMetric,
+    ParamSpec,
+    ParamTable,
+    Physics,
+    PhysicsEnv,
+    PhysicsVectorEnv,
+    TraceLimit,
+    masked_max,
+    masked_min,
+    state_mask,
+)
 
 #: Frame sign per drone: drone 0 sees the world frame, drone 1 the world mirrored in x.
 MIRROR = np.array([1.0, -1.0])
@@ -207,6 +219,62 @@ class DronePairPhysics(Physics):
         s[[1, 7]] = gz
         s[ROTORS] = 0.5 * self.param(params, "mass") * self.param(params, "gravity")
         return np.ascontiguousarray(s.T)
+
+    def target_state(self, params: Array) -> Array:
+        """Each drone hovering level at its goal: rotors at m g / 2 (N), velocities and gust 0."""
+        s = np.zeros((self.state_dim, params.shape[0]))
+        gx, gz = self.goals(params)
+        s[[0, 6]] = gx
+        s[[1, 7]] = gz
+        s[ROTORS] = 0.5 * self.param(params, "mass") * self.param(params, "gravity")
+        return np.ascontiguousarray(s.T)
+
+    # ----------------------------------------------------------- measures
+    def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
+        """The generic measures (:meth:`Physics.episode_metrics`, incl. ``settling_time``) plus the pair's.
+
+        * ``min_separation`` (m): smallest centre-to-centre distance of the
+          drones over the episode (worst = smallest).
+        * ``peak_path_deviation`` (m): largest distance of either drone from
+          the straight segment between its own start position (the episode's
+          first state) and its goal.
+        """
+        out = super().episode_metrics(states, actions, params, steps)
+        st = np.asarray(states, dtype=float)
+        valid = state_mask(st.shape[0], steps)
+        sep = np.hypot(st[:, :, 0] - st[:, :, 6], st[:, :, 1] - st[:, :, 7])
+        gx, gz = self.goals(params)
+        deviation = np.full(st.shape[:2], -np.inf)
+        for i in (0, 1):
+            px, pz = st[:, :, 6 * i], st[:, :, 6 * i + 1]  # (T+1, N)
+            ux, uz = gx[i] - px[0], gz[i] - pz[0]
+            span = ux * ux + uz * uz
+            # nearest point of the segment: projection clipped to its ends (a zero-length one is its start)
+            along = np.clip(((px - px[0]) * ux + (pz - pz[0]) * uz) / np.where(span > 0, span, 1.0), 0.0, 1.0)
+            d = np.hypot(px - px[0] - along * ux, pz - pz[0] - along * uz)
+            deviation = np.maximum(deviation, d)
+        out["min_separation"] = EpisodeMetric(
+            masked_min(sep, valid), "m", "smallest centre-to-centre distance of the drones", "min"
+        )
+        out["peak_path_deviation"] = EpisodeMetric(
+            masked_max(deviation, valid), "m", "largest distance of a drone from the straight line start -> goal"
+        )
+        return out
+
+    def trace_limits(self, params: Array) -> dict[str, list[TraceLimit]]:
+        p = dict(zip(PARAMS.names, map(float, params), strict=True))
+        hw, tol = p["field_half_width"], p["goal_tolerance"]
+        out: dict[str, list[TraceLimit]] = {}
+        for i, goal in enumerate(p["start_x"] * MIRROR):
+            out[f"d{i}_x"] = [TraceLimit(-hw, hw, "field"), TraceLimit(goal - tol, goal + tol, f"d{i} goal", "band")]
+            out[f"d{i}_z"] = [
+                TraceLimit(0.0, p["field_height"], "ground / ceiling"),
+                TraceLimit(p["start_height"] - tol, p["start_height"] + tol, "goal height", "band"),
+            ]
+            out[f"d{i}_pitch"] = [TraceLimit(-p["pitch_limit"], p["pitch_limit"], "pitch_limit")]
+        for name in self.state_names[ROTORS]:
+            out[name] = [TraceLimit(0.0, p["max_thrust"], "thrust range")]
+        return out
 
     def _distances(self, state: Array, params: Array) -> tuple[Array, Array, Array]:
         """Distance to goal (2, N), speed (2, N) and separation (N,)."""
@@ -414,6 +482,19 @@ _DOC = r"""Two planar quadrotors swap places across a field without coming too c
     5. ``diverged``: the integration produced a non-finite or huge state.
 
     Truncation (``timeout``) after ``time_limit`` (10 s by default).
+
+    ## Metrics
+
+    What ``pretrial replay`` measures per episode, besides the generic
+    ``effort_rms_<rotor>`` (RMS of the command, fraction of full scale) and
+    ``saturated_fraction`` (fraction of periods with a command at >= 0.999 of
+    full scale, either end):
+
+    | Metric                | Unit | Definition                                                    |
+    |-----------------------|------|---------------------------------------------------------------|
+    | `settling_time`       | s    | first time after which the goal rule holds to the end (inf: never) |
+    | `min_separation`      | m    | smallest centre-to-centre distance of the drones              |
+    | `peak_path_deviation` | m    | largest distance of a drone from the segment start -> goal    |
 
     ## Arguments
 

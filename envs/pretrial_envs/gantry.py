@@ -34,7 +34,19 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .core import Array, ParamSpec, ParamTable, Physics, PhysicsEnv, PhysicsVectorEnv
+from .core import (
+    Array,
+    EpisodeMetric,
+    ParamSpec,
+    ParamTable,
+    Physics,
+    PhysicsEnv,
+    PhysicsVectorEnv,
+    TraceLimit,
+    masked_max,
+    state_mask,
+    tail_mask,
+)
 
 #: Speed over which the Coulomb friction sign is smoothed: F_c tanh(v / V).
 #: tanh(v) has the sign of v, so the smoothed friction power -F_c v tanh(v/V)
@@ -150,6 +162,7 @@ class GantryPhysics(Physics):
     default_integrator: ClassVar[str] = "rk4"
     default_time_limit: ClassVar[float] = 15.0
     default_start_spread: ClassVar[dict[str, float]] = {"x": 0.05, "x_dot": 0.02, "phi": 0.02, "phi_dot": 0.02}
+    coulomb_params: tuple[str, ...] = ("trolley_coulomb",)
 
     def __init__(self, hoist: bool = False, **kwargs: Any):
         if not isinstance(hoist, (bool, np.bool_)):
@@ -331,6 +344,62 @@ class GantryPhysics(Physics):
             center[:, 4] = params[:, self._col["rope_length"]]
         return center
 
+    def target_state(self, params: Array) -> Array:
+        """Load at rest hanging straight down over ``target_x`` (rope at ``rope_length`` with the hoist)."""
+        target = np.zeros((params.shape[0], self.state_dim))
+        target[:, 0] = params[:, self._col["target_x"]]
+        if self.hoist:
+            target[:, 4] = params[:, self._col["rope_length"]]
+        return target
+
+    # ----------------------------------------------------------- measures
+    def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
+        """The generic measures (:meth:`Physics.episode_metrics`, incl. ``settling_time``) plus the crane's.
+
+        * ``peak_sway`` (rad): largest |phi| over the episode.
+        * ``residual_sway`` (rad): largest |phi| over the last
+          ``RESIDUAL_WINDOW_S`` (2 s) of the episode (all of it if shorter).
+        * ``overshoot`` (m): how far the load's horizontal position went past
+          ``target_x``, in the direction from its start towards the target
+          (0 if it never passed it).
+        """
+        out = super().episode_metrics(states, actions, params, steps)
+        states = np.asarray(states, dtype=float)
+        n, rows = states.shape[:2]
+        valid = state_mask(n, steps)
+        phi = np.abs(states[:, :, 2])
+        load = self.load_x(states.reshape(n * rows, -1), np.tile(params, (n, 1))).reshape(n, rows)
+        target = params[:, self._col["target_x"]]
+        heading = np.sign(target - load[0])
+        heading = np.where(heading == 0, 1.0, heading)  # starting on the target: either way is past it
+        out["peak_sway"] = EpisodeMetric(masked_max(phi, valid), "rad", "largest |phi| (rope angle)")
+        out["residual_sway"] = EpisodeMetric(
+            masked_max(phi, tail_mask(n, steps, self.dt)), "rad", "largest |phi| over the last 2 s of the episode"
+        )
+        out["overshoot"] = EpisodeMetric(
+            np.maximum(masked_max(heading * (load - target), valid), 0.0), "m",
+            "farthest the load went past target_x (from its start's side)",
+        )
+        return out
+
+    def trace_limits(self, params: Array) -> dict[str, list[TraceLimit]]:
+        c_ = self._col
+        rail = float(params[c_["rail_half_length"]])
+        out = {
+            "x": [TraceLimit(-rail, rail, "rail ends")],
+            "phi": [
+                TraceLimit(-float(params[c_["max_sway"]]), float(params[c_["max_sway"]]), "max_sway"),
+                TraceLimit(-float(params[c_["sway_tolerance"]]), float(params[c_["sway_tolerance"]]),
+                           "sway_tolerance", "band"),
+            ],
+            "phi_dot": [TraceLimit(-float(params[c_["sway_rate_tolerance"]]), float(params[c_["sway_rate_tolerance"]]),
+                                   "sway_rate_tolerance", "band")],
+        }
+        if self.hoist:
+            out["l"] = [TraceLimit(float(params[c_["min_rope_length"]]), float(params[c_["max_rope_length"]]),
+                                   "rope length limits")]
+        return out
+
     # ----------------------------------------------------------- drawing
     def draw(self, ax: Any, state: Array, params: Array) -> None:
         from matplotlib.patches import Circle, Rectangle
@@ -498,6 +567,19 @@ class GantryEnv(PhysicsEnv):
     * ``load_drag``: quadratic drag ``-k |v - w| (v - w)`` on the load, with
       ``v`` the load velocity and ``w = (wind_speed, 0)`` the air velocity. The
       wind acts only through this drag: with ``load_drag = 0`` it has no effect.
+
+    ## Metrics
+
+    What ``pretrial replay`` measures per episode, besides the generic
+    ``effort_rms_<action>`` (RMS of the command, fraction of full scale) and
+    ``saturated_fraction`` (fraction of periods at >= 0.999 of full scale):
+
+    | Metric          | Unit | Definition                                                          |
+    |-----------------|------|---------------------------------------------------------------------|
+    | `settling_time` | s    | first time after which the goal rule holds to the end (inf: never)  |
+    | `peak_sway`     | rad  | largest abs(phi)                                                    |
+    | `residual_sway` | rad  | largest abs(phi) over the last 2 s of the episode                   |
+    | `overshoot`     | m    | farthest the load went past target_x, seen from its start's side    |
 
     ## Equations and source
 

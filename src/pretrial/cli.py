@@ -223,11 +223,17 @@ Command = tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argpar
 COMMANDS: list[Command] = [
     ("envs", _configure_envs, _run_envs),
     ("evolve", _configure_evolve, _run_evolve),
+    ("replay", lambda p: __import__("pretrial.replay", fromlist=["configure_cli"]).configure_cli(p),
+     lambda a: __import__("pretrial.replay", fromlist=["run_cli"]).run_cli(a)),
+    ("export", lambda p: __import__("pretrial.export", fromlist=["configure_cli"]).configure_cli(p),
+     lambda a: __import__("pretrial.export", fromlist=["run_cli"]).run_cli(a)),
 ]
 
 HELP = {
     "envs": "list the environments, or show one's parameters, spaces and success rule",
     "evolve": "evolve a controller with NEAT from a run config",
+    "replay": "replay a policy (or the LQR baseline) and measure what it does",
+    "export": "write a policy as dependency-free C99 or Python for the target",
 }
 
 
