@@ -12,14 +12,20 @@ gymnasium); the target is R >= 0.7.
 
 from __future__ import annotations
 
-import argparse
-import time
+import os
 
-import gymnasium as gym
-import numpy as np
-from gymnasium.envs.classic_control.cartpole import CartPoleVectorEnv
+# one core: set before numpy loads its BLAS / OpenMP runtime
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"
 
-import pretrial_envs  # noqa: F401  (registers the pretrial/ ids with gymnasium)
+import argparse  # noqa: E402
+import time  # noqa: E402
+
+import gymnasium as gym  # noqa: E402
+import numpy as np  # noqa: E402
+from gymnasium.envs.classic_control.cartpole import CartPoleVectorEnv  # noqa: E402
+
+import pretrial_envs  # noqa: E402, F401  (registers the pretrial/ ids with gymnasium)
 
 
 def steps_per_second(env, actions, steps: int, repeats: int = 3) -> float:

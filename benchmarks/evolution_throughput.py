@@ -38,24 +38,29 @@ Target: N >= 30; the product's bar (DESIGN.md) is 100.
 
 from __future__ import annotations
 
-import argparse
-import cProfile
 import os
-import pstats
-import statistics
-import tempfile
-import time
-from typing import Any
 
-import gymnasium
-import neat
-import numpy as np
+# one core: set before numpy loads its BLAS / OpenMP runtime
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"
 
-from pretrial.config import neat_defaults
-from pretrial.network import stack_genomes
-from pretrial.policy import IOMap, PopulationPolicy
-from pretrial.rollout import Outcome, draw_scenarios, run_episodes
-from pretrial_envs.cartpole import CartPolePhysics
+import argparse  # noqa: E402
+import cProfile  # noqa: E402
+import pstats  # noqa: E402
+import statistics  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from typing import Any  # noqa: E402
+
+import gymnasium  # noqa: E402
+import neat  # noqa: E402
+import numpy as np  # noqa: E402
+
+from pretrial.config import neat_defaults  # noqa: E402
+from pretrial.network import stack_genomes  # noqa: E402
+from pretrial.policy import IOMap, PopulationPolicy  # noqa: E402
+from pretrial.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
+from pretrial_envs.cartpole import CartPolePhysics  # noqa: E402
 
 HORIZON = 500  # CartPole-v1's max_episode_steps; pretrial: 10 s at dt 0.02
 GYM_PARAMS = {"gravity": 9.8, "cart_friction": 0.0, "pole_friction": 0.0}

@@ -299,6 +299,23 @@ class DronePairPhysics(Physics):
         # The first word in failure_modes order wins when several apply.
         return np.select([collision, crashed, out, flipped], [1, 2, 3, 4], 0).astype(np.int64)
 
+    def constraint_slack(self, state: Array, force: Array, params: Array) -> Array:
+        """Smallest normalized margin of the four failure rules, over both drones.
+
+        Separation ``sep / min_separation - 1``; ground ``z_low / start_height``
+        (lower rotor height); field ``1 - |x| / field_half_width`` and
+        ``1 - z / field_height``; attitude ``1 - |pitch| / pitch_limit``.
+        """
+        st = state.T
+        x, z, pitch = st[[0, 6]], st[[1, 7]], st[_PITCH]
+        p = self.param
+        sep = np.hypot(st[0] - st[6], st[1] - st[7]) / p(params, "min_separation") - 1.0
+        ground = (z - p(params, "arm_length") * np.abs(np.sin(pitch))) / p(params, "start_height")
+        field = np.minimum(1.0 - np.abs(x) / p(params, "field_half_width"), 1.0 - z / p(params, "field_height"))
+        tilt = 1.0 - np.abs(pitch) / p(params, "pitch_limit")
+        worst = np.minimum(np.minimum(ground, field), tilt).min(axis=0)
+        return np.minimum(worst, sep)
+
     def in_goal(self, state: Array, params: Array) -> Array:
         dist, speed, _ = self._distances(state, params)
         settled = (dist <= self.param(params, "goal_tolerance")) & (speed <= self.param(params, "goal_speed"))

@@ -306,6 +306,14 @@ class GantryPhysics(Physics):
         code = np.where(sway, 2, code)
         return np.where(rail, 1, code)
 
+    def constraint_slack(self, state: Array, force: Array, params: Array) -> Array:
+        """Smallest of ``1 - |x| / rail_half_length``, ``1 - |phi| / max_sway`` and tension / (m g)."""
+        c_ = self._col
+        weight = params[:, c_["load_mass"]] * params[:, c_["gravity"]]
+        rope = np.minimum(self.rope_tension(state, force, params) / weight, 1.0)
+        rail = 1.0 - np.abs(state[:, 0]) / params[:, c_["rail_half_length"]]
+        return np.minimum(np.minimum(rail, 1.0 - np.abs(state[:, 2]) / params[:, c_["max_sway"]]), rope)
+
     def in_goal(self, state: Array, params: Array) -> Array:
         c_ = self._col
         return (

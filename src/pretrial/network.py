@@ -623,6 +623,7 @@ class _Level:
     response: np.ndarray  # (n, 1)
     blocks: tuple[tuple[Callable[..., np.ndarray], int, int, _Slots, Any], ...]  # (reducer, lo, hi, slots, extra)
     activations: tuple[tuple[Callable[[np.ndarray], np.ndarray], np.ndarray | None], ...]
+    unit_response: bool = False  # every response is 1.0: s * 1.0 is s, so the product is skipped
 
 
 class PopulationNetwork:
@@ -722,7 +723,8 @@ class PopulationNetwork:
             activations = tuple((_ACT_FN[k], None if len(kinds) == 1 else np.flatnonzero(acts == k)) for k in kinds)
             levels.append(_Level(first + int(lo), first + int(hi), edge_src[e_lo:e_hi].copy(),
                                  edge_w[e_lo:e_hi, None].copy(), s_bias[lo:hi, None].copy(),
-                                 s_resp[lo:hi, None].copy(), tuple(blocks), activations))
+                                 s_resp[lo:hi, None].copy(), tuple(blocks), activations,
+                                 bool(np.all(s_resp[lo:hi] == 1.0))))
         self._levels = tuple(levels)
         self._values: np.ndarray | None = None
         self._per_batch: tuple[tuple[np.ndarray, ...], ...] = ()
@@ -787,7 +789,8 @@ class PopulationNetwork:
                     s = np.empty((lv.slot_hi - lv.slot_lo, b))
                     for reduce, lo, hi, slots, extra in lv.blocks:
                         s[lo:hi] = reduce(p, hi - lo, slots, extra)
-                s *= response  # neat-python: act(bias + response * aggregate)
+                if not lv.unit_response:
+                    s *= response  # neat-python: act(bias + response * aggregate)
                 s += bias
                 out = values[lv.slot_lo : lv.slot_hi]
                 if len(lv.activations) == 1:

@@ -130,6 +130,8 @@ class Outcome:
     steps: np.ndarray
     failure_words: tuple[str, ...]
     trace: dict[str, np.ndarray] | None = None  # (T+1, rows, ...) when recorded
+    score: np.ndarray | None = None  # (G, S) when asked for; see episode_score
+
 
     def failure_counts(self) -> dict[str, int]:
         """Failure word -> number of episodes that ended with it."""
@@ -143,6 +145,7 @@ def run_episodes(
     scenarios: Scenarios,
     max_steps: int | None = None,
     record: bool = False,
+    score: bool = False,
 ) -> Outcome:
     """Run every policy of ``policy`` on every scenario until all rows end.
 
@@ -158,10 +161,13 @@ def run_episodes(
         Episode length in control periods (defaults to the env's time limit).
     record : bool
         Keep per-step states, observations and actions (for replay; small batches only).
+    score : bool
+        Also compute each episode's continuous score (:func:`episode_score`).
     """
     g, s = policy.n_policies, len(scenarios)
     rows = g * s
     params = np.asfortranarray(np.tile(scenarios.params, (g, 1)))  # contiguous parameter columns
+    params.setflags(write=False)  # fixed for the run: plants may keep constants derived from it
     keys = np.tile(scenarios.keys, g)
     loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
     state = np.tile(scenarios.start, (g, 1))
@@ -177,34 +183,74 @@ def run_episodes(
     ret = np.zeros(rows)
     active = np.ones(rows, dtype=bool)
     movable = getattr(physics, "rows_movable", True)
+    # score terms by original row, and the running ones of the rows still stepped
+    slack_all = np.full(rows, np.inf)
+    best_hold_all = np.zeros(rows)
+    slack = np.full(rows, np.inf) if score else None
+    best_hold = np.zeros(rows)
     policy.reset(s)
     obs = physics.observe(state, params)
     loop.reset(obs)
     trace: dict[str, list[np.ndarray]] | None = {"state": [state.copy()], "obs": [], "action": []} if record else None
+    # Rows that have ended keep their values. While no row has ended the masks that keep them are
+    # skipped; while few have, those rows are put back by index (`finished`) instead of a full np.where.
+    finished: np.ndarray | None = None  # None: every row runs
+    few = False
+
+    def keep_finished(new: np.ndarray, old: np.ndarray) -> np.ndarray:
+        """``new`` (this step's own array) for running rows, ``old`` for finished ones."""
+        if finished is None:
+            return new
+        if few:
+            new[finished] = old[finished]
+            return new
+        return np.where(active if new.ndim == 1 else active[:, None], new, old)
+
     for k in range(limit):
         measured = loop.sense(obs, k)
         command = policy.act(measured)
         action = loop.actuate(command, k)
         tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k))
-        ret += np.where(active, tr.reward, 0.0)
-        ended = active & (tr.terminated | tr.truncated)
-        out_of_time = active & ~ended & (k + 1 >= limit)
-        if out_of_time.any():
-            # the run's horizon ends the episode before the env's own time limit
-            if physics.success_mode == "survive":
-                success[where[out_of_time]] = True
-            else:
-                failure[where[out_of_time]] = physics.timeout_code
-        success[where[ended]] = tr.success[ended]
-        failure[where[ended]] = tr.failure[ended]
+        if slack is not None:
+            with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+                now = physics.constraint_slack(tr.state, physics.actuate(action, params), params)
+            slack = keep_finished(np.fmin(slack, now), slack)
+            best_hold = keep_finished(np.maximum(best_hold, tr.hold), best_hold)
+        if finished is None:
+            ret += tr.reward
+        else:  # ret is never -0.0 (it starts at +0.0), so skipping a finished row equals adding 0.0 to it
+            np.add(ret, tr.reward, out=ret, where=active)
+        ended = tr.terminated | tr.truncated
+        if finished is not None:
+            ended &= active
+        any_ended = bool(ended.any())
+        if any_ended:
+            rows_ended = np.flatnonzero(ended)
+            success[where[rows_ended]] = tr.success[rows_ended]
+            failure[where[rows_ended]] = tr.failure[rows_ended]
+        out_of_time = None
+        if k + 1 >= limit:
+            out_of_time = active & ~ended
+            if out_of_time.any():
+                # the run's horizon ends the episode before the env's own time limit
+                if physics.success_mode == "survive":
+                    success[where[out_of_time]] = True
+                else:
+                    failure[where[out_of_time]] = physics.timeout_code
         # finished rows keep their last state, so later steps cannot disturb them
-        state = np.where(active[:, None], tr.state, state)
-        hold, steps = tr.hold, np.where(active, tr.steps, steps)
+        state = keep_finished(tr.state, state)
+        steps = keep_finished(tr.steps, steps)
+        hold = tr.hold
         if trace is not None:
             trace["obs"].append(measured.copy())
             trace["action"].append(action.copy())
             trace["state"].append(state.copy())
-        active &= ~(ended | out_of_time)
+        if not (any_ended or out_of_time is not None or len(active) == 0):
+            obs = physics.observe(state, params)
+            continue  # nothing ended: the batch and its live policies are as they were
+        active &= ~ended
+        if out_of_time is not None:
+            active &= ~out_of_time
         if not active.any():
             break
         live = active.reshape(-1, s).any(axis=1)
@@ -216,18 +262,30 @@ def run_episodes(
                 keep = np.flatnonzero(np.repeat(live, s))
                 returns[where] = ret
                 length[where] = steps
+                if slack is not None:
+                    slack_all[where], best_hold_all[where] = slack, best_hold
+                    slack, best_hold = slack[keep], best_hold[keep]
                 policy = smaller
                 where, ret, state, hold, steps, active = (
                     where[keep], ret[keep], state[keep], hold[keep], steps[keep], active[keep]
                 )
                 params = np.asfortranarray(params[keep])
+                params.setflags(write=False)
                 loop.take(keep)
+        finished = np.flatnonzero(~active)
+        few = 4 * len(finished) < len(active)
+        if not len(finished):
+            finished = None
         obs = physics.observe(state, params)
     returns[where] = ret
     length[where] = steps
     steps = length
     failure[success] = 0
     shape = (g, s)
+    scores = None
+    if slack is not None:
+        slack_all[where], best_hold_all[where] = slack, best_hold
+        scores = episode_score(physics, success, failure, steps, limit, slack_all, best_hold_all).reshape(shape)
     return Outcome(
         returns.reshape(shape),
         success.reshape(shape),
@@ -235,4 +293,31 @@ def run_episodes(
         steps.reshape(shape),
         physics.failure_words,
         {k: np.asarray(v) for k, v in trace.items()} if trace is not None else None,
+        scores,
     )
+
+
+def episode_score(physics: Physics, success: np.ndarray, failure: np.ndarray, steps: np.ndarray, limit: int,
+                  min_slack: np.ndarray, best_hold: np.ndarray) -> np.ndarray:
+    """One continuous number per episode: how far from failing (> 0) or from passing (<= 0).
+
+    * success: the smallest constraint slack over the episode
+      (:meth:`~pretrial_envs.core.Physics.constraint_slack`), capped at 1;
+      a plant that declares no limits scores 1;
+    * a limit broken at step ``t`` of ``T``: ``-(1 - t / T)``, so failing later is better;
+    * ran out of time on a reach task: ``-(1 - h / hold_time)`` where ``h`` is the
+      longest time the goal was held;
+    * diverged: -1.
+
+    Worst-case search and sensitivity analyses use it, since a success rate
+    alone is flat almost everywhere.
+    """
+    won = np.minimum(np.where(np.isfinite(min_slack), min_slack, 1.0), 1.0)
+    # a success can still touch a limit exactly: keep it above every failure
+    won = np.maximum(won, 0.0)
+    broke = -(1.0 - steps / max(limit, 1))
+    hold_time = getattr(physics, "hold_time", 0.0) or 0.0
+    late = -(1.0 - np.minimum(best_hold / hold_time, 1.0)) if hold_time > 0 else np.full(len(steps), -1.0)
+    out = np.where(success, won, broke)
+    out = np.where(~success & (failure == physics.timeout_code), late, out)
+    return np.where(~success & (failure == physics.diverged_code), -1.0, out)
