@@ -207,7 +207,11 @@ def _run_evolve(args: argparse.Namespace) -> int:
     if "replay" in names:
         nxt.append(f"pretrial replay {run_dir} --gif {run_dir}/replay.gif")
     if "sweep" in names:
-        nxt.append(f"pretrial sweep {run_dir} --plan configs/sweeps/<plan>.toml --baseline lqr")
+        plans = Path(cfg.path).resolve().parent / "sweeps"
+        stems = [cfg.name, cfg.name.removesuffix("-positions")]
+        plan = next((plans / f"{s}.toml" for s in stems if (plans / f"{s}.toml").is_file()), None)
+        shown = Path(cfg.path).parent / "sweeps" / plan.name if plan else "PLAN.toml"
+        nxt.append(f"pretrial sweep {run_dir} --plan {shown} --baseline lqr")
     if nxt:
         print("next:")
         for line in nxt:
@@ -220,19 +224,32 @@ def _run_evolve(args: argparse.Namespace) -> int:
 # --------------------------------------------------------------------------- #
 Command = tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]]
 
+def _lazy(module: str) -> tuple[Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]]:
+    """A command's (configure, run) pair from ``pretrial.<module>``, imported only when used."""
+    import importlib
+
+    def configure(p: argparse.ArgumentParser) -> None:
+        importlib.import_module(f"pretrial.{module}").configure_cli(p)
+
+    def run(args: argparse.Namespace) -> int:
+        return importlib.import_module(f"pretrial.{module}").run_cli(args)
+
+    return configure, run
+
+
 COMMANDS: list[Command] = [
     ("envs", _configure_envs, _run_envs),
     ("evolve", _configure_evolve, _run_evolve),
-    ("replay", lambda p: __import__("pretrial.replay", fromlist=["configure_cli"]).configure_cli(p),
-     lambda a: __import__("pretrial.replay", fromlist=["run_cli"]).run_cli(a)),
-    ("export", lambda p: __import__("pretrial.export", fromlist=["configure_cli"]).configure_cli(p),
-     lambda a: __import__("pretrial.export", fromlist=["run_cli"]).run_cli(a)),
+    ("replay", *_lazy("replay")),
+    ("sweep", *_lazy("sweep_run")),
+    ("export", *_lazy("export")),
 ]
 
 HELP = {
     "envs": "list the environments, or show one's parameters, spaces and success rule",
     "evolve": "evolve a controller with NEAT from a run config",
     "replay": "replay a policy (or the LQR baseline) and measure what it does",
+    "sweep": "run a perturbation plan: margins, Monte Carlo, worst case, linear margins, verdict",
     "export": "write a policy as dependency-free C99 or Python for the target",
 }
 

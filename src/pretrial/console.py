@@ -66,3 +66,46 @@ def print_cautions(out: TextIO | None = None) -> None:
     print("\nCautions:", file=out)
     for c in CAUTIONS:
         print(f"  - {c}", file=out)
+
+
+class Progress:
+    """A one-line progress bar on stderr: ``[#####-----] 50%  1,200/2,400 episodes  12 s left``.
+
+    Redrawn at most a few times a second; nothing is printed when stderr is
+    not a terminal (logs and pipes stay clean).
+    """
+
+    def __init__(self, total: int, unit: str, out: TextIO | None = None, width: int = 28):
+        import time
+
+        self.total = max(1, int(total))
+        self.unit = unit
+        self.out = out or sys.stderr
+        self.width = width
+        self.done = 0
+        self._t0 = time.monotonic()
+        self._last = 0.0
+        self._shown = False
+
+    def advance(self, n: int) -> None:
+        import time
+
+        self.done += int(n)
+        now = time.monotonic()
+        if now - self._last < 0.2:
+            return
+        self._last = now
+        frac = min(self.done / self.total, 1.0)
+        filled = int(frac * self.width)
+        rate = self.done / max(now - self._t0, 1e-9)
+        left = max(self.total - self.done, 0) / rate if rate > 0 else float("inf")
+        eta = f"{left:.0f} s left" if math.isfinite(left) else ""
+        bar = "#" * filled + "-" * (self.width - filled)
+        self.out.write(f"\r[{bar}] {frac:4.0%}  {self.done:,}/{self.total:,} {self.unit}  {eta}   ")
+        self.out.flush()
+        self._shown = True
+
+    def close(self) -> None:
+        if self._shown:
+            self.out.write("\n")
+            self.out.flush()

@@ -73,6 +73,7 @@ class Replay:
     start: list[float] | None = None
     start_text: str | None = None
     files: dict[str, str] = field(default_factory=dict)
+    plan: str | None = None
 
     @property
     def physics(self) -> Physics:
@@ -90,6 +91,8 @@ class Replay:
     def command(self, env: bool = True) -> str:
         """The command line that reproduces this replay (without file outputs)."""
         words = ["pretrial", "replay", self.policy_label]
+        if self.plan:
+            words += ["--plan", self.plan]
         if env:
             words += ["--env", self.env_id]
         for k, v in self.setup.settings.items():
@@ -224,7 +227,8 @@ def _number(item: str, text: str, valid: str) -> float:
 
 
 def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: int = 0, start: str | None = None,
-               policy_label: str = "", env_id: str = "", policy_hash: str | None = None) -> Replay:
+               policy_label: str = "", env_id: str = "", policy_hash: str | None = None,
+               max_steps: int | None = None) -> Replay:
     """Run and measure ``episodes`` recorded episodes of seed ``seed`` (all in one batch).
 
     Parameters
@@ -237,6 +241,8 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
         The episodes are ``draw_scenarios(setup.physics, episodes, seed, ...)``.
     start : str, optional
         ``--start`` text: replaces every episode's start state.
+    max_steps : int, optional
+        Episode length in control periods (default: the env's time limit; a plan's horizon).
     """
     if isinstance(episodes, bool) or not isinstance(episodes, (int, np.integer)) or not 1 <= episodes <= MAX_EPISODES:
         raise InputError(f"--episodes {episodes!r}: expected a whole number from 1 to {MAX_EPISODES}")
@@ -246,7 +252,7 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     if start is not None:
         scenarios.start = parse_start(start, physics, scenarios.params)
         start_state = scenarios.start[0].tolist()
-    outcome = run_episodes(physics, policy, scenarios, record=True)
+    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True)
     trace = outcome.trace
     metrics = physics.episode_metrics(trace["state"], trace["action"], scenarios.params, outcome.steps[0])
     return Replay(policy_label, policy_hash, env_id or physics.env_id, setup, int(seed), scenarios, outcome, metrics,
@@ -398,6 +404,9 @@ def configure_cli(p: argparse.ArgumentParser) -> None:
     p.add_argument("--show", action="store_true", help="play the first episode in a window")
     p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     p.add_argument("--env", metavar="ID", help="environment (required for lqr; else must fit the policy)")
+    p.add_argument("--plan", metavar="PLAN.toml",
+                   help="run under a sweep plan's scenario (env options, params, start ranges, horizon, LQR weights), "
+                   "as its replay commands do")
 
 
 def _check_output(path: str, flag: str) -> None:
@@ -426,9 +435,20 @@ def run_cli(args: argparse.Namespace) -> int:
     if args.mp4 is not None:
         animation.check_mp4()
     settings = parse_assignments(args.set, "--set")
-    policy, setup, env_id, digest = prepare(args.policy, args.env, settings)
+    max_steps = None
+    if getattr(args, "plan", None):
+        from .sweep_run import controlled
+
+        ctl = controlled(args.policy, args.plan, args.env)
+        policy, env_id, digest = ctl.controller, ctl.env_id, ctl.policy_hash
+        setup = _settings(ctl.physics, ctl.base_params, settings)
+        if ctl.plan is not None and ctl.plan.horizon is not None:
+            max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
+    else:
+        policy, setup, env_id, digest = prepare(args.policy, args.env, settings)
     rep = run_replay(policy, setup, episodes=args.episodes, seed=args.seed, start=args.start,
-                     policy_label=args.policy, env_id=env_id, policy_hash=digest)
+                     policy_label=args.policy, env_id=env_id, policy_hash=digest, max_steps=max_steps)
+    rep.plan = getattr(args, "plan", None)
     trace, steps, params = rep.outcome.trace, rep.outcome.steps[0], rep.scenarios.params
     note = rep.setup.words() or "nominal"
     try:

@@ -1,0 +1,697 @@
+"""Perturbation sweeps: margins, Monte Carlo, worst case, sensitivity, success map, linear, integrator check.
+
+Every analysis reduces to one primitive, :meth:`Campaign.evaluate`: run a
+batch of episodes, row ``i`` with its own named values, seed and episode
+number. Rows are grouped by control period (a different plant), cut into fixed
+chunks (so serial, process and Dask execution give bit-identical results) and
+mapped over the executor. Because a row depends on its own values, seed and
+episode only (:func:`pretrial.rollout.keyed_scenarios`), every point of every
+analysis replays alone with ``pretrial replay ... --set ... --seed S``.
+
+Common random numbers: all points of one analysis share the seed, so two
+points differ by their values, not by luck.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from pretrial_envs.core import Physics
+
+from . import streams
+from .errors import InputError
+from .execution import Executor
+from .perturb import CONTROL_PERIOD, PERTURBATIONS, with_control_period
+from .plan import Z2, Plan, Vary
+from .rollout import keyed_scenarios, run_episodes
+
+#: rows per work item: fixed, so results never depend on the number of workers
+CHUNK = 4096
+#: worst Monte Carlo samples listed with their replay commands
+WORST_LISTED = 10
+#: integrator check: changes above these flag a policy that exploits the solver (our thresholds)
+INTEGRATOR_RATE_TOLERANCE = 0.02
+INTEGRATOR_SCORE_TOLERANCE = 0.02
+
+
+def wilson_interval(successes: np.ndarray | int, n: np.ndarray | int) -> tuple[np.ndarray, np.ndarray]:
+    """Wilson (1927) score interval at 95% for ``successes`` out of ``n``.
+
+    Returns (lower, upper); with all n succeeding the lower bound is n / (n + z^2).
+    """
+    k = np.asarray(successes, dtype=float)
+    n = np.asarray(n, dtype=float)
+    p = k / n
+    denom = 1.0 + Z2 / n
+    centre = (p + Z2 / (2 * n)) / denom
+    half = math.sqrt(Z2) * np.sqrt(p * (1 - p) / n + Z2 / (4 * n * n)) / denom
+    lo = np.where(k == 0, 0.0, centre - half)
+    hi = np.where(k == n, 1.0, centre + half)
+    return lo, hi
+
+
+def derive_seed(seed: int, *key: int) -> int:
+    """A 64-bit seed for one analysis of a plan (a pure function of the plan seed)."""
+    return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
+
+
+@dataclass
+class Batch:
+    """Results of :meth:`Campaign.evaluate`, one entry per row."""
+
+    success: np.ndarray
+    failure: np.ndarray  # failure words ("" for success)
+    score: np.ndarray
+    steps: np.ndarray
+
+
+def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Work item: one chunk of rows of one plant (module level, so it pickles)."""
+    physics, policy, params, settings, seeds, episodes, max_steps = item
+    sc = keyed_scenarios(physics, seeds, episodes, params, settings)
+    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True)
+    words = np.array(out.failure_words, dtype=object)[out.failure[0]]
+    return out.success[0], words.astype(str), out.score[0], out.steps[0]
+
+
+@dataclass
+class Campaign:
+    """One controller, one plant, one plan: what every analysis evaluates.
+
+    Parameters
+    ----------
+    physics : Physics
+        The plant as the plan configures it (options, start ranges).
+    policy : batch policy
+        The controller (a :class:`~pretrial.policy.Policy` or an LQR baseline).
+    base_params : dict
+        Physics overrides in force at every point (the policy's, then the plan's).
+    plan : Plan
+    executor : Executor
+    policy_arg : str
+        How the replay command names the controller (a path, or ``lqr``).
+    progress : callable, optional
+        Called with the number of episodes just finished.
+    """
+
+    physics: Physics
+    policy: Any
+    base_params: dict[str, float]
+    plan: Plan
+    executor: Executor
+    policy_arg: str
+    progress: Callable[[int], None] | None = None
+    _plants: dict[float, Physics] = field(default_factory=dict, repr=False)
+
+    def nominal(self, name: str) -> float:
+        """Nominal value of a varied name here (policy/plan overrides included)."""
+        if name == CONTROL_PERIOD:
+            return self.physics.dt
+        if name in self.physics.param_table:
+            return self.base_params.get(name, self.physics.param_table[name].nominal)
+        return PERTURBATIONS[name].nominal
+
+    def plant(self, period: float) -> Physics:
+        if period == self.physics.dt:
+            return self.physics
+        if period not in self._plants:
+            self._plants[period] = with_control_period(self.physics, period)
+        return self._plants[period]
+
+    def max_steps(self, physics: Physics) -> int:
+        if self.plan.horizon is None:
+            return physics.max_steps
+        return max(1, round(self.plan.horizon / physics.dt))
+
+    def evaluate(self, values: Mapping[str, np.ndarray], seeds: np.ndarray | int, episodes: np.ndarray) -> Batch:
+        """Run rows: row ``i`` has ``values[name][i]`` set, seed ``seeds[i]``, episode ``episodes[i]``.
+
+        Names missing from ``values`` stay nominal.
+        """
+        episodes = np.asarray(episodes, dtype=np.int64)
+        n = len(episodes)
+        seeds = np.broadcast_to(np.asarray(seeds, dtype=np.uint64), (n,))
+        vals = {k: np.broadcast_to(np.asarray(v, dtype=float), (n,)) for k, v in values.items()}
+        period = vals.pop(CONTROL_PERIOD, np.full(n, self.physics.dt))
+        success = np.zeros(n, dtype=bool)
+        failure = np.empty(n, dtype=object)
+        score = np.zeros(n)
+        steps = np.zeros(n, dtype=np.int64)
+        items, where = [], []
+        for dt in np.unique(period):
+            rows = np.flatnonzero(period == dt)
+            physics = self.plant(float(dt))
+            base = physics.param_table.resolve_batch(self.base_params, 1)
+            for lo in range(0, len(rows), CHUNK):
+                r = rows[lo:lo + CHUNK]
+                params = np.repeat(base, len(r), axis=0)
+                settings = {k: v[r] for k, v in vals.items()}
+                items.append((physics, self.policy, params, settings, seeds[r], episodes[r], self.max_steps(physics)))
+                where.append(r)
+        # map in groups so progress can be shown between them
+        group = max(1, getattr(self.executor, "workers", 1))
+        for g in range(0, len(items), group):
+            for r, (s, f, sc, st) in zip(where[g:g + group], self.executor.map(_run_chunk, items[g:g + group]),
+                                         strict=True):
+                success[r], failure[r], score[r], steps[r] = s, f, sc, st
+                if self.progress is not None:
+                    self.progress(len(r))
+        return Batch(success, failure.astype(str), score, steps)
+
+    # ------------------------------------------------------------- replay commands
+    def replay_command(self, values: Mapping[str, float], seed: int, episodes: int = 1) -> str:
+        words = ["pretrial", "replay", _quote(self.policy_arg), "--plan", _quote(self.plan.path)]
+        if self.policy_arg == "lqr":
+            words += ["--env", self.physics.env_id]
+        for k, v in values.items():
+            words += ["--set", f"{k}={float(v)!r}"]
+        words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
+        return " ".join(words)
+
+
+def _quote(text: str) -> str:
+    import shlex
+
+    return shlex.quote(text)
+
+
+def _modes(words: np.ndarray) -> dict[str, int]:
+    failed = words[words != ""]
+    names, counts = np.unique(failed, return_counts=True)
+    order = np.lexsort((names, -counts))
+    return {str(names[i]): int(counts[i]) for i in order}
+
+
+def _commonest(words: np.ndarray) -> str | None:
+    return _commonest_modes(_modes(words))
+
+
+# --------------------------------------------------------------------------- #
+# margins
+# --------------------------------------------------------------------------- #
+@dataclass
+class _Point:
+    value: float
+    successes: int = 0
+    episodes: int = 0
+    lower: float = 0.0
+    upper: float = 0.0
+    passed: bool = False
+    modes: dict[str, int] = field(default_factory=dict)
+
+
+@dataclass
+class _Search:
+    vary: Vary
+    side: str  # "low" | "high"
+    start: float
+    end: float
+    log: bool
+    passed: float | None = None
+    failed: float | None = None
+    done: bool = False
+
+    def at(self, f: float) -> float:
+        if self.log:
+            return float(self.start * (self.end / self.start) ** f)
+        return float(self.start + (self.end - self.start) * f)
+
+    def frac(self, v: float) -> float:
+        if self.log:
+            return math.log(v / self.start) / math.log(self.end / self.start)
+        return (v - self.start) / (self.end - self.start)
+
+
+#: outward bracketing steps, as fractions of the way from the nominal to the range end
+_BRACKET = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0)
+
+
+def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
+    """One-at-a-time margins: bracket outward from nominal, then bisect to the plan's tolerance.
+
+    A point passes when the Wilson 95% lower bound of its success rate over K
+    episodes (common random numbers: the same K episodes at every point) is
+    at least the required rate. The edge is the last passing value found; the
+    failure reported is the commonest one at the first failing value past it.
+    """
+    k = c.plan.episodes
+    rate = c.plan.required_success_rate
+    tol = c.plan.budgets["tolerance"]
+    points: dict[str, dict[float, _Point]] = {v.name: {} for v in c.plan.vary}
+
+    def run(requests: list[tuple[str, float]]) -> None:
+        todo = [(n, v) for n, v in dict.fromkeys(requests) if v not in points[n]]
+        if not todo:
+            return
+        # one row per (point, episode); names not at this point stay nominal
+        reps = np.repeat(np.arange(len(todo)), k)
+        values: dict[str, np.ndarray] = {}
+        for name in {n for n, _ in todo}:
+            col = np.array([v if n == name else c.nominal(name) for n, v in todo])
+            values[name] = col[reps]
+        batch = c.evaluate(values, seed, np.tile(np.arange(k), len(todo)))
+        for i, (n, v) in enumerate(todo):
+            sl = slice(i * k, (i + 1) * k)
+            s = int(batch.success[sl].sum())
+            lo, hi = wilson_interval(s, k)
+            points[n][v] = _Point(v, s, k, float(lo), float(hi), bool(lo >= rate), _modes(batch.failure[sl]))
+
+    searches: list[_Search] = []
+    starts = {}
+    for v in c.plan.vary:
+        nominal = c.nominal(v.name)
+        start = min(max(nominal, v.low), v.high)
+        starts[v.name] = start
+        for side, end in (("low", v.low), ("high", v.high)):
+            if end == start:
+                continue
+            log = start > 0 and end > 0 and (max(start, end) / min(start, end)) > 4
+            searches.append(_Search(v, side, start, end, log))
+    run([(v.name, starts[v.name]) for v in c.plan.vary])
+    for s in searches:
+        if not points[s.vary.name][s.start].passed:
+            s.passed, s.failed, s.done = None, s.start, True  # fails at nominal: no margin
+    # bracket: every search's outward points in one batch
+    run([(s.vary.name, s.at(f)) for s in searches if not s.done for f in _BRACKET])
+    for s in searches:
+        if s.done:
+            continue
+        s.passed = s.start
+        for f in _BRACKET:
+            p = points[s.vary.name][s.at(f)]
+            if not p.passed:
+                s.failed = p.value
+                break
+            s.passed = p.value
+        if s.failed is None:
+            s.done = True  # passed to the range end
+    # bisect all open brackets together, round by round
+    while True:
+        open_ = [s for s in searches if not s.done and abs(s.failed - s.passed) > tol * (s.vary.high - s.vary.low)]
+        if not open_:
+            break
+        mids = []
+        for s in open_:
+            f = 0.5 * (s.frac(s.passed) + s.frac(s.failed))
+            mids.append(s.at(f))
+        run([(s.vary.name, m) for s, m in zip(open_, mids, strict=True)])
+        for s, m in zip(open_, mids, strict=True):
+            if m in (s.passed, s.failed):  # no representable midpoint left
+                s.done = True
+            elif points[s.vary.name][m].passed:
+                s.passed = m
+            else:
+                s.failed = m
+
+    out = []
+    for v in c.plan.vary:
+        entry: dict[str, Any] = {
+            "name": v.name, "unit": v.unit, "nominal": c.nominal(v.name), "range": [v.low, v.high],
+            "episodes": k, "seed": seed,
+        }
+        for side in ("low", "high"):
+            s = next((s for s in searches if s.vary is v and s.side == side), None)
+            if s is None:  # the nominal sits on this end of the range
+                edge, failed = starts[v.name], None
+            else:
+                edge, failed = s.passed, s.failed
+            if edge is None:
+                edge = starts[v.name]  # fails at nominal: the margin is nil
+            entry[side] = edge
+            nominal = c.nominal(v.name)
+            entry[f"{side}_ratio"] = edge / nominal if nominal != 0 and math.isfinite(nominal) else None
+            entry[f"{side}_failure"] = _commonest_modes(points[v.name][failed].modes) if failed is not None else None
+            entry[f"{side}_limit_reached"] = failed is None
+            entry[f"replay_{side}"] = (c.replay_command({v.name: failed}, seed, k) if failed is not None else None)
+        entry["fails_at_nominal"] = not points[v.name][starts[v.name]].passed
+        entry["points"] = [
+            {"value": p.value, "episodes": p.episodes, "successes": p.successes,
+             "success_rate": p.successes / p.episodes, "lower_bound": p.lower, "upper_bound": p.upper,
+             "pass": p.passed, "failure_modes": p.modes, "seed": seed}
+            for p in sorted(points[v.name].values(), key=lambda p: p.value)
+        ]
+        out.append(entry)
+    return out
+
+
+def _commonest_modes(modes: dict[str, int]) -> str | None:
+    return next(iter(modes), None)
+
+
+# --------------------------------------------------------------------------- #
+# Monte Carlo
+# --------------------------------------------------------------------------- #
+def _unit_samples(n: int, d: int, seed: int, sampler: str) -> np.ndarray:
+    from scipy.stats import qmc
+
+    rng = np.random.default_rng(seed)
+    if sampler == "random":
+        return rng.random((n, d))
+    engine = qmc.Sobol(d, scramble=True, seed=rng) if sampler == "sobol" else qmc.LatinHypercube(d, seed=rng)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # Sobol balance warnings for n not a power of two
+        return engine.random(n)
+
+
+def _from_unit(v: Vary, u: np.ndarray) -> np.ndarray:
+    lo, hi = v.box_low, v.box_high
+    if v.distribution == "loguniform":
+        return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
+    if v.distribution == "normal":
+        from scipy.stats import truncnorm
+
+        a, b = (lo - v.mean) / v.std, (hi - v.mean) / v.std
+        return truncnorm.ppf(u, a, b, loc=v.mean, scale=v.std)
+    return lo + u * (hi - lo)
+
+
+def montecarlo(c: Campaign, seed: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """Joint samples of every varied name, one episode each with its own seed.
+
+    Returns the summary (schema ``montecarlo``) and the per-sample arrays.
+    """
+    n = c.plan.budgets["montecarlo_samples"]
+    vary = c.plan.vary
+    u = _unit_samples(n, len(vary), seed, c.plan.budgets["montecarlo_sampler"])
+    values = {v.name: _from_unit(v, u[:, i]) for i, v in enumerate(vary)}
+    if CONTROL_PERIOD in values:  # each distinct period is its own plant: keep them few
+        values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
+    seeds = streams.episode_keys(np.uint64(seed), np.arange(n))
+    batch = c.evaluate(values, seeds, np.zeros(n, dtype=np.int64))
+    successes = int(batch.success.sum())
+    lo, hi = wilson_interval(successes, n)
+    order = np.lexsort((np.arange(n), batch.score))
+    worst = []
+    for i in order[:WORST_LISTED]:
+        if batch.success[i]:
+            break
+        vals = {k: float(v[i]) for k, v in values.items()}
+        worst.append({"values": vals, "seed": int(seeds[i]), "score": float(batch.score[i]), "success": False,
+                      "failure": str(batch.failure[i]), "replay": c.replay_command(vals, int(seeds[i]), 1)})
+    quant = {str(q): float(np.quantile(batch.score, q)) for q in (0.01, 0.05, 0.5)}
+    summary = {
+        "samples": n, "successes": successes, "success_rate": successes / n, "ci95": [float(lo), float(hi)],
+        "failure_modes": _modes(batch.failure), "sampler": c.plan.budgets["montecarlo_sampler"],
+        "varied": [{"name": v.name, "unit": v.unit, "distribution": v.distribution, "low": v.box_low,
+                    "high": v.box_high, "mean": v.mean, "std": v.std} for v in vary],
+        "score_quantiles": quant, "worst": worst, "samples_file": "montecarlo.csv", "seed": seed,
+    }
+    samples = {**values, "seed": seeds, "success": batch.success, "failure": batch.failure, "score": batch.score}
+    return summary, samples
+
+
+# --------------------------------------------------------------------------- #
+# worst case, sensitivity, success map
+# --------------------------------------------------------------------------- #
+def _scored(c: Campaign, names: Sequence[str], points: np.ndarray, seed: int, k: int) -> tuple[np.ndarray, Batch]:
+    """Mean score over K common episodes at each of M points (M, D); also the raw batch."""
+    m = len(points)
+    reps = np.repeat(np.arange(m), k)
+    values = {name: points[reps, j] for j, name in enumerate(names)}
+    if CONTROL_PERIOD in values:
+        values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
+    batch = c.evaluate(values, seed, np.tile(np.arange(k), m))
+    return batch.score.reshape(m, k).mean(axis=1), batch
+
+
+def worstcase(c: Campaign, seed: int) -> dict[str, Any]:
+    """The lowest mean episode score in the box of varied values (differential evolution)."""
+    from scipy.optimize import differential_evolution
+
+    vary = c.plan.vary
+    names = [v.name for v in vary]
+    k = c.plan.budgets["worstcase_episodes"]
+    logs = np.array([v.distribution == "loguniform" for v in vary])
+    lo = np.array([math.log(v.box_low) if lg else v.box_low for v, lg in zip(vary, logs, strict=True)])
+    hi = np.array([math.log(v.box_high) if lg else v.box_high for v, lg in zip(vary, logs, strict=True)])
+    evaluations = 0
+
+    def to_units(z: np.ndarray) -> np.ndarray:
+        return np.where(logs, np.exp(z), z)
+
+    def objective(z: np.ndarray) -> np.ndarray:
+        nonlocal evaluations
+        pts = to_units(np.atleast_2d(z.T))  # (M, D)
+        evaluations += len(pts)
+        return _scored(c, names, pts, seed, k)[0]
+
+    res = differential_evolution(
+        objective, list(zip(lo, hi, strict=True)), maxiter=c.plan.budgets["worstcase_iterations"],
+        popsize=c.plan.budgets["worstcase_population"], rng=np.random.default_rng(seed), polish=False, vectorized=True,
+        updating="deferred", tol=0.0,
+    )
+    best = to_units(res.x)
+    if CONTROL_PERIOD in names:
+        best[names.index(CONTROL_PERIOD)] = round(float(best[names.index(CONTROL_PERIOD)]), 4)
+    score, batch = _scored(c, names, best[None, :], seed, k)
+    vals = {n: float(x) for n, x in zip(names, best, strict=True)}
+    successes = int(batch.success.sum())
+    return {
+        "method": "scipy.optimize.differential_evolution", "evaluations": evaluations, "episodes": k,
+        "score": float(score[0]), "values": vals, "seed": seed, "success_rate": successes / k,
+        "failure": _commonest(batch.failure), "failure_modes": _modes(batch.failure),
+        "replay": c.replay_command(vals, seed, k),
+    }
+
+
+def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
+    """Sobol first-order and total indices of the mean episode score (SALib, Saltelli sampling)."""
+    try:
+        from SALib.analyze import sobol as sobol_analyze
+        from SALib.sample import sobol as sobol_sample
+    except ImportError:
+        raise InputError("analysis sensitivity needs SALib: pip install 'pretrial[sensitivity]'") from None
+    vary = c.plan.vary
+    names = [v.name for v in vary]
+    problem = {"num_vars": len(vary), "names": names, "bounds": [[v.box_low, v.box_high] for v in vary]}
+    n = c.plan.budgets["sensitivity_samples"]
+    k = c.plan.budgets["sensitivity_episodes"]
+    x = sobol_sample.sample(problem, n, calc_second_order=False, seed=seed % 2**32)
+    y, _ = _scored(c, names, x, seed, k)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        si = sobol_analyze.analyze(problem, y, calc_second_order=False, seed=seed % 2**32)
+    rows = []
+    for i, name in enumerate(names):
+        rows.append({key: _finite(si[key][i]) for key in ("S1", "S1_conf", "ST", "ST_conf")} | {"name": name})
+    rows = [{"name": r.pop("name"), **r} for r in rows]
+    return {"method": "Sobol indices (SALib, Saltelli sampling, uniform over the box)", "score": "mean episode score",
+            "samples": int(len(x)), "episodes": k, "seed": seed, "indices": rows,
+            "score_variance": float(np.var(y))}
+
+
+def _finite(v: Any) -> float | None:
+    v = float(v)
+    return v if math.isfinite(v) else None
+
+
+def success_map(c: Campaign, seed: int) -> dict[str, Any]:
+    """Success rate over a grid of two varied names (the others nominal), K common episodes per cell."""
+    xname, yname = c.plan.budgets["map"]
+    vx = next(v for v in c.plan.vary if v.name == xname)
+    vy = next(v for v in c.plan.vary if v.name == yname)
+    m = c.plan.budgets["map_points"]
+    k = c.plan.budgets.get("map_episodes", c.plan.episodes)
+
+    def grid(v: Vary) -> np.ndarray:
+        if v.box_low > 0 and v.box_high / v.box_low > 10:
+            return np.geomspace(v.box_low, v.box_high, m)
+        return np.linspace(v.box_low, v.box_high, m)
+
+    xs, ys = grid(vx), grid(vy)
+    if CONTROL_PERIOD in (xname, yname):
+        xs, ys = (np.round(a, 4) if n == CONTROL_PERIOD else a for a, n in ((xs, xname), (ys, yname)))
+    gx, gy = np.meshgrid(xs, ys)  # rows: y, columns: x
+    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    reps = np.repeat(np.arange(len(pts)), k)
+    batch = c.evaluate({xname: pts[reps, 0], yname: pts[reps, 1]}, seed, np.tile(np.arange(k), len(pts)))
+    rate = batch.success.reshape(len(pts), k).mean(axis=1).reshape(m, m)
+    return {"x": xname, "y": yname, "x_unit": vx.unit, "y_unit": vy.unit, "x_values": xs.tolist(),
+            "y_values": ys.tolist(), "success_rate": rate.tolist(), "episodes": k, "seed": seed}
+
+
+# --------------------------------------------------------------------------- #
+# linear, integrator check
+# --------------------------------------------------------------------------- #
+def linear_analysis(c: Campaign, sampled: bool) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+    """Per-channel margins at the closed-loop equilibrium, and the details (with the frequency response)."""
+    from .linear import loop_report
+
+    params = c.physics.param_table.resolve(c.base_params)
+    delay = c.plan.budgets["delay_steps"] if sampled else 0
+    rep = loop_report(c.physics, c.policy, params, sampled=sampled, delay_steps=delay)
+    details = rep.to_dict()
+    details["dt"] = details.pop("control_period_s", c.physics.dt)
+    if rep.linearizable and rep.channels:
+        top = math.pi / c.physics.dt if sampled else 1e3
+        omega = np.geomspace(1e-2, top * (0.999 if sampled else 1.0), 400)
+        details["response"] = {"omega": omega.tolist(), "channels": {}}
+        for ch in rep.channels:
+            h = ch.frequency_response(omega)
+            details["response"]["channels"][ch.name] = {"re": np.real(h).tolist(), "im": np.imag(h).tolist()}
+    return (rep.channel_dicts() if rep.linearizable else []), details
+
+
+def integrator_check(c: Campaign, seed: int) -> dict[str, Any]:
+    """Nominal episodes again with a quarter of the integration step, and with the other integrator."""
+    k = c.plan.episodes
+    base = c.physics
+
+    def outcome(physics: Physics) -> dict[str, Any]:
+        saved = c.physics, c._plants
+        c.physics, c._plants = physics, {}
+        try:
+            b = c.evaluate({}, seed, np.arange(k))
+        finally:
+            c.physics, c._plants = saved
+        return {"integrator": physics.integrator, "substeps": physics.substeps,
+                "integration_step_s": physics.dt / physics.substeps, "success_rate": float(b.success.mean()),
+                "mean_score": float(b.score.mean())}
+
+    def rebuilt(**change: Any) -> Physics:
+        options = base.options()
+        options.update(change)
+        return type(base)(**options)
+
+    nominal = outcome(base)
+    variants = [outcome(rebuilt(substeps=base.substeps * 4))]
+    if "integrator" in base.options():
+        other = "euler" if base.integrator == "rk4" else "rk4"
+        variants.append(outcome(rebuilt(substeps=base.substeps * 4, integrator=other)))
+    moved = [v for v in variants
+             if abs(v["success_rate"] - nominal["success_rate"]) > INTEGRATOR_RATE_TOLERANCE
+             or abs(v["mean_score"] - nominal["mean_score"]) > INTEGRATOR_SCORE_TOLERANCE]
+    note = ("success rate and score unchanged with a finer step and the other integrator" if not moved else
+            "results move with the integration step or method: the policy may exploit the solver "
+            "(check its behaviour with a finer step before trusting other numbers)")
+    return {"nominal": nominal, "variants": variants, "flagged": bool(moved), "episodes": k, "seed": seed,
+            "tolerance": {"success_rate": INTEGRATOR_RATE_TOLERANCE, "mean_score": INTEGRATOR_SCORE_TOLERANCE},
+            "note": note}
+
+
+# --------------------------------------------------------------------------- #
+# requirements and verdict
+# --------------------------------------------------------------------------- #
+def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """Pass/fail per requirement of the plan, from the analyses that ran."""
+    out: list[dict[str, Any]] = []
+    mc = res.get("montecarlo")
+    if mc is not None:
+        out.append({"name": "success rate (Monte Carlo, Wilson 95% lower bound)",
+                    "required": plan.required_success_rate, "measured": mc["ci95"][0],
+                    "pass": mc["ci95"][0] >= plan.required_success_rate})
+    elif res.get("integrator_check") is not None:
+        ic = res["integrator_check"]
+        k = ic["episodes"]
+        lo, _ = wilson_interval(round(ic["nominal"]["success_rate"] * k), k)
+        out.append({"name": "success rate (nominal episodes, Wilson 95% lower bound)",
+                    "required": plan.required_success_rate, "measured": float(lo),
+                    "pass": float(lo) >= plan.required_success_rate})
+    margins_by = {m["name"]: m for m in res.get("margins") or []}
+    for name, req in plan.required_margins.items():
+        m = margins_by.get(name)
+        for key, want in req.items():
+            label = f"margin {name} {key}"
+            if m is None:
+                out.append({"name": label, "required": want, "measured": "margins not run", "pass": False})
+                continue
+            got = m[key]
+            ok = got is not None and (got >= want if key.startswith("high") else got <= want)
+            out.append({"name": label, "required": want, "measured": got, "pass": bool(ok)})
+    wanted = (("gain_margin_db", plan.gain_margin_db), ("phase_margin_deg", plan.phase_margin_deg))
+    for key, title in (("linear", "continuous loop"), ("linear_sampled", "sampled loop")):
+        if res.get(key) is None:
+            continue
+        details = res["linear_details"]["continuous" if key == "linear" else "sampled"]
+        if not details["linearizable"]:
+            reason = f"not linearizable: {details['reason']}"
+            for req_name, want in wanted:
+                if want is not None:
+                    out.append({"name": f"{req_name} ({title})", "required": want, "measured": reason, "pass": False})
+            continue
+        for ch in res[key]:
+            for req_name, want in wanted:
+                if want is None:
+                    continue
+                got = ch.get(req_name)
+                # None: no limit on that side (an unbounded margin)
+                measured = "unlimited" if got is None else got
+                ok = got is None or got >= want
+                out.append({"name": f"{req_name} {ch['channel']} ({title})", "required": want, "measured": measured,
+                            "pass": bool(ok)})
+    if res.get("integrator_check") is not None:
+        ic = res["integrator_check"]
+        out.append({"name": "integrator check", "required": "no change with a finer step",
+                    "measured": "changed" if ic["flagged"] else "unchanged", "pass": not ic["flagged"]})
+    return out
+
+
+def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
+    """"pass" when every requirement passes (and there is at least one)."""
+    return "pass" if reqs and all(r["pass"] for r in reqs) else "fail"
+
+
+#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
+_SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
+
+
+def run_analyses(c: Campaign) -> tuple[dict[str, Any], dict[str, np.ndarray] | None]:
+    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo samples)."""
+    plan = c.plan
+    run = set(plan.analyses)
+    res: dict[str, Any] = {k: None for k in ("margins", "montecarlo", "worstcase", "sensitivity", "success_map",
+                                             "linear", "linear_sampled", "linear_details", "integrator_check")}
+    samples = None
+
+    def seed(name: str) -> int:
+        return derive_seed(plan.seed, _SEED_KEYS[name])
+
+    if "linear" in run or "linear_sampled" in run:
+        res["linear_details"] = {"continuous": None, "sampled": None}
+    if "linear" in run:
+        res["linear"], res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
+    if "linear_sampled" in run:
+        res["linear_sampled"], res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
+    if "integrator_check" in run:
+        res["integrator_check"] = integrator_check(c, seed("integrator_check"))
+    if "margins" in run:
+        res["margins"] = margins(c, seed("margins"))
+    if "montecarlo" in run:
+        res["montecarlo"], samples = montecarlo(c, seed("montecarlo"))
+    if "worstcase" in run:
+        res["worstcase"] = worstcase(c, seed("worstcase"))
+    if "sensitivity" in run:
+        res["sensitivity"] = sensitivity(c, seed("sensitivity"))
+    if "map" in run:
+        res["success_map"] = success_map(c, seed("map"))
+    res["requirements"] = requirements(plan, res)
+    res["verdict"] = verdict(res["requirements"])
+    return res, samples
+
+
+def planned_episodes(plan: Plan, physics: Physics) -> int:
+    """A rough count of the episodes a plan runs (for the progress bar)."""
+    b = plan.budgets
+    d = len(plan.vary)
+    n = 0
+    run = set(plan.analyses)
+    if "margins" in run:
+        rounds = len(_BRACKET) + max(1, math.ceil(math.log2(1 / (16 * b["tolerance"]))) + 1)
+        n += plan.episodes * d * (1 + 2 * rounds)
+    if "montecarlo" in run:
+        n += b["montecarlo_samples"]
+    if "worstcase" in run:
+        n += b["worstcase_episodes"] * b["worstcase_population"] * d * (b["worstcase_iterations"] + 1)
+    if "sensitivity" in run:
+        n += b["sensitivity_samples"] * (d + 2) * b["sensitivity_episodes"]
+    if "map" in run:
+        n += b["map_points"] ** 2 * b.get("map_episodes", plan.episodes)
+    if "integrator_check" in run:
+        n += 3 * plan.episodes
+    return max(n, 1)

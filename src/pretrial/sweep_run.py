@@ -1,0 +1,368 @@
+"""``pretrial sweep``: a controller and a plan in, a sweep directory out.
+
+The sweep directory holds ``results.json`` (schema "pretrial.sweep" version 1,
+documented in the README; no clock times, so a rerun gives an equal file),
+``montecarlo.csv``, ``margins.csv``, plots, ``report.md``, ``report.html`` and
+``manifest.json`` (versions, times, command line, executor). It is written
+into a temporary sibling directory and renamed into place at the end, so an
+error or Ctrl-C never leaves a partial sweep directory behind.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from pretrial_envs.core import Physics
+
+from . import __version__
+from .console import CAUTIONS, Progress, emit_json, fmt_number, print_cautions, table
+from .errors import InputError
+from .files import canonical_json, sha256_hex, write_json
+from .plan import Plan, load_plan
+
+LQR = "lqr"
+SCHEMA = "pretrial.sweep"
+SCHEMA_VERSION = 1
+
+
+@dataclass
+class Controlled:
+    """A controller on its plant as a plan configures it: what a sweep point and a replay both run."""
+
+    controller: Any
+    physics: Physics
+    base_params: dict[str, float]
+    plan: Plan | None
+    env_id: str
+    policy_kind: str  # "file" | "lqr"
+    policy_path: str | None
+    policy_hash: str | None
+    env_options: dict[str, Any]
+
+
+def _plant(env_id: str, options: dict[str, Any], where: str) -> Physics:
+    from .generic import make_plant
+
+    try:
+        return make_plant(env_id, **options)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc.message}") from None
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{where}: {exc}") from None
+
+
+def _scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str, Any]]:
+    """The plan's env, options and start ranges, read before the plant exists."""
+    from .config import read_toml
+
+    data, _ = read_toml(plan_path)
+    scen = data.get("scenario", {})
+    if not isinstance(scen, dict):
+        raise InputError(f"{plan_path}: scenario: expected a table")
+    env = scen.get("env")
+    if env is not None and not isinstance(env, str):
+        raise InputError(f"{plan_path}: scenario.env: expected an environment id string, got {env!r}")
+    options = scen.get("options", {})
+    start = scen.get("start", {})
+    if not isinstance(options, dict):
+        raise InputError(f"{plan_path}: scenario.options: expected a table")
+    if not isinstance(start, dict):
+        raise InputError(f"{plan_path}: scenario.start: expected a table of state name = half-range")
+    return env, options, start
+
+
+def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -> Controlled:
+    """Resolve POLICY (a file, a run directory or ``lqr``), the plan's scenario and ``--env``.
+
+    The LQR baseline is designed on the plan's model (its ``[scenario.params]``)
+    with the plan's ``[baseline]`` weights; it is not told what a sweep point
+    or a ``--set`` changes.
+    """
+    from .replay import env_id_of
+
+    plan_env, plan_options, plan_start = _scenario_head(plan_path) if plan_path else (None, {}, {})
+    where = f"{plan_path}: scenario.options" if plan_path else "--env"
+    if policy_arg == LQR:
+        name = env or plan_env
+        if name is None:
+            raise InputError("lqr: name the environment (the plan's [scenario].env, or --env)")
+        env_id = env_id_of(name)
+        options = dict(plan_options)
+        policy = None
+    else:
+        from .policy import open_policy
+
+        policy = open_policy(policy_arg)
+        env_id = policy.env_id
+        named = env or plan_env
+        if named is not None and env_id_of(named) != env_id:
+            raise InputError(f"{plan_path or '--env'}: the env is {env_id_of(named)}, but the policy {policy_arg} "
+                             f"was trained on {env_id}")
+        options = dict(policy.env_options)
+        for k, v in plan_options.items():
+            if k in ("poles", "observe", "hoist") and options.get(k, v) != v:
+                raise InputError(f"{where}.{k}: {v!r} does not fit the policy (trained with {k}={options[k]!r})")
+            options[k] = v
+    if plan_start:
+        spread = dict(options.get("start_spread") or {})
+        spread.update(plan_start)
+        options["start_spread"] = spread
+    physics = _plant(env_id, options, where)
+    plan = load_plan(plan_path, physics, None) if plan_path else None
+    base = dict(policy.env_params) if policy is not None else {}
+    if plan is not None:
+        base.update(plan.params)
+    try:
+        physics.param_table.resolve(base)
+    except ValueError as exc:
+        raise InputError(f"{plan_path}: scenario.params: {exc}") from None
+    if policy is not None:
+        sizes = (physics.obs_dim, physics.action_dim)
+        if sizes != (policy.io.obs_dim, policy.io.action_dim):
+            raise InputError(f"{policy_arg}: takes {policy.io.obs_dim} observations and gives {policy.io.action_dim} "
+                             f"actions; {env_id} with these options has {sizes[0]} and {sizes[1]}")
+        return Controlled(policy, physics, base, plan, env_id, "file", str(policy_arg), policy.content_hash,
+                          options)
+    return Controlled(baseline_lqr(physics, base, plan), physics, base, plan, env_id, "lqr", None, None, options)
+
+
+def baseline_lqr(physics: Physics, base: dict[str, float], plan: Plan | None) -> Any:
+    """The LQR baseline designed on the plan's model."""
+    from .lqr import design_lqr
+
+    try:
+        return design_lqr(physics, params=base or None, q=plan.lqr_q if plan else None, r=plan.lqr_r if plan else None)
+    except ValueError as exc:
+        raise InputError(f"lqr: {exc}") from None
+
+
+# --------------------------------------------------------------------------- #
+# the run
+# --------------------------------------------------------------------------- #
+def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str, Any]:
+    return {
+        "schema": SCHEMA, "schema_version": SCHEMA_VERSION,
+        "policy": {"kind": ctl.policy_kind, "path": ctl.policy_path, "content_sha256": ctl.policy_hash},
+        "env": {"id": ctl.env_id, "options": ctl.env_options, "params": ctl.base_params},
+        "plan": {"path": plan.path, "content_sha256": plan.content_hash(), "resolved": plan.to_dict()},
+        "seed": plan.seed, "required_success_rate": plan.required_success_rate,
+        "episodes_per_point": plan.episodes,
+    }
+
+
+def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = False,
+          log: Any = None, progress: bool = True) -> tuple[dict[str, Any], dict[str, Any] | None]:
+    """Run a plan on a controller (and on the LQR baseline when asked).
+
+    Returns the results document (with its content hash) and the Monte Carlo samples.
+    """
+    from .sweep import Campaign, planned_episodes, run_analyses
+
+    ctl = controlled(policy_arg, plan_path)
+    plan = ctl.plan
+    assert plan is not None
+    say = log or (lambda _line: None)
+    total = planned_episodes(plan, ctl.physics) * (2 if baseline else 1)
+    bar = Progress(total, "episodes") if progress else None
+    tick = bar.advance if bar is not None else None
+    try:
+        say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
+        camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
+        part, samples = run_analyses(camp)
+        results = _results_skeleton(ctl, plan, policy_arg) | part
+        results["baseline"] = None
+        if baseline:
+            if ctl.policy_kind == LQR:
+                raise InputError("--baseline lqr: the controller under test is already the LQR baseline")
+            say("baseline: the same plan on the LQR baseline")
+            lqr = baseline_lqr(ctl.physics, ctl.base_params, plan)
+            base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
+            base_part, _ = run_analyses(base_camp)
+            results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
+    finally:
+        if bar is not None:
+            bar.close()
+    results["cautions"] = list(CAUTIONS)
+    from .console import jsonable
+
+    results = jsonable(results)
+    results["content_sha256"] = sha256_hex(canonical_json(results))
+    return results, samples
+
+
+def _default_out(plan: str, policy_arg: str) -> Path:
+    who = "lqr" if policy_arg == LQR else Path(policy_arg).stem if Path(policy_arg).suffix else Path(policy_arg).name
+    stamp = time.strftime("%Y%m%d-%H%M%S", time.gmtime())
+    return Path("sweeps") / f"{Path(plan).stem}-{who}-{stamp}"
+
+
+def write_outputs(out: Path, results: dict[str, Any], samples: dict[str, Any] | None, manifest: dict[str, Any]
+                  ) -> list[Path]:
+    """Write the sweep directory: into a temporary sibling first, renamed into place at the end."""
+    from .report import write_report, write_samples_csv
+
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        write_json(tmp / "results.json", results)
+        if samples is not None:
+            units = {v["name"]: v["unit"] for v in results["montecarlo"]["varied"]}
+            write_samples_csv(tmp / "montecarlo.csv", samples, units)
+        write_report(results, tmp, samples)
+        write_json(tmp / "manifest.json", manifest)
+        if out.exists():
+            out.rmdir()  # empty (checked before the work started)
+        os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return sorted(out.iterdir())
+
+
+def _check_out(out: Path) -> None:
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        what = "a file" if not out.is_dir() else "a directory that is not empty"
+        raise InputError(f"--out {out}: is {what}; choose a new directory (nothing is overwritten)")
+    parent = out.parent if str(out.parent) else Path(".")
+    probe = parent
+    while not probe.exists():
+        probe = probe.parent
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise InputError(f"--out {out}: {probe} is not writable")
+
+
+# --------------------------------------------------------------------------- #
+# command line
+# --------------------------------------------------------------------------- #
+def configure_cli(p: argparse.ArgumentParser) -> None:
+    """Arguments of ``pretrial sweep``."""
+    from .cli import _workers_arg
+
+    p.add_argument("policy", metavar="POLICY", help="policy file, run directory (its champion.json), or 'lqr'")
+    p.add_argument("--plan", required=True, metavar="PLAN.toml", help="sweep plan, e.g. configs/sweeps/cartpole.toml")
+    p.add_argument("--out", metavar="DIR", help="sweep directory (default sweeps/<plan>-<policy>-<UTC time>/)")
+    p.add_argument("--workers", type=_workers_arg, default="auto", help="worker processes: N or auto (default auto)")
+    p.add_argument("--dask", metavar="ADDRESS", help="run on a Dask scheduler; 'local' starts a LocalCluster")
+    p.add_argument("--baseline", choices=[LQR], help="also run the plan on the LQR baseline, side by side")
+    p.add_argument("--json", action="store_true", help="print the results as one JSON object instead of text")
+
+
+def run_cli(args: argparse.Namespace) -> int:
+    """Run ``pretrial sweep``."""
+    from .execution import make_executor
+
+    out = Path(args.out) if args.out else _default_out(args.plan, args.policy)
+    _check_out(out)
+    quiet = args.json
+    log = (lambda _l: None) if quiet else (lambda line: print(line, flush=True))
+    started = time.time()
+    with make_executor(args.workers, args.dask) as executor:
+        results, samples = sweep(args.policy, args.plan, executor, baseline=args.baseline == LQR, log=log,
+                                 progress=not quiet and sys.stderr.isatty())
+        ex = executor.describe()
+    manifest = {
+        "pretrial": __version__, "python": platform.python_version(), "platform": platform.platform(),
+        "command": ["pretrial", *getattr(args, "argv", [])], "started_utc": time.strftime(
+            "%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)), "seconds": round(time.time() - started, 3),
+        "executor": ex, "results_sha256": results["content_sha256"], "versions": _versions(),
+    }
+    files = write_outputs(out, results, samples, manifest)
+    if args.json:
+        emit_json({**results, "directory": str(out), "files": [str(f) for f in files]})
+        return 0
+    print_results(results, out)
+    return 0
+
+
+def _versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {}
+    for name in ("numpy", "scipy", "gymnasium", "neat-python", "SALib", "matplotlib"):
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            pass
+    return out
+
+
+def print_results(results: dict[str, Any], out: Path) -> None:
+    """The text summary: verdict first, then requirements and the main evidence."""
+    v = results["verdict"].upper()
+    failed = [r["name"] for r in results["requirements"] if not r["pass"]]
+    print(f"\nverdict: {v}" + (f"  (failing: {'; '.join(failed)})" if failed else ""))
+    table(["requirement", "required", "measured", "pass"],
+          [[r["name"], fmt_number(r["required"]), fmt_number(r["measured"]), "yes" if r["pass"] else "NO"]
+           for r in results["requirements"]])
+    if results.get("margins"):
+        print("\nmargins (one at a time; edge = last value meeting the required rate)")
+        table(["name", "unit", "nominal", "low", "high", "low ratio", "high ratio", "failure past low",
+               "failure past high"],
+              [[m["name"], m["unit"], fmt_number(m["nominal"]),
+                fmt_number(m["low"]) + (" (range end)" if m["low_limit_reached"] else ""),
+                fmt_number(m["high"]) + (" (range end)" if m["high_limit_reached"] else ""),
+                fmt_number(m["low_ratio"]) if m["low_ratio"] is not None else "-",
+                fmt_number(m["high_ratio"]) if m["high_ratio"] is not None else "-",
+                m["low_failure"] or "-", m["high_failure"] or "-"] for m in results["margins"]])
+    mc = results.get("montecarlo")
+    if mc:
+        modes = ", ".join(f"{k} {n}" for k, n in mc["failure_modes"].items()) or "none"
+        print(f"\nMonte Carlo: {mc['successes']}/{mc['samples']} succeeded ({mc['success_rate']:.2%}, "
+              f"95% interval {mc['ci95'][0]:.2%} to {mc['ci95'][1]:.2%}); failures: {modes}")
+        if mc["worst"]:
+            print(f"  worst sample: {mc['worst'][0]['replay']}")
+    wc = results.get("worstcase")
+    if wc:
+        vals = ", ".join(f"{k}={fmt_number(x)}" for k, x in wc["values"].items())
+        print(f"\nworst case found: score {fmt_number(wc['score'])} at {vals} "
+              f"(success {wc['success_rate']:.0%}, {wc['failure'] or 'no failure'})\n  {wc['replay']}")
+    for key, title in (("linear", "linear (continuous)"), ("linear_sampled", "linear (sampled)")):
+        if results.get(key) is None:
+            continue
+        det = results["linear_details"]["continuous" if key == "linear" else "sampled"]
+        if not det["linearizable"]:
+            print(f"\n{title}: not linearizable: {det['reason']}")
+            continue
+        print(f"\n{title}")
+        table(["channel", "gain margin low", "gain margin high", "gain margin dB", "phase margin deg",
+               "delay margin s", "disk margin"],
+              [[c["channel"], fmt_number(c["gain_margin_low"]),
+                "none" if c["gain_margin_high"] is None else fmt_number(c["gain_margin_high"]),
+                fmt_number(c["gain_margin_db"]), fmt_number(c["phase_margin_deg"]), fmt_number(c["delay_margin_s"]),
+                fmt_number(c["disk_margin"])] for c in results[key]])
+    base = results.get("baseline")
+    if base:
+        print(f"\nLQR baseline, same plan: verdict {base['verdict'].upper()}")
+        bmc = base.get("montecarlo")
+        if bmc and mc:
+            print(f"  Monte Carlo success: policy {mc['success_rate']:.2%}, LQR {bmc['success_rate']:.2%}")
+    print(f"\nsweep directory: {out}  (report.html, report.md, results.json)")
+    print_cautions()
+
+
+def read_results(path: str | Path) -> dict[str, Any]:
+    """Read a results.json back, refusing an edited or damaged file."""
+    p = Path(path)
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError(f"{p}: no such file") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"{p}: not a readable results file ({exc})") from None
+    if not isinstance(doc, dict) or doc.get("schema") != SCHEMA:
+        raise InputError(f"{p}: not a pretrial sweep results file")
+    stored = doc.pop("content_sha256", None)
+    if stored != sha256_hex(canonical_json(doc)):
+        raise InputError(f"{p}: content hash mismatch: the file was edited or damaged")
+    doc["content_sha256"] = stored
+    return doc
