@@ -38,3 +38,35 @@ def test_readme_carries_the_cautions():
     text = " ".join((ROOT / "README.md").read_text().split())
     for caution in CAUTIONS:
         assert " ".join(caution.split()) in text
+
+
+def _synopsis() -> dict[str, str]:
+    """README's CLI synopsis block: command -> its (joined) usage text."""
+    text = (ROOT / "README.md").read_text()
+    block = next(b for b in _blocks(text) if b.startswith("pretrial envs"))
+    out: dict[str, str] = {}
+    current = None
+    for line in block.splitlines():
+        if line.startswith("pretrial "):
+            current = line.split()[1]
+            out[current] = line
+        elif current:
+            out[current] += " " + line.strip()
+    return out
+
+
+def _flags(text: str) -> set[str]:
+    return set(re.findall(r"--[a-z][a-z0-9-]*", text))
+
+
+def test_readme_cli_reference_matches_help():
+    # the parser is the reference: every flag --help lists is in the README synopsis and back
+    from pretrial.cli import COMMANDS, build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    synopsis = _synopsis()
+    assert set(synopsis) == {name for name, *_ in COMMANDS}
+    for name, text in synopsis.items():
+        helped = _flags(sub.choices[name].format_help()) - {"--help"}
+        assert _flags(text) == helped, name

@@ -66,6 +66,8 @@ def _scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str
     from .config import read_toml
 
     data, _ = read_toml(plan_path)
+    if "task" in data and "scenario" not in data:
+        raise InputError(f"{plan_path}: is a run config (it has [task]), not a sweep plan (see configs/sweeps/)")
     scen = data.get("scenario", {})
     if not isinstance(scen, dict):
         raise InputError(f"{plan_path}: scenario: expected a table")
