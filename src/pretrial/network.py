@@ -57,6 +57,7 @@ lives in :mod:`pretrial.policy` and is reachable from this module too.
 
 from __future__ import annotations
 
+import itertools
 import math
 import numbers
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -115,10 +116,21 @@ def _sigmoid(z: np.ndarray) -> np.ndarray:
     return np.divide(1.0, e, out=e)
 
 
-def _tanh(z: np.ndarray) -> np.ndarray:
+def _into(name: str, z: np.ndarray, out: np.ndarray | None) -> np.ndarray:
+    """Kernel ``name`` of ``z``, written into ``out`` if given (directly when the kernel is a ufunc)."""
+    kernel = _KERNELS[name]
+    if out is None:
+        return kernel(z)
+    if isinstance(kernel, np.ufunc):
+        return kernel(z, out=out)
+    out[...] = kernel(z)
+    return out
+
+
+def _tanh(z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     z *= 2.5
     # tanh is exactly -1.0 below -19.1, so only the upper clamp (which also maps NaN to 60) can matter
-    return _KERNELS["tanh"](np.fmin(z, 60.0, out=z))
+    return _into("tanh", np.fmin(z, 60.0, out=z), out)
 
 
 def _sin(z: np.ndarray) -> np.ndarray:
@@ -223,6 +235,8 @@ AGGREGATIONS: tuple[str, ...] = ("sum", "product", "max", "min", "maxabs", "medi
 _ACT_CODE = {name: i for i, name in enumerate(ACTIVATIONS)}
 _AGG_CODE = {name: i for i, name in enumerate(AGGREGATIONS)}
 _ACT_FN = tuple(_ACTIVATION_FUNCTIONS.values())
+#: activations that can write their result into a given array (``fn(z, out)``), saving a copy per level
+_WRITES_INTO = frozenset({_tanh})
 
 # A block is the nodes of one level with one aggregation, sorted by fan-in (descending), so that the
 # nodes having a k-th input are a prefix of the block. ``slots[k] = (offset, count)``: the products
@@ -246,7 +260,10 @@ def _reduce_sum(p: np.ndarray, n: int, slots: _Slots, extra: Any) -> np.ndarray:
     # which bias + response * s cannot show)
     acc = _first_slot(p, n, slots, 0.0)
     for off, count in slots[1:]:
-        acc[:count] += p[off : off + count]
+        if count == n:
+            acc += p[off : off + n]
+        else:
+            acc[:count] += p[off : off + count]
     return acc
 
 
@@ -414,14 +431,15 @@ def _levels(required: set[int], preds: Mapping[int, list[tuple[int, float]]]) ->
 
     Nodes on a cycle, and nodes fed by them, are never placed, as in the library.
     """
-    waiting = {k: sum(1 for src, _ in preds[k] if src in required) for k in required}
+    waiting = dict.fromkeys(required, 0)
     users: dict[int, list[int]] = {}
     for k in required:
         for src, _ in preds[k]:
             if src in required:
+                waiting[k] += 1
                 users.setdefault(src, []).append(k)
     level = {k: 1 for k, n in waiting.items() if n == 0}
-    ready = sorted(level)
+    ready = list(level)  # a longest path does not depend on the order nodes are taken in
     while ready:
         k = ready.pop()
         for user in users.get(k, ()):
@@ -432,48 +450,69 @@ def _levels(required: set[int], preds: Mapping[int, list[tuple[int, float]]]) ->
     return {k: v for k, v in level.items() if waiting[k] == 0}
 
 
-def _build_spec(feed_forward: bool, input_keys: Sequence[int], output_keys: Sequence[int], nodes: _NodeTable,
-                connections: Iterable[tuple[int, int, float]]) -> NetworkSpec:
+#: One compiled network as plain lists: node keys, levels, biases, responses, activation codes,
+#: aggregation codes (per evaluated node); edge nodes, positions, sources, weights (per edge); output sources.
+_SpecLists = tuple[list[int], list[int], list[float], list[float], list[int], list[int],
+                   list[int], list[int], list[int], list[float], list[int]]
+
+
+def _spec_lists(feed_forward: bool, input_keys: Sequence[int], output_keys: Sequence[int], nodes: _NodeTable,
+                connections: Iterable[tuple[int, int, float]]) -> _SpecLists:
+    """The :class:`NetworkSpec` fields of one network as lists (so many networks can share one array each)."""
     required, preds = _expressed(input_keys, output_keys, nodes, connections)
     if feed_forward:
         level = _levels(required, preds)
     else:
         level = {k: 1 for k in required if preds[k]}
-    order = sorted(level, key=lambda k: (level[k], k))
+    order = sorted(sorted(level), key=level.__getitem__)  # by level, then key
     local = {k: i for i, k in enumerate(input_keys)}
     n_in = len(input_keys)
     local.update({k: n_in + j for j, k in enumerate(order)})
-    for key in order:
-        params = nodes[key]
-        if params[2] not in _ACT_CODE:
-            raise InputError(f"node {key}: activation {params[2]!r} is not a neat-python built-in "
-                             f"({', '.join(ACTIVATIONS)})")
-        if params[3] not in _AGG_CODE:
-            raise InputError(f"node {key}: aggregation {params[3]!r} is not a neat-python built-in "
-                             f"({', '.join(AGGREGATIONS)})")
+    levels, bias, response, act, agg = [], [], [], [], []
     e_node, e_pos, e_src, e_w = [], [], [], []
     for j, key in enumerate(order):
+        b, r, a_name, g_name = nodes[key]
+        a_code, g_code = _ACT_CODE.get(a_name), _AGG_CODE.get(g_name)
+        if a_code is None:
+            raise InputError(f"node {key}: activation {a_name!r} is not a neat-python built-in "
+                             f"({', '.join(ACTIVATIONS)})")
+        if g_code is None:
+            raise InputError(f"node {key}: aggregation {g_name!r} is not a neat-python built-in "
+                             f"({', '.join(AGGREGATIONS)})")
+        levels.append(level[key])
+        bias.append(b)
+        response.append(r)
+        act.append(a_code)
+        agg.append(g_code)
         for pos, (src, weight) in enumerate(preds[key]):
             e_node.append(j)
             e_pos.append(pos)
             e_src.append(local.get(src, -1))  # -1: a recurrent node that is never evaluated
             e_w.append(weight)
+    return (order, levels, bias, response, act, agg, e_node, e_pos, e_src, e_w,
+            [local.get(k, -1) for k in output_keys])
+
+
+def _build_spec(feed_forward: bool, input_keys: Sequence[int], output_keys: Sequence[int], nodes: _NodeTable,
+                connections: Iterable[tuple[int, int, float]]) -> NetworkSpec:
+    order, levels, bias, response, act, agg, e_node, e_pos, e_src, e_w, out = _spec_lists(
+        feed_forward, input_keys, output_keys, nodes, connections)
     ints = np.int64
     return NetworkSpec(
         feed_forward=bool(feed_forward),
         input_keys=tuple(input_keys),
         output_keys=tuple(output_keys),
         node_keys=np.array(order, dtype=ints),
-        level=np.array([level[k] for k in order], dtype=ints),
-        bias=np.array([nodes[k][0] for k in order], dtype=float),
-        response=np.array([nodes[k][1] for k in order], dtype=float),
-        activation=np.array([_ACT_CODE[nodes[k][2]] for k in order], dtype=ints),
-        aggregation=np.array([_AGG_CODE[nodes[k][3]] for k in order], dtype=ints),
+        level=np.array(levels, dtype=ints),
+        bias=np.array(bias, dtype=float),
+        response=np.array(response, dtype=float),
+        activation=np.array(act, dtype=ints),
+        aggregation=np.array(agg, dtype=ints),
         edge_node=np.array(e_node, dtype=ints),
         edge_position=np.array(e_pos, dtype=ints),
         edge_source=np.array(e_src, dtype=ints),
         edge_weight=np.array(e_w, dtype=float),
-        output_source=np.array([local.get(k, -1) for k in output_keys], dtype=ints),
+        output_source=np.array(out, dtype=ints),
     )
 
 
@@ -624,6 +663,75 @@ class _Level:
     blocks: tuple[tuple[Callable[..., np.ndarray], int, int, _Slots, Any], ...]  # (reducer, lo, hi, slots, extra)
     activations: tuple[tuple[Callable[[np.ndarray], np.ndarray], np.ndarray | None], ...]
     unit_response: bool = False  # every response is 1.0: s * 1.0 is s, so the product is skipped
+    into: bool = False  # one activation kind, which writes into the level's value rows itself
+
+
+class _Stack:
+    """Compiled networks side by side: each :class:`NetworkSpec` array concatenated in network order.
+
+    Node and edge indices stay local to their network, so any subset of the
+    networks is a mask away (no recompiling when a rollout drops finished ones).
+    """
+
+    _NODE_FIELDS = ("node_keys", "level", "bias", "response", "activation", "aggregation")
+    _EDGE_FIELDS = ("edge_node", "edge_position", "edge_source", "edge_weight")
+
+    def __init__(self, io_keys: Sequence[tuple[tuple[int, ...], tuple[int, ...]]], feed_forward: np.ndarray,
+                 node_counts: np.ndarray, edge_counts: np.ndarray, arrays: Mapping[str, np.ndarray]):
+        self.io_keys = tuple(io_keys)  # (input_keys, output_keys) of each network
+        self.num_inputs, self.num_outputs = len(self.io_keys[0][0]), len(self.io_keys[0][1])
+        self.feed_forward = feed_forward  # (G,) bool
+        self.node_counts, self.edge_counts = node_counts, edge_counts  # (G,) each
+        self.arrays = dict(arrays)  # NetworkSpec field -> concatenated values (output_source: G * n_out)
+        a = self.arrays
+        self.level, self.bias, self.response = a["level"], a["bias"], a["response"]
+        self.activation, self.aggregation = a["activation"], a["aggregation"]
+        self.edge_node, self.edge_position = a["edge_node"], a["edge_position"]
+        self.edge_source, self.edge_weight, self.output_source = a["edge_source"], a["edge_weight"], a["output_source"]
+
+    @classmethod
+    def of_specs(cls, specs: Sequence[NetworkSpec]) -> _Stack:
+        fields = (*cls._NODE_FIELDS, *cls._EDGE_FIELDS, "output_source")
+        return cls([(s.input_keys, s.output_keys) for s in specs], np.array([s.feed_forward for s in specs]),
+                   np.array([len(s.node_keys) for s in specs], dtype=np.int64),
+                   np.array([len(s.edge_node) for s in specs], dtype=np.int64),
+                   {f: np.concatenate([getattr(s, f) for s in specs]) for f in fields})
+
+    @classmethod
+    def of_lists(cls, feed_forward: bool, input_keys: Sequence[int], output_keys: Sequence[int],
+                 parts: Sequence[_SpecLists]) -> _Stack:
+        """Networks sharing one set of pins, from :func:`_spec_lists` (one numpy array per field, not per network)."""
+        ints = np.int64
+        kinds = (ints, ints, float, float, ints, ints, ints, ints, ints, float, ints)
+        names = (*cls._NODE_FIELDS, *cls._EDGE_FIELDS, "output_source")
+        arrays = {name: np.array(list(itertools.chain.from_iterable(p[i] for p in parts)), dtype=kind)
+                  for i, (name, kind) in enumerate(zip(names, kinds, strict=True))}
+        keys = (tuple(input_keys), tuple(output_keys))
+        return cls([keys] * len(parts), np.full(len(parts), bool(feed_forward)),
+                   np.array([len(p[0]) for p in parts], dtype=ints), np.array([len(p[6]) for p in parts], dtype=ints),
+                   arrays)
+
+    def take(self, keep: np.ndarray) -> _Stack:
+        """The networks ``keep`` (increasing indices) alone."""
+        chosen = np.zeros(len(self.feed_forward), dtype=bool)
+        chosen[keep] = True
+        node, edge = np.repeat(chosen, self.node_counts), np.repeat(chosen, self.edge_counts)
+        masks = dict.fromkeys(self._NODE_FIELDS, node) | dict.fromkeys(self._EDGE_FIELDS, edge)
+        masks["output_source"] = np.repeat(chosen, self.num_outputs)
+        arrays = {name: values[masks[name]] for name, values in self.arrays.items()}
+        return _Stack([self.io_keys[i] for i in keep.tolist()], self.feed_forward[keep], self.node_counts[keep],
+                      self.edge_counts[keep], arrays)
+
+    def spec(self, i: int) -> NetworkSpec:
+        """Network ``i`` as a :class:`NetworkSpec`."""
+        n0, e0 = int(self.node_counts[:i].sum()), int(self.edge_counts[:i].sum())
+        n1, e1 = n0 + int(self.node_counts[i]), e0 + int(self.edge_counts[i])
+        values = {f: self.arrays[f][n0:n1].copy() for f in self._NODE_FIELDS}
+        values.update({f: self.arrays[f][e0:e1].copy() for f in self._EDGE_FIELDS})
+        o0 = i * self.num_outputs
+        values["output_source"] = self.arrays["output_source"][o0 : o0 + self.num_outputs].copy()
+        return NetworkSpec(feed_forward=bool(self.feed_forward[i]), input_keys=self.io_keys[i][0],
+                           output_keys=self.io_keys[i][1], **values)
 
 
 class PopulationNetwork:
@@ -651,19 +759,43 @@ class PopulationNetwork:
         for s in specs:
             if s.num_inputs != n_in or s.num_outputs != n_out:
                 raise ValueError(f"networks differ in shape: {n_in} -> {n_out} and {s.num_inputs} -> {s.num_outputs}")
-        self.specs: tuple[NetworkSpec, ...] = tuple(specs)
-        self.num_genomes = g = len(specs)
-        self.num_inputs, self.num_outputs = n_in, n_out
-        self.recurrent = not all(s.feed_forward for s in specs)
-        counts = np.array([len(s.node_keys) for s in specs], dtype=np.int64)
+        self._build(_Stack.of_specs(specs), tuple(specs))
+
+    @classmethod
+    def _of_stack(cls, stack: _Stack) -> PopulationNetwork:
+        net = cls.__new__(cls)
+        net._build(stack, None)
+        return net
+
+    @property
+    def specs(self) -> tuple[NetworkSpec, ...]:
+        """The networks' :class:`NetworkSpec` (rebuilt from the stacked arrays when not given)."""
+        if self._specs is None:
+            self._specs = tuple(self._stack.spec(i) for i in range(self.num_genomes))
+        return self._specs
+
+    def subset(self, keep: Sequence[int] | np.ndarray) -> PopulationNetwork:
+        """A new network of the networks ``keep`` (indices into this one), in that order, without state."""
+        keep = np.asarray(keep, dtype=np.int64)
+        if keep.ndim != 1 or not len(keep):
+            raise ValueError("subset needs a non-empty 1-D sequence of network indices")
+        if np.all(keep[1:] > keep[:-1]) and keep[0] >= 0 and keep[-1] < self.num_genomes:
+            return PopulationNetwork._of_stack(self._stack.take(keep))
+        return PopulationNetwork([self.specs[i] for i in keep.tolist()])
+
+    def _build(self, stack: _Stack, specs: tuple[NetworkSpec, ...] | None) -> None:
+        self._stack, self._specs = stack, specs
+        self.num_genomes = g = len(stack.feed_forward)
+        self.num_inputs, self.num_outputs = n_in, n_out = stack.num_inputs, stack.num_outputs
+        self.recurrent = not bool(stack.feed_forward.all())
+        counts = stack.node_counts
         base = np.concatenate([[0], np.cumsum(counts)])
         n_nodes = int(base[-1])
         genome = np.repeat(np.arange(g), counts)
         local = np.arange(n_nodes) - base[genome]
-        level = np.concatenate([s.level for s in specs])
-        agg = np.concatenate([s.aggregation for s in specs])
-        edge_genome = np.repeat(np.arange(g), [len(s.edge_node) for s in specs])
-        edge_dst = np.concatenate([s.edge_node for s in specs]) + base[edge_genome]
+        level, agg = stack.level, stack.aggregation
+        edge_genome = np.repeat(np.arange(g), stack.edge_counts)
+        edge_dst = stack.edge_node + base[edge_genome]
         fan = np.bincount(edge_dst, minlength=n_nodes)
         # rows: by level, then aggregation, then fan-in (descending) so input positions are block prefixes
         order = np.lexsort((local, genome, -fan, agg, level))
@@ -681,19 +813,16 @@ class PopulationNetwork:
             out[is_node] = first + rank[base[owner[is_node]] + values[is_node] - n_in]
             return out
 
-        edge_src = rows_of(np.concatenate([s.edge_source for s in specs]), edge_genome)
-        edge_w = np.concatenate([s.edge_weight for s in specs])
-        edge_pos = np.concatenate([s.edge_position for s in specs])
+        edge_src = rows_of(stack.edge_source, edge_genome)
+        edge_w, edge_pos = stack.edge_weight, stack.edge_position
         out_owner = np.repeat(np.arange(g), n_out)
-        self._output_rows = rows_of(np.concatenate([s.output_source for s in specs]), out_owner)
+        self._output_rows = rows_of(stack.output_source, out_owner)
         e_order = np.lexsort((rank[edge_dst], edge_pos, agg[edge_dst], level[edge_dst]))
         edge_src, edge_w, edge_pos = edge_src[e_order], edge_w[e_order], edge_pos[e_order]
         edge_level = level[edge_dst][e_order]
 
         s_level, s_agg, s_fan = level[order], agg[order], fan[order]
-        s_bias = np.concatenate([s.bias for s in specs])[order]
-        s_resp = np.concatenate([s.response for s in specs])[order]
-        s_act = np.concatenate([s.activation for s in specs])[order]
+        s_bias, s_resp, s_act = stack.bias[order], stack.response[order], stack.activation[order]
         levels = []
         for lv in np.unique(s_level):
             lo, hi = np.searchsorted(s_level, [lv, lv + 1])
@@ -724,7 +853,8 @@ class PopulationNetwork:
             levels.append(_Level(first + int(lo), first + int(hi), edge_src[e_lo:e_hi].copy(),
                                  edge_w[e_lo:e_hi, None].copy(), s_bias[lo:hi, None].copy(),
                                  s_resp[lo:hi, None].copy(), tuple(blocks), activations,
-                                 bool(np.all(s_resp[lo:hi] == 1.0))))
+                                 bool(np.all(s_resp[lo:hi] == 1.0)),
+                                 len(activations) == 1 and activations[0][0] in _WRITES_INTO))
         self._levels = tuple(levels)
         self._values: np.ndarray | None = None
         self._per_batch: tuple[tuple[np.ndarray, ...], ...] = ()
@@ -732,7 +862,12 @@ class PopulationNetwork:
     @classmethod
     def from_genomes(cls, genomes: Sequence[Any], neat_config: Any) -> PopulationNetwork:
         """Compile and stack neat-python genomes (see :func:`stack_genomes`)."""
-        return cls([spec_from_genome(gen, neat_config) for gen in genomes])
+        if not len(genomes):
+            raise ValueError("PopulationNetwork needs at least one network")
+        gc = getattr(neat_config, "genome_config", neat_config)
+        ins, outs, ff = list(gc.input_keys), list(gc.output_keys), bool(gc.feed_forward)
+        parts = [_spec_lists(ff, ins, outs, *_genome_parts(gen, gc)[1:]) for gen in genomes]
+        return cls._of_stack(_Stack.of_lists(ff, ins, outs, parts))
 
     @property
     def batch_size(self) -> int | None:
@@ -780,7 +915,7 @@ class PopulationNetwork:
         np.copyto(values[1 : 1 + g * n_in].reshape(g, n_in, b), x.transpose(0, 2, 1))
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             for lv, (weight, response, bias) in zip(self._levels, self._per_batch, strict=True):
-                p = np.take(values, lv.source, axis=0)
+                p = values.take(lv.source, axis=0)
                 p *= weight
                 if len(lv.blocks) == 1:
                     reduce, _, n, slots, extra = lv.blocks[0]
@@ -793,7 +928,9 @@ class PopulationNetwork:
                     s *= response  # neat-python: act(bias + response * aggregate)
                 s += bias
                 out = values[lv.slot_lo : lv.slot_hi]
-                if len(lv.activations) == 1:
+                if lv.into:
+                    lv.activations[0][0](s, out)
+                elif len(lv.activations) == 1:
                     out[...] = lv.activations[0][0](s)
                 else:
                     for fn, idx in lv.activations:

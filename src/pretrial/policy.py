@@ -206,8 +206,7 @@ class PopulationPolicy:
         """The policies ``keep`` (indices) alone, or None where state would be lost (recurrent)."""
         if self.network.recurrent:
             return None
-        net = PopulationNetwork([self.network.specs[i] for i in keep])
-        return PopulationPolicy(net, self.io)
+        return PopulationPolicy(self.network.subset(keep), self.io)
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         """Env actions (G * B, action_dim) for observations (G * B, obs_dim), policy-major rows."""
@@ -215,8 +214,13 @@ class PopulationPolicy:
         g = self.n_policies
         if obs.ndim != 2 or obs.shape[0] % g:
             raise ValueError(f"observations of shape {obs.shape}: expected ({g} * B, {self.io.obs_dim})")
-        x = self.io.network_inputs(obs.reshape(g, obs.shape[0] // g, obs.shape[1]))
-        return self.io.actions(self.network.activate(x)).reshape(obs.shape[0], self.io.action_dim)
+        obs = obs.reshape(g, obs.shape[0] // g, obs.shape[1])
+        io = self.io
+        if io.blocks == 1 and io._skip[0] and io._skip[1] and obs.shape[2] == io.obs_dim:
+            x = obs  # identity inputs: the network copies them into its own values, no copy needed here
+        else:
+            x = io.network_inputs(obs)
+        return io.actions(self.network.activate(x)).reshape(obs.shape[0] * obs.shape[1], io.action_dim)
 
 
 def content_hash(document: Mapping[str, Any]) -> str:

@@ -97,7 +97,8 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -
     if policy_arg == LQR:
         name = env or plan_env
         if name is None:
-            raise InputError("lqr: name the environment (the plan's [scenario].env, or --env)")
+            where_env = f"{plan_path}: scenario.env: " if plan_path else ""
+            raise InputError(f"{where_env}lqr: name the environment (the plan's [scenario].env, or --env)")
         env_id = env_id_of(name)
         options = dict(plan_options)
         policy = None
