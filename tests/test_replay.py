@@ -16,18 +16,15 @@ import math
 import shutil
 from pathlib import Path
 
-import neat
 import numpy as np
 import pytest
-import scipy.linalg
-from test_network import make_config
+from test_sweep import balancing_policy_file
 
 from pretrial import animation
 from pretrial.cli import main
 from pretrial.console import CAUTIONS
-from pretrial.policy import IOMap, policy_from_genome, save_policy
 from pretrial_envs import make_physics
-from pretrial_envs.core import holds_from, jacobians
+from pretrial_envs.core import holds_from
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -38,35 +35,7 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 @pytest.fixture(scope="module")
 def policy_file(tmp_path_factory) -> Path:
     """A cart-pole policy file: one identity output node, u = -K x with K from scipy's DARE."""
-    d = tmp_path_factory.mktemp("replay_policy")
-    physics = make_physics("pretrial/CartPole-v0")
-    p = physics.param_table.resolve({})
-    a, b = jacobians(physics, np.zeros(4), np.zeros(1), p)
-    # zero-order-hold discretization by the block matrix exponential (Van Loan's method)
-    m = np.zeros((5, 5))
-    m[:4, :4], m[:4, 4:] = a, b
-    e = scipy.linalg.expm(m * physics.dt)
-    ad, bd = e[:4, :4], e[:4, 4:]
-    q, r = np.diag([1.0, 0.1, 10.0, 0.1]), np.array([[0.01]])
-    x = scipy.linalg.solve_discrete_are(ad, bd, q, r)
-    k = np.linalg.solve(r + bd.T @ x @ bd, bd.T @ x @ ad)[0]  # force [N] = -k . state
-    cfg = make_config(d / "neat.ini", True, num_inputs=4, num_outputs=1, activations="identity",
-                      aggregations="sum", num_hidden=0)
-    genome = neat.DefaultGenome(0)
-    node = neat.genes.DefaultNodeGene(0)
-    node.bias, node.response, node.activation, node.aggregation = 0.0, 1.0, "identity", "sum"
-    genome.nodes[0] = node
-    scale = physics.obs_scale
-    for i in range(4):
-        conn = neat.genes.DefaultConnectionGene((-(i + 1), 0), innovation=i + 1)
-        # network input i is obs_i / scale_i and the action is force / max_force (10 N)
-        conn.weight, conn.enabled = float(-k[i] / 10.0 * scale[i]), True
-        genome.connections[conn.key] = conn
-    io = IOMap(4, 1, obs_scale=[1.0 / s for s in scale])
-    policy = policy_from_genome(genome, cfg, env_id="pretrial/CartPole-v0", env_options=physics.options(), io=io)
-    path = d / "linear.json"
-    save_policy(path, policy)
-    return path
+    return balancing_policy_file(tmp_path_factory.mktemp("replay_policy"))
 
 
 def replay_json(capsys, *args) -> dict:

@@ -102,7 +102,7 @@ def lqr_sweep(tmp_path_factory) -> tuple[dict, Path]:
 def balancing_policy_file(d: Path) -> Path:
     """A cart-pole policy file: one identity output node, u = -K x with K from scipy's DARE.
 
-    Built the same way as tests/test_replay.py's ``policy_file`` fixture.
+    Shared with tests/test_replay.py (its ``policy_file`` fixture).
     """
     physics = make_physics("pretrial/CartPole-v0")
     p = physics.param_table.resolve({})
