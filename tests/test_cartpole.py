@@ -17,7 +17,7 @@ import math
 import gymnasium as gym
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 import pretrial_envs  # noqa: F401  (registers the env ids)
@@ -153,17 +153,25 @@ def test_friction_never_adds_energy_from_tilted_start(poles, start):
 def _dissipation_case(poles: int, state, frictions: dict[str, float]) -> None:
     """Energy per period with friction never rises above the integrator's own error.
 
-    The allowance is the largest per-period energy change of the same start without friction
-    (RK4 truncation error), plus 1e-10 J for rounding: friction may not add energy of its own.
+    The allowance per period is the largest energy change of the same start without friction
+    (RK4 truncation error there), plus that period's own truncation error estimated by step
+    halving thrice (Richardson: the same period with 8x the substeps is ~4096x more accurate),
+    plus 1e-10 J for rounding. Friction that added energy would raise the finely integrated
+    energy as much as the coarse one, so the estimate cannot hide it.
     """
     phys = CartPolePhysics(poles=poles)
+    fine = CartPolePhysics(poles=poles, substeps=8 * phys.substeps)
     params = _params(phys, **frictions)
     ideal = _params(phys, **{k: 0.0 for k in frictions})
     rows = lambda p, n: np.repeat(p, n, axis=0)  # noqa: E731
     with_f = _run(phys, state, params, 0.0, 100)
     without = _run(phys, state, ideal, 0.0, 100)
-    allowance = np.abs(np.diff(_energy(phys, without, rows(ideal, 101)))).max() + 1e-10
-    assert np.diff(_energy(phys, with_f, rows(params, 101))).max() <= allowance
+    energy = _energy(phys, with_f, rows(params, 101))
+    # each period again from the same state, finely integrated
+    fine_next = fine.integrate(with_f[:-1], np.zeros((100, 1)), rows(params, 100))
+    truncation = np.abs(energy[1:] - _energy(phys, fine_next, rows(params, 100)))
+    allowance = np.abs(np.diff(_energy(phys, without, rows(ideal, 101)))).max() + truncation + 1e-10
+    assert np.all(np.diff(energy) <= allowance)
 
 
 @settings(max_examples=25, deadline=None)
@@ -187,6 +195,9 @@ def test_friction_never_adds_energy_one_pole(x_dot, theta, theta_dot, cart, pivo
     cart=st.floats(1e-3, 2.0),
     pivot=st.floats(0.0, 1e-4),
 )
+# found by hypothesis: upright poles on a slowly braking cart fall, and RK4's own error on the fall
+# exceeded an allowance taken from the frictionless run (which stays at rest)
+@example(x_dot=0.0078125, angles=(0.0, 0.0), rates=(0.0, 0.0), cart=0.0078125, pivot=0.0)
 def test_friction_never_adds_energy_two_poles(x_dot, angles, rates, cart, pivot):
     # Dissipation in the two-pole model (Wieland 1991 equations with friction).
     state = [0.0, x_dot, angles[0], rates[0], angles[1], rates[1]]

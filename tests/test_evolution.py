@@ -224,7 +224,7 @@ def test_run_directory_layout(reference):
     env.close()
 
     ckpts = sorted(p.name for p in (run_dir / "checkpoints").iterdir())
-    assert ckpts == ["generation-1.pkl", "generation-2.pkl", "generation-3.pkl"]
+    assert ckpts == ["generation-0.pkl", "generation-1.pkl", "generation-2.pkl", "generation-3.pkl"]
     for name in ckpts:
         digest = hashlib.sha256((run_dir / "checkpoints" / name).read_bytes()).hexdigest()
         assert manifest["checkpoints"][name] == digest

@@ -178,6 +178,9 @@ def _run_evolve(args: argparse.Namespace) -> int:
     cfg = dataclasses.replace(cfg, run=run)
     if args.resume:
         run_dir = Path(args.resume)
+        if args.out and Path(args.out).resolve() != run_dir.resolve():
+            raise InputError(f"--out {args.out}: a resumed run continues in its own directory {args.resume}; "
+                             "drop --out (or copy the run directory first)")
     elif args.out:
         run_dir = Path(args.out)
     else:

@@ -121,6 +121,10 @@ class _Reader:
         self.known.append(name)
         if name not in self.table:
             if default is ...:
+                # a misspelt required key is more likely than a forgotten one: name it
+                close = difflib.get_close_matches(name, [str(k) for k in self.table], n=1)
+                if close:
+                    self.fail(self.key(close[0]), f"unknown key (did you mean {name!r}?)")
                 self.fail(self.key(name), f"missing ({allowed or 'required'})")
             return default
         value = self.table.pop(name)
@@ -302,6 +306,8 @@ def load_config(path: str | Path) -> Config:
             raise InputError(f"{path}: {key}: expected a value, got a table")
         if isinstance(value, float) and not math.isfinite(value):
             raise InputError(f"{path}: {key}: {value!r} is not a finite number")
+        if isinstance(value, list) and any(isinstance(v, (list, dict)) for v in value):
+            raise InputError(f"{path}: {key}: {value!r}: expected a value or a flat list of values")
         # configparser would read '%' as interpolation and a line break as a new setting
         if any(isinstance(v, str) and ("%" in v or not v.isprintable()) for v in (value if isinstance(value, list)
                                                                                   else [value])):

@@ -36,10 +36,11 @@ import numpy as np
 
 from . import __version__, checkpoint
 from .config import Config, build_neat_ini, dump_toml
-from .errors import InputError
+from .errors import InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
+from .perturb import describe_values
 from .policy import IOMap, PopulationPolicy, policy_to_dict, save_policy
 from .rollout import Scenarios, draw_scenarios, run_episodes
 
@@ -78,12 +79,18 @@ class Task:
 _PHYSICS_CACHE: dict[tuple[str, str], Any] = {}
 
 
-def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray]:
-    """Mean return and success rate per network over the scenarios (runs in a worker)."""
+#: generations whose diverged episodes are each named in a warning (then one line says more follow)
+_DIVERGED_WARNINGS = 3
+
+
+def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Mean return and success rate per network, and diverged episodes per scenario (runs in a worker)."""
     task, specs, scenarios = item
+    physics = task.physics()
     policy = PopulationPolicy(PopulationNetwork(specs), task.io)
-    out = run_episodes(task.physics(), policy, scenarios, task.max_steps)
-    return out.returns.mean(axis=1), out.success.mean(axis=1)
+    out = run_episodes(physics, policy, scenarios, task.max_steps)
+    diverged = (~out.success & (out.failure == physics.diverged_code)).sum(axis=0)
+    return out.returns.mean(axis=1), out.success.mean(axis=1), diverged
 
 
 def make_task(cfg: Config) -> Task:
@@ -160,11 +167,17 @@ class Evolution:
         Where batches are evaluated.
     log : callable
         Receives one line per generation and the closing lines.
+    command_line : sequence of str
+        The words the run was started with (recorded in the manifest).
+    warn : callable, optional
+        Receives warnings (default: stderr), e.g. episodes that diverged.
     """
 
     def __init__(self, cfg: Config, run_dir: Path, executor: Executor, log: Callable[[str], None] = print,
-                 command_line: Sequence[str] = ()):
+                 command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None):
         self.cfg = cfg
+        self.warn = warn or (lambda line: print(line, file=sys.stderr, flush=True))
+        self._warnings = 0
         self.run_dir = run_dir
         self.executor = executor
         self.log = log
@@ -181,10 +194,21 @@ class Evolution:
 
     # ------------------------------------------------------------ set-up
     def create(self) -> None:
-        """Lay out a new run directory and the initial population."""
+        """Lay out a new run directory and the initial population, checkpointed as generation 0.
+
+        The manifest is first written together with that checkpoint, so a directory with a
+        manifest can always be resumed, whenever the process is stopped.
+        """
         check_writable_dir(self.run_dir)
         if self.run_dir.exists() and any(self.run_dir.iterdir()):
-            raise InputError(f"{self.run_dir}: already holds files; pick another --out or --resume it")
+            if self.manifest_path.exists():
+                raise InputError(f"{self.run_dir}: already holds a run; continue it with --resume {self.run_dir} "
+                                 "or pick another --out")
+            # what create() lays out before the first manifest: a run stopped (killed) in those few moments
+            if any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini")):
+                raise InputError(f"{self.run_dir}: already holds files of a run stopped before its first "
+                                 "checkpoint; delete the directory and start again")
+            raise InputError(f"{self.run_dir}: already holds files; pick another --out")
         self.run_dir.mkdir(parents=True, exist_ok=True)
         (self.run_dir / "checkpoints").mkdir(exist_ok=True)
         (self.run_dir / "plots").mkdir(exist_ok=True)
@@ -203,7 +227,6 @@ class Evolution:
             "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             "checkpoints": {},
         }
-        write_json(self.manifest_path, self.manifest)
         cfg = self.neat_config
         random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, 0))
         from neat.reporting import ReporterSet
@@ -215,10 +238,14 @@ class Evolution:
         species = cfg.species_set_type(cfg.species_set_config, reporters)
         species.speciate(cfg, population, 0)
         self.state = RunState(0, population, species, reproduction, None, [], [], [], 0)
+        self.save_checkpoint()  # also writes the manifest: from here on the directory resumes
 
     def resume(self) -> None:
         """Continue from the newest checkpoint recorded in the manifest."""
         if not self.manifest_path.is_file():
+            if any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini")):
+                raise InputError(f"{self.run_dir}: the run was stopped before its first checkpoint (no "
+                                 "manifest.json); delete the directory and start the run again")
             raise InputError(f"{self.run_dir}: not a run directory (no manifest.json)")
         try:
             self.manifest = json.loads(self.manifest_path.read_text())
@@ -227,7 +254,12 @@ class Evolution:
         self._check_same_config()
         recorded = self.manifest.get("checkpoints") or {}
         if not recorded:
-            raise InputError(f"{self.run_dir}: no checkpoint yet; start the run again")
+            raise InputError(f"{self.run_dir}: no checkpoint yet; delete the directory and start the run again")
+        check_writable_dir(self.run_dir)
+        from .files import remove_partial_writes
+
+        for d in (self.run_dir, self.run_dir / "checkpoints", self.run_dir / "plots"):
+            remove_partial_writes(d)  # left by a process killed mid-write; the files they were for are whole
         name = max(recorded, key=lambda n: int(n.split("-")[-1].split(".")[0]))
         self.neat_config = _neat_config(self.ini_path)
         st = checkpoint.load(self.run_dir / "checkpoints" / name, recorded[name])
@@ -267,11 +299,38 @@ class Evolution:
             )
 
     # ------------------------------------------------------------ generations
-    def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios) -> tuple[np.ndarray, np.ndarray]:
+    def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios, label: str | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
         specs = [spec_from_genome(g, self.neat_config) for g in genomes]
         items = [(self.task, specs[i : i + CHUNK], scenarios) for i in range(0, len(specs), CHUNK)]
         parts = self.executor.map(evaluate_chunk, items)
+        diverged = np.sum([p[2] for p in parts], axis=0)
+        if diverged.any():
+            self._warn_diverged(scenarios, diverged, len(genomes), label)
         return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+
+    def _warn_diverged(self, scenarios: Scenarios, diverged: np.ndarray, n_genomes: int, label: str | None) -> None:
+        """One warning line naming where episodes blew up (they count as failures; the run goes on)."""
+        physics = self.task.physics()
+        rows = np.flatnonzero(diverged)
+        values = {}
+        for name in sorted(self.task.randomize):
+            if name in physics.param_table:
+                values[name] = scenarios.params[rows, physics.param_table.index(name)]
+            elif name in scenarios.perturb:
+                values[name] = scenarios.perturb[name][rows]
+        where = describe_values(physics, values) or describe_values(
+            physics, {k: np.array([v]) for k, v in self.task.params.items()}) or "nominal physics"
+        if label is None:  # generations: the first few are named; the finalists' re-test always is
+            label = f"generation {self.state.generation if self.state is not None else 0}"
+            self._warnings += 1
+        if label.startswith("generation") and self._warnings > _DIVERGED_WARNINGS:
+            if self._warnings == _DIVERGED_WARNINGS + 1:
+                self.warn("pretrial: warning: more generations with diverged episodes; not shown again this session")
+            return
+        self.warn(f"pretrial: warning: {label}: {int(diverged.sum())} of {n_genomes * len(scenarios)} "
+                  f"episodes diverged (the simulation blew up; counted as failures) in {len(rows)} scenario(s) "
+                  f"at {where}")
 
     def run(self, generations: int) -> dict[str, Any]:
         """Evolve until ``generations`` have been evaluated or the fitness target is reached."""
@@ -289,10 +348,18 @@ class Evolution:
                 scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k)
                 try:
                     fitness, succ = self.evaluate(genomes, scen)
-                except KeyboardInterrupt:
+                except (KeyboardInterrupt, PretrialError) as exc:
                     # Nothing of generation k is recorded yet: the state is exactly its start.
-                    self.save_checkpoint()
-                    raise
+                    try:
+                        self.save_checkpoint()
+                    except PretrialError:
+                        pass  # e.g. the disk is full: the previous checkpoint stands, resuming still works
+                    if isinstance(exc, KeyboardInterrupt):
+                        raise
+                    raise PretrialError(
+                        f"generation {k}: {exc.message}; the run is checkpointed, continue it with  "
+                        f"pretrial evolve {self.cfg.path} --resume {self.run_dir}"
+                    ) from None
                 for g, f in zip(genomes, fitness):
                     g.fitness = float(f)
                 st.evaluations += len(genomes) * self.cfg.task.episodes
@@ -389,7 +456,7 @@ class Evolution:
         """Re-test the finalists on fresh scenarios, write champion.json and the plots."""
         st = self.state
         scen = _scenarios(self.task, self.cfg.run.validation_episodes, self.cfg.run.seed, _VALIDATION_STREAM)
-        returns, success = self.evaluate(st.hall, scen)
+        returns, success = self.evaluate(st.hall, scen, "re-test of the finalists")
         order = sorted(range(len(st.hall)), key=lambda i: (-success[i], -returns[i], st.hall[i].key))
         i = order[0]
         champ = st.hall[i]

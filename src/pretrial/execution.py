@@ -8,9 +8,12 @@ number of workers, so results are bit-identical on all three executors.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import contextlib
+import logging
 import multiprocessing as mp
 import os
-from collections.abc import Callable, Sequence
+import signal
+from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
 from .errors import PretrialError
@@ -38,6 +41,39 @@ class Executor:
         return {"executor": self.name, "workers": self.workers}
 
 
+def _ignore_sigint() -> None:
+    """Pool initializer: a worker leaves Ctrl-C to the parent.
+
+    A terminal sends SIGINT to the whole process group, workers included; a worker that
+    raised KeyboardInterrupt would print its own traceback while the parent shuts it down.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if hasattr(signal, "pthread_sigmask"):
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})  # see _sigint_blocked
+
+
+@contextlib.contextmanager
+def _sigint_blocked() -> Iterator[None]:
+    """Hold back SIGINT in this thread while worker processes (or threads that start them) are started.
+
+    Threads and spawned processes inherit the blocked mask, so a worker never sees a Ctrl-C meant
+    for the parent, not even during its start-up (a pool worker then discards it in
+    :func:`_ignore_sigint`); in the parent the Ctrl-C is delivered on leaving the block.
+    """
+    if not hasattr(signal, "pthread_sigmask"):  # pragma: no cover - not POSIX
+        yield
+        return
+    from multiprocessing import resource_tracker
+
+    # running first: starting multiprocessing's resource tracker unblocks SIGINT in the thread that starts it
+    resource_tracker.ensure_running()
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
 class ProcessExecutor(Executor):
     """A pool of local worker processes; a pool whose worker died is rebuilt once."""
 
@@ -50,31 +86,49 @@ class ProcessExecutor(Executor):
     def _get_pool(self) -> cf.ProcessPoolExecutor:
         if self._pool is None:
             # spawn: workers start clean (no inherited threads or locks from the parent)
-            self._pool = cf.ProcessPoolExecutor(self.workers, mp_context=mp.get_context("spawn"))
+            self._pool = cf.ProcessPoolExecutor(self.workers, mp_context=mp.get_context("spawn"),
+                                                initializer=_ignore_sigint)
         return self._pool
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
         for attempt in (1, 2):
             try:
-                return list(self._get_pool().map(fn, items))
+                with _sigint_blocked():
+                    results = self._get_pool().map(fn, items)  # submits every item (starting workers) now
+                return list(results)
             except cf.process.BrokenProcessPool:
                 self._discard()
                 if attempt == 2:
                     raise PretrialError(
-                        "a worker process died twice while evaluating the same batch; the last checkpoint is intact "
-                        "(resume with --resume RUN_DIR, or run with --workers 1 to see the failure)"
+                        "a worker process died twice while running the same batch (killed, out of memory, or a "
+                        "crash in native code); run with --workers 1 to see the failure"
                     ) from None
         raise AssertionError  # pragma: no cover
 
-    def _discard(self) -> None:
-        if self._pool is not None:
-            self._pool.shutdown(wait=False, cancel_futures=True)
-            self._pool = None
+    def _discard(self, kill: bool = False) -> None:
+        pool, self._pool = self._pool, None
+        if pool is None:
+            return
+        if kill:
+            # after an error or Ctrl-C the results are not wanted: end the workers instead of waiting for them
+            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                proc.terminate()
+        pool.shutdown(wait=kill, cancel_futures=True)  # kill: the pool's thread reaps the workers just ended
 
     def close(self) -> None:
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
+
+    def __exit__(self, exc_type: type[BaseException] | None, *exc: object) -> None:
+        if exc_type is None:
+            self.close()
+        else:
+            self._discard(kill=True)
+
+
+#: dask's config variable for the "distributed" logger (logging.distributed), read by each worker process
+_DASK_WORKER_LOGS = "DASK_LOGGING__DISTRIBUTED"
 
 
 class DaskExecutor(Executor):
@@ -83,6 +137,15 @@ class DaskExecutor(Executor):
     name = "dask"
 
     def __init__(self, address: str, workers: int | None = None):
+        # A local cluster starts with SIGINT blocked: dask's threads (some start at import) and through them
+        # every worker they start, restarts too, inherit the mask, so Ctrl-C reaches this process alone and
+        # no worker prints a traceback of its own. A Ctrl-C meanwhile is delivered at the end of the block.
+        with _sigint_blocked() if address == "local" else contextlib.nullcontext():
+            self._start(address, workers)
+        self.address = address
+        self.workers = len(self._client.scheduler_info().get("workers", {})) or (workers or 1)
+
+    def _start(self, address: str, workers: int | None) -> None:
         try:
             from dask.distributed import Client, LocalCluster
         except ImportError:
@@ -90,31 +153,69 @@ class DaskExecutor(Executor):
                 "--dask needs Dask distributed: pip install 'pretrial[cluster]'"
             ) from None
         self._cluster = None
+        self._env_set = False
         try:
             if address == "local":
                 n = workers or os.cpu_count() or 1
+                # Our own cluster: its failures reach the user as one-line errors from map(), so the workers'
+                # INFO chatter and tracebacks (a worker that died is restarted, logging as it starts) stay
+                # quiet. Workers are spawned processes that read this at import, restarts included.
+                if _DASK_WORKER_LOGS not in os.environ:
+                    os.environ[_DASK_WORKER_LOGS] = "critical"
+                    self._env_set = True
                 self._cluster = LocalCluster(
-                    n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=40
+                    n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                    silence_logs=logging.CRITICAL,
+                    # no dashboard, but the scheduler's HTTP server (health checks) would take port 8787 and
+                    # warn when another cluster holds it: any free port, on this machine only
+                    scheduler_kwargs={"dashboard_address": "127.0.0.1:0"},
                 )
                 self._client = Client(self._cluster)
             else:
                 self._client = Client(address, timeout="20s")
         except OSError as exc:
+            self._restore_env()
             raise PretrialError(f"--dask {address}: cannot reach the scheduler ({exc})") from None
-        self.address = address
-        self.workers = len(self._client.scheduler_info().get("workers", {})) or (workers or 1)
+        except BaseException:
+            self._restore_env()
+            raise
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
+        # retries: a task that raised is run again; a task whose worker died is rescheduled by the scheduler
+        # on another worker up to distributed.scheduler.allowed-failures (3) times, then raises KilledWorker
         futures = self._client.map(fn, list(items), pure=False, retries=2)
         try:
-            return self._client.gather(futures)
+            # one future at a time rather than client.gather: a gather interrupted by Ctrl-C leaves tasks on
+            # dask's event loop that print "Task exception was never retrieved" when the client closes
+            return [f.result() for f in futures]
         except Exception as exc:
+            if type(exc).__name__ == "KilledWorker":
+                if self._cluster is not None:
+                    # let our nannies finish restarting the dead workers: a worker closed while it starts
+                    # crashes with a traceback of its own
+                    with contextlib.suppress(Exception):
+                        self._client.wait_for_workers(self.workers, timeout=30)
+                tries = getattr(exc, "allowed_failures", None)
+                times = f"{tries + 1} times" if isinstance(tries, int) else "repeatedly"
+                logs = "" if self._cluster is not None else "check the workers' logs, or "
+                raise PretrialError(
+                    f"a Dask worker died {times} while running the same work item (KilledWorker: killed, out of "
+                    f"memory, or a crash in native code); {logs}run with --workers 1 and no --dask to see the failure"
+                ) from None
             raise PretrialError(f"Dask work failed after retries: {type(exc).__name__}: {exc}") from None
 
     def close(self) -> None:
-        self._client.close()
-        if self._cluster is not None:
-            self._cluster.close()
+        try:
+            self._client.close()
+            if self._cluster is not None:
+                self._cluster.close()
+        finally:
+            self._restore_env()
+
+    def _restore_env(self) -> None:
+        if self._env_set:
+            os.environ.pop(_DASK_WORKER_LOGS, None)
+            self._env_set = False
 
     def describe(self) -> dict[str, Any]:
         return {"executor": self.name, "workers": self.workers, "scheduler": self.address}

@@ -79,6 +79,11 @@ def _fmt(row: list[float]) -> str:
 
 def write_golden(path: str | os.PathLike[str], obs: np.ndarray, actions: np.ndarray, about: list[str]) -> None:
     """Write a golden file atomically; ``about`` lines go into the header after the format description."""
+    atomic_write_text(path, golden_text(obs, actions, about))
+
+
+def golden_text(obs: np.ndarray, actions: np.ndarray, about: list[str]) -> str:
+    """A golden file's text (see :func:`write_golden`)."""
     q, t, n_in = obs.shape
     n_out = actions.shape[2]
     head = [
@@ -99,7 +104,7 @@ def write_golden(path: str | os.PathLike[str], obs: np.ndarray, actions: np.ndar
         lines.append(f"steps {t}")
         lines.extend(_fmt(r) for r in seq)
     lines.append("end")
-    atomic_write_text(path, "\n".join(lines) + "\n")
+    return "\n".join(lines) + "\n"
 
 
 @dataclass(frozen=True)

@@ -99,6 +99,14 @@ def linear_params(physics: Physics, p: Array) -> tuple[Array, list[str]]:
     return out, notes
 
 
+def equations_reason(physics: Physics) -> str | None:
+    """Why ``physics`` cannot be linearized at all (no equations of motion), or None."""
+    if type(physics).derivatives is Physics.derivatives:
+        return (f"{physics.env_id} gives no equations of motion (a plain gymnasium env, stepped as a black box); "
+                "linear margins and the LQR baseline need a physics-core plant")
+    return None
+
+
 def held_states(physics: Physics, x: Array, p: Array) -> list[int]:
     """States whose derivative is identically zero (checked at random points near ``x``)."""
     rng = np.random.default_rng(0)
@@ -454,6 +462,9 @@ def loop_report(
     def refuse(reason: str, x: Array | None = None, a: Array | None = None) -> LoopReport:
         return LoopReport(False, reason, notes, x, a, [], None, **common)
 
+    no_equations = equations_reason(physics)
+    if no_equations:
+        return refuse(no_equations)
     if not getattr(policy, "feed_forward", True):
         if not sampled:
             return refuse("recurrent policy: its network state advances once per control period, a discrete-time "

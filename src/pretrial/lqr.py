@@ -43,6 +43,7 @@ from .linear import (
     EQUILIBRIUM_TOL,
     NotLinearizable,
     differences,
+    equations_reason,
     held_states,
     linear_params,
     plant_model,
@@ -233,6 +234,9 @@ def design_lqr(
         Unknown weight names, observations that do not give the states the
         design needs, or a plant the Riccati equation cannot stabilize.
     """
+    no_equations = equations_reason(physics)
+    if no_equations:
+        raise InputError(f"LQR baseline: {no_equations}")
     p = resolve_params(physics, params)
     p_lin, notes = linear_params(physics, p)
     target = physics.target_state(p_lin[None, :])[0]

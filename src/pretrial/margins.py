@@ -469,8 +469,11 @@ def _multi_loop(a: Array, b: Array, c: Array, dt: float | None, grid: Array) -> 
         ms = np.nan_to_num(ms, nan=0.0, posinf=0.0, neginf=0.0)
     d = _osborne(ms)
     bound = _scaled_norm(ms, d)
+    # continuous and strictly proper: (I + L)^-1 - I/2 -> I/2 as w -> inf, whose mu is 1/2, wherever the grid ends
+    floor = 0.5 if dt is None else 0.0
     if m == 1:
         peak, _ = _refine_max(lambda w: float(abs(half_s(np.array([w]))[0, 0, 0])), grid, bound)
+        peak = max(peak, floor)
         return 1.0 / peak if peak > 0 else math.inf
 
     def mu_at(w: float) -> float:
@@ -487,7 +490,7 @@ def _multi_loop(a: Array, b: Array, c: Array, dt: float | None, grid: Array) -> 
     # elsewhere the Osborne bound stands; the maximum over all is an upper bound of max mu on the grid
     top = set(np.argsort(bound)[::-1][:3].tolist())
     rest = [bound[k] for k in range(len(grid)) if k not in top]
-    peak = max([best, *rest])
+    peak = max([best, *rest, floor])
     return 1.0 / peak if peak > 0 else math.inf
 
 

@@ -194,6 +194,23 @@ def spec_of(physics: Physics, name: str) -> ParamSpec:
     raise AssertionError  # pragma: no cover
 
 
+def describe_values(physics: Physics, values: Mapping[str, np.ndarray]) -> str:
+    """``name=v unit`` per name (``name in [lo, hi] unit`` where the values differ), comma separated.
+
+    How warnings name where something happened, e.g. the parameters of diverged episodes.
+    """
+    parts = []
+    for name, v in values.items():
+        v = np.asarray(v, dtype=float).ravel()
+        if v.size == 0:
+            continue
+        unit = "s" if name == CONTROL_PERIOD else spec_of(physics, name).unit
+        unit = f" {unit}" if unit and unit not in ("-", "1", "obs unit") else ""
+        lo, hi = float(np.min(v)), float(np.max(v))
+        parts.append(f"{name}={lo:.4g}{unit}" if lo == hi else f"{name} in [{lo:.4g}, {hi:.4g}]{unit}")
+    return ", ".join(parts)
+
+
 class Loop:
     """The perturbed control loop around a plant, for a batch of ``n`` rows.
 

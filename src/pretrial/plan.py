@@ -275,8 +275,20 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         entry = {k: v for k, v in entry.items() if v is not None}
         if not entry:
             raise InputError(f"{path}: {key}: give at least one of low, high, low_ratio, high_ratio")
-        if varied[name].nominal == 0 and ("low_ratio" in entry or "high_ratio" in entry):
+        v = varied[name]
+        if v.nominal == 0 and ("low_ratio" in entry or "high_ratio" in entry):
             raise InputError(f"{path}: {key}: the nominal of {name} is 0, so a ratio means nothing; give low/high")
+        for k, x in entry.items():
+            physical = x * v.nominal if k.endswith("_ratio") else x
+            side_ok = physical <= v.nominal if k.startswith("low") else physical >= v.nominal
+            if k.endswith("_ratio") and x <= 0:
+                raise InputError(f"{path}: {key}.{k}: {x!r} not allowed (a multiple of the nominal, > 0)")
+            if not side_ok:
+                raise InputError(f"{path}: {key}.{k}: {x!r} is on the wrong side of the nominal {v.nominal:g} "
+                                 f"{v.unit} (low <= nominal <= high)")
+            if not v.low <= physical <= v.high:
+                raise InputError(f"{path}: {key}.{k}: {x!r} lies outside the searched range [{v.low:g}, {v.high:g}] "
+                                 f"{v.unit} of {name}, so no sweep could show it; widen [[vary]] range")
         required_margins[name] = entry
 
     if episodes < episodes_needed(rate) and any(n in run for n in ("margins", "map", "worstcase")):

@@ -451,6 +451,10 @@ def run_cli(args: argparse.Namespace) -> int:
     rep.plan = getattr(args, "plan", None)
     trace, steps, params = rep.outcome.trace, rep.outcome.steps[0], rep.scenarios.params
     note = rep.setup.words() or "nominal"
+    blew_up = rep.outcome.failure_counts().get("diverged", 0)
+    if blew_up:
+        print(f"pretrial: warning: {blew_up} of {args.episodes} episodes diverged (the simulation blew up; counted "
+              f"as failures) at {note}", file=sys.stderr)
     try:
         if args.csv:
             traces.write_trace_csv(args.csv, rep.physics, trace, params, steps)

@@ -381,6 +381,16 @@ def _integrator(ic: Mapping[str, Any] | None) -> list[Block]:
     return out
 
 
+def _diverged(d: Mapping[str, Any] | None) -> list[Block]:
+    if not d:
+        return []
+    return [Heading(2, "Diverged episodes"),
+            Para(f"{d.get('episodes')} episodes diverged: the simulation blew up (a state became infinite or "
+                 f"not a number) at {d.get('where')}. They count as failures. Numbers this far out are the model's "
+                 "limits as much as the controller's: check the parameter values before reading them as margins."),
+            Code("replay one", str((d.get("first") or {}).get("replay", "")))]
+
+
 def _summary_rows(part: Mapping[str, Any]) -> dict[str, str]:
     """Comparable one-line summaries of one controller's results (row label -> text)."""
     rows = {"verdict": str(part.get("verdict") or DASH).upper()}
@@ -502,6 +512,7 @@ def build_document(results: Mapping[str, Any], images: Mapping[str, str] | None 
         *_success_map(results.get("success_map"), images),
         *_linear(results, images),
         *_integrator(results.get("integrator_check")),
+        *_diverged(results.get("diverged")),
         *_baseline(results),
         *_reproduce(results, units),
         Heading(2, "Cautions"), Items(cautions),

@@ -27,12 +27,14 @@ from pretrial_envs.core import Physics
 from . import streams
 from .errors import InputError
 from .execution import Executor
-from .perturb import CONTROL_PERIOD, PERTURBATIONS, with_control_period
+from .perturb import CONTROL_PERIOD, PERTURBATIONS, describe_values, with_control_period
 from .plan import Z2, Plan, Vary
 from .rollout import keyed_scenarios, run_episodes
 
 #: rows per work item: fixed, so results never depend on the number of workers
 CHUNK = 4096
+#: diverged episodes whose values a sweep keeps (for the warning's ranges and its replay line)
+_DIVERGED_KEPT = 1000
 #: worst Monte Carlo samples listed with their replay commands
 WORST_LISTED = 10
 #: integrator check: changes above these flag a policy that exploits the solver (our thresholds)
@@ -108,6 +110,9 @@ class Campaign:
     policy_arg: str
     progress: Callable[[int], None] | None = None
     _plants: dict[float, Physics] = field(default_factory=dict, repr=False)
+    #: diverged episodes so far: count, and the values (varied names) and keys of each
+    _diverged: list[tuple[dict[str, float], int, int]] = field(default_factory=list, repr=False)
+    diverged_episodes: int = 0
 
     def nominal(self, name: str) -> float:
         """Nominal value of a varied name here (policy/plan overrides included)."""
@@ -162,7 +167,31 @@ class Campaign:
                 success[r], failure[r], score[r], steps[r] = s, f, sc, st
                 if self.progress is not None:
                     self.progress(len(r))
-        return Batch(success, failure.astype(str), score, steps)
+        failure = failure.astype(str)
+        blew_up = np.flatnonzero(failure == "diverged")
+        self.diverged_episodes += len(blew_up)
+        for i in blew_up[: max(0, _DIVERGED_KEPT - len(self._diverged))]:
+            row = {k: float(v[i]) for k, v in vals.items()}
+            if np.any(period != self.physics.dt):
+                row[CONTROL_PERIOD] = float(period[i])
+            self._diverged.append((row, int(seeds[i]), int(episodes[i])))
+        return Batch(success, failure, score, steps)
+
+    def diverged(self) -> dict[str, Any] | None:
+        """Diverged episodes (numerical blow-up, counted as failures): how many, where, and a replay of one."""
+        if not self.diverged_episodes:
+            return None
+        names = sorted({k for row, _, _ in self._diverged for k in row})
+        values = {k: np.array([row[k] for row, _, _ in self._diverged if k in row]) for k in names}
+        first, seed, episode = self._diverged[0]
+        return {
+            "episodes": int(self.diverged_episodes),
+            "where": describe_values(self.physics, values) or "the plan's nominal parameters",
+            "ranges": {k: [float(v.min()), float(v.max())] for k, v in values.items()},
+            # episode e of a seed is the last of a replay of e + 1 episodes
+            "first": {"values": first, "seed": seed, "episode": episode,
+                      "replay": self.replay_command(first, seed, episode + 1)},
+        }
 
     # ------------------------------------------------------------- replay commands
     def replay_command(self, values: Mapping[str, float], seed: int, episodes: int = 1) -> str:
@@ -641,10 +670,21 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 
-def run_analyses(c: Campaign) -> tuple[dict[str, Any], dict[str, np.ndarray] | None]:
-    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo samples)."""
+def run_analyses(c: Campaign, say: Callable[[str], None] | None = None
+                 ) -> tuple[dict[str, Any], dict[str, np.ndarray] | None]:
+    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo samples).
+
+    ``say`` receives one line as each analysis starts (progress where no bar can be drawn).
+    """
     plan = c.plan
     run = set(plan.analyses)
+    order = [a for a in ("linear", "linear_sampled", "integrator_check", "margins", "montecarlo", "worstcase",
+                         "sensitivity", "map") if a in run]
+
+    def starting(name: str) -> None:
+        if say is not None:
+            say(f"  [{order.index(name) + 1}/{len(order)}] {name}")
+
     res: dict[str, Any] = {k: None for k in ("margins", "montecarlo", "worstcase", "sensitivity", "success_map",
                                              "linear", "linear_sampled", "linear_details", "integrator_check")}
     samples = None
@@ -655,21 +695,30 @@ def run_analyses(c: Campaign) -> tuple[dict[str, Any], dict[str, np.ndarray] | N
     if "linear" in run or "linear_sampled" in run:
         res["linear_details"] = {"continuous": None, "sampled": None}
     if "linear" in run:
+        starting("linear")
         res["linear"], res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
     if "linear_sampled" in run:
+        starting("linear_sampled")
         res["linear_sampled"], res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
     if "integrator_check" in run:
+        starting("integrator_check")
         res["integrator_check"] = integrator_check(c, seed("integrator_check"))
     if "margins" in run:
+        starting("margins")
         res["margins"] = margins(c, seed("margins"))
     if "montecarlo" in run:
+        starting("montecarlo")
         res["montecarlo"], samples = montecarlo(c, seed("montecarlo"))
     if "worstcase" in run:
+        starting("worstcase")
         res["worstcase"] = worstcase(c, seed("worstcase"))
     if "sensitivity" in run:
+        starting("sensitivity")
         res["sensitivity"] = sensitivity(c, seed("sensitivity"))
     if "map" in run:
+        starting("map")
         res["success_map"] = success_map(c, seed("map"))
+    res["diverged"] = c.diverged()
     res["requirements"] = requirements(plan, res)
     res["verdict"] = verdict(res["requirements"])
     return res, samples

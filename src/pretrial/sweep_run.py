@@ -93,6 +93,11 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -
     from .replay import env_id_of
 
     plan_env, plan_options, plan_start = _scenario_head(plan_path) if plan_path else (None, {}, {})
+    if plan_env is not None:
+        try:
+            env_id_of(plan_env)
+        except InputError as exc:
+            raise InputError(f"{plan_path}: scenario.env: {exc.message}") from None
     where = f"{plan_path}: scenario.options" if plan_path else "--env"
     if policy_arg == LQR:
         name = env or plan_env
@@ -181,7 +186,7 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     try:
         say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
         camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
-        part, samples = run_analyses(camp)
+        part, samples = run_analyses(camp, say)
         results = _results_skeleton(ctl, plan, policy_arg) | part
         results["baseline"] = None
         if baseline:
@@ -190,11 +195,16 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
             say("baseline: the same plan on the LQR baseline")
             lqr = baseline_lqr(ctl.physics, ctl.base_params, plan)
             base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
-            base_part, _ = run_analyses(base_camp)
+            base_part, _ = run_analyses(base_camp, say)
             results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
     finally:
         if bar is not None:
             bar.close()
+    for who, part in (("", results), ("LQR baseline: ", results.get("baseline") or {})):
+        d = part.get("diverged")
+        if d:
+            print(f"pretrial: warning: {who}{d['episodes']} episodes diverged (the simulation blew up; counted as "
+                  f"failures) at {d['where']}; replay one: {d['first']['replay']}", file=sys.stderr)
     results["cautions"] = list(CAUTIONS)
     from .console import jsonable
 
@@ -242,6 +252,9 @@ def _check_out(out: Path) -> None:
         probe = probe.parent
     if not os.access(probe, os.W_OK | os.X_OK):
         raise InputError(f"--out {out}: {probe} is not writable")
+    from .files import check_free_space
+
+    check_free_space(out)  # found out now, not after the work
 
 
 # --------------------------------------------------------------------------- #

@@ -1,0 +1,8 @@
+"""``python -m pretrial``: the same command line as the ``pretrial`` script."""
+
+import sys
+
+from .cli import main
+
+if __name__ == "__main__":
+    sys.exit(main())

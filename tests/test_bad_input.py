@@ -1,0 +1,431 @@
+"""Every command against bad input: one line naming the file, key or value, exit 2, nothing left behind.
+
+The rule is the tool's own contract (README, "Errors"): ``pretrial: error: <one line>`` on stderr, exit
+code 2, no traceback unless ``--debug``, and the working directory exactly as it was. Each case is run
+in-process through :func:`pretrial.cli.main`; file kinds (missing, a directory, empty, binary, malformed,
+another kind of file) are crossed with every argument that names a file.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from collections.abc import Callable
+from pathlib import Path
+
+import pytest
+from test_sweep import balancing_policy_file
+
+from pretrial.cli import main
+
+REPO = Path(__file__).resolve().parents[1]
+PLAN = REPO / "configs" / "sweeps" / "cartpole.toml"
+DRONE_PLAN = REPO / "configs" / "sweeps" / "drone-pair.toml"
+CONFIG = REPO / "configs" / "cartpole.toml"
+
+
+def snapshot(root: Path) -> dict[str, bytes | None]:
+    """Every entry under ``root`` with its bytes (None for directories), hidden ones included."""
+    return {str(p.relative_to(root)): (None if p.is_dir() else p.read_bytes()) for p in sorted(root.rglob("*"))}
+
+
+def refused(capsys, argv: list[str]) -> str:
+    """Run ``pretrial ARGV``; assert the contract; return the one error line."""
+    capsys.readouterr()
+    try:
+        code = main(argv)
+    except SystemExit as exc:  # argparse usage errors
+        code = exc.code
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert code == 2, (argv, code, out, err)
+    assert len(lines) == 1, err
+    assert lines[0].startswith("pretrial"), err
+    assert "error:" in lines[0] and "Traceback" not in out + err
+    return lines[0]
+
+
+@pytest.fixture(scope="module")
+def policy(tmp_path_factory) -> Path:
+    return balancing_policy_file(tmp_path_factory.mktemp("bad_input_policy"))
+
+
+@pytest.fixture
+def work(tmp_path, monkeypatch):
+    """An empty working directory (default output paths would land here)."""
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
+# --------------------------------------------------------------------------- #
+# files: every kind of bad file in every argument that names one
+# --------------------------------------------------------------------------- #
+def _missing(d: Path, suffix: str) -> Path:
+    return d / f"missing{suffix}"
+
+
+def _directory(d: Path, suffix: str) -> Path:
+    p = d / f"folder{suffix}"
+    p.mkdir()
+    return p
+
+
+def _empty(d: Path, suffix: str) -> Path:
+    p = d / f"empty{suffix}"
+    p.write_bytes(b"")
+    return p
+
+
+def _binary(d: Path, suffix: str) -> Path:
+    p = d / f"binary{suffix}"
+    p.write_bytes(bytes(range(256)) * 4)
+    return p
+
+
+def _latin1(d: Path, suffix: str) -> Path:
+    p = d / f"latin1{suffix}"
+    p.write_bytes('# mass in kg, measured by Müller\n[scenario]\nenv = "pretrial/CartPole-v0"\n'.encode("latin-1"))
+    return p
+
+
+def _malformed(d: Path, suffix: str) -> Path:
+    p = d / f"malformed{suffix}"
+    p.write_text('[scenario\nenv = "pretrial/CartPole-v0"\n' if suffix == ".toml" else '{"schema": "pretrial.po')
+    return p
+
+
+def _other_kind(d: Path, suffix: str) -> Path:
+    """A well-formed file of the wrong kind: JSON where TOML is expected and the other way round."""
+    p = d / f"other{suffix}"
+    p.write_text('{"name": "pole_mass", "range": [0.1, 2.0]}\n' if suffix == ".toml" else 'x = 1\n[task]\n')
+    return p
+
+
+def _json_array(d: Path, suffix: str) -> Path:
+    p = d / f"array{suffix}"
+    p.write_text("[1, 2, 3]\n" if suffix == ".json" else "values = [1, 2, 3]\n")
+    return p
+
+
+FILE_KINDS: list[Callable[[Path, str], Path]] = [
+    _missing, _directory, _empty, _binary, _latin1, _malformed, _other_kind, _json_array,
+]
+
+
+def _slots(policy: Path, out: Path) -> dict[str, tuple[str, Callable[[Path], list[str]]]]:
+    """Argument slot -> (file suffix, argv with the bad file in that slot)."""
+    return {
+        "evolve CONFIG": (".toml", lambda f: ["evolve", str(f), "--out", str(out), "--workers", "1", "--quiet"]),
+        "evolve --resume": (".json", lambda f: ["evolve", str(CONFIG), "--resume", str(f), "--workers", "1"]),
+        "replay POLICY": (".json", lambda f: ["replay", str(f)]),
+        "replay --plan": (".toml", lambda f: ["replay", str(policy), "--plan", str(f)]),
+        "sweep POLICY": (".json", lambda f: ["sweep", str(f), "--plan", str(PLAN), "--out", str(out),
+                                             "--workers", "1"]),
+        "sweep --plan": (".toml", lambda f: ["sweep", str(policy), "--plan", str(f), "--out", str(out),
+                                             "--workers", "1"]),
+        "sweep lqr --plan": (".toml", lambda f: ["sweep", "lqr", "--plan", str(f), "--out", str(out),
+                                                 "--workers", "1"]),
+        "export POLICY": (".json", lambda f: ["export", str(f), "--to", "c", "--out", str(out)]),
+    }
+
+
+SLOTS = list(_slots(Path("p"), Path("o")))
+
+
+@pytest.mark.parametrize("kind", FILE_KINDS, ids=lambda k: k.__name__.strip("_"))
+@pytest.mark.parametrize("slot", SLOTS)
+def test_bad_file_in_every_slot(capsys, work, policy, slot, kind):
+    files = work / "files"
+    files.mkdir()
+    suffix, argv_of = _slots(policy, work / "out")[slot]
+    bad = kind(files, suffix)
+    before = snapshot(work)
+    line = refused(capsys, argv_of(bad))
+    assert bad.name in line, line  # the error names the file
+    assert snapshot(work) == before  # nothing written, nothing half-made
+
+
+# --------------------------------------------------------------------------- #
+# values: NaN, infinities, negatives, zeros, reversed and out-of-range ranges
+# --------------------------------------------------------------------------- #
+@pytest.mark.parametrize(
+    "setting, needle",
+    [
+        ("pole_mass=nan", "pole_mass"), ("pole_mass=inf", "pole_mass"), ("pole_mass=-0.1", "pole_mass"),
+        ("pole_mass=0", "pole_mass"), ("cart_mass=1e400", "cart_mass"), ("sensor_noise_std=-0.01", "sensor_noise_std"),
+        ("sensor_noise_std=nan", "sensor_noise_std"), ("actuator_gain=-inf", "actuator_gain"),
+        ("actuator_delay_s=-0.02", "actuator_delay_s"), ("control_period_s=0", "control_period_s"),
+        ("control_period_s=nan", "control_period_s"), ("control_period_s=-0.02", "control_period_s"),
+        ("wind=2", "wind"), ("=3", "--set"), ("pole_mass=", "--set"),
+    ],
+)
+def test_replay_bad_setting(capsys, work, policy, setting, needle):
+    before = snapshot(work)
+    line = refused(capsys, ["replay", str(policy), "--set", setting, "--csv", str(work / "trace.csv")])
+    assert needle in line, line
+    assert snapshot(work) == before
+
+
+@pytest.mark.parametrize("start", ["nan,0,0,0", "0,inf,0,0", "theta=nan", "1,2,3", "x=1e999", "speed=0.1"])
+def test_replay_bad_start(capsys, work, policy, start):
+    line = refused(capsys, ["replay", str(policy), "--start", start])
+    assert "--start" in line, line
+
+
+def _plan_with(tmp: Path, old: str, new: str) -> Path:
+    text = PLAN.read_text()
+    assert old in text, old
+    p = tmp / "plan.toml"
+    p.write_text(text.replace(old, new, 1))
+    return p
+
+
+PLAN_EDITS = [
+    ("range = [0.1, 10.0]", "range = [10.0, 0.1]", "range"),
+    ("range = [0.1, 10.0]", "range = [0.1, nan]", "range"),
+    ("range = [0.1, 10.0]", "range = [-inf, 10.0]", "range"),
+    ("range = [0.1, 10.0]", "range = [0.1]", "range"),
+    ("range = [0.1, 10.0]", 'range = ["light", "heavy"]', "range"),
+    ("range = [0.05, 5.0]", "range = [-1.0, 5.0]", "actuator_gain"),
+    ("dispersion = [0.8, 1.5]", "dispersion = [1.5, 0.8]", "dispersion"),
+    ("episodes = 80", "episodes = 0", "episodes"),
+    ("episodes = 80", "episodes = -5", "episodes"),
+    ("episodes = 80", "episodes = 8.5", "episodes"),
+    ("episodes = 80", 'episodes = "80"', "episodes"),
+    ("horizon = 10.0", "horizon = nan", "horizon"),
+    ("horizon = 10.0", "horizon = inf", "horizon"),
+    ("horizon = 10.0", "horizon = -1.0", "horizon"),
+    ("horizon = 10.0", "horizon = 0.0", "horizon"),
+    ("seed = 1", "seed = -1", "seed"),
+    ("x = 0.05", "x = -0.05", "x"),
+    ("x = 0.05", "x = nan", "x"),
+    ("x = 0.05", "speed = 0.05", "speed"),
+    ("success_rate = 0.95", "success_rate = 1.5", "success_rate"),
+    ("success_rate = 0.95", "success_rate = nan", "success_rate"),
+    ("gain_margin_db = 6.0", "gain_margin_db = -inf", "gain_margin_db"),
+    ("tolerance = 0.02", "tolerance = 0.0", "tolerance"),
+    ("montecarlo_samples = 2000", "montecarlo_samples = 0", "montecarlo_samples"),
+    ("map_points = 6", "map_points = 1", "map_points"),
+    ('map = ["pole_mass", "actuator_delay_s"]', 'map = ["pole_mass", "wind"]', "wind"),
+    ('name = "pole_mass"', 'name = "pole_mas"', "pole_mas"),
+    ('env = "pretrial/CartPole-v0"', 'env = "pretrial/CartPole-v9"', "CartPole-v9"),
+    ('env = "pretrial/CartPole-v0"', "env = 3", "env"),
+    ("[analysis]", "[analysis]\nworstcase_iteration = 3", "worstcase_iteration"),
+    ("pole_mass = { high_ratio = 2.0 }", "pole_mass = { high_ratio = -2.0 }", "high_ratio"),
+]
+
+
+@pytest.mark.parametrize("old, new, needle", PLAN_EDITS, ids=[e[1] for e in PLAN_EDITS])
+@pytest.mark.parametrize("command", ["sweep", "replay"])
+def test_bad_plan_values(capsys, work, policy, command, old, new, needle):
+    plans = work / "plans"
+    plans.mkdir()
+    plan = _plan_with(plans, old, new)
+    before = snapshot(work)
+    if command == "sweep":
+        argv = ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "out"), "--workers", "1"]
+    else:
+        argv = ["replay", str(policy), "--plan", str(plan)]
+    line = refused(capsys, argv)
+    assert "plan.toml" in line and needle in line, line
+    assert snapshot(work) == before
+
+
+# --------------------------------------------------------------------------- #
+# a policy that does not fit
+# --------------------------------------------------------------------------- #
+def test_policy_for_another_env(capsys, work, policy):
+    line = refused(capsys, ["sweep", str(policy), "--plan", str(DRONE_PLAN), "--out", str(work / "o"),
+                            "--workers", "1"])
+    assert "CartPole" in line and "DronePair" in line, line
+    line = refused(capsys, ["replay", str(policy), "--plan", str(DRONE_PLAN)])
+    assert "CartPole" in line and "DronePair" in line, line
+    assert not (work / "o").exists()
+
+
+def test_policy_whose_inputs_do_not_fit(capsys, work, policy):
+    plan = _plan_with(work, "[scenario.start]", "[scenario.options]\npoles = 2\n\n[scenario.start]")
+    line = refused(capsys, ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "o"), "--workers", "1"])
+    assert "poles" in line, line
+
+
+def test_policy_whose_input_count_was_edited_consistently(capsys, work, policy):
+    """A file whose hash was recomputed after cutting an input: refused at load or as not fitting the env."""
+    from pretrial.files import canonical_json, sha256_hex
+
+    doc = json.loads(policy.read_text())
+    doc["network"]["inputs"] = doc["network"]["inputs"][:3] if "inputs" in doc.get("network", {}) else None
+    doc.pop("content_sha256", None)
+    doc["content_sha256"] = sha256_hex(canonical_json(doc))
+    bad = work / "cut.json"
+    bad.write_text(json.dumps(doc))
+    for argv in (["replay", str(bad)], ["export", str(bad), "--to", "python", "--out", str(work / "x")]):
+        assert "cut.json" in refused(capsys, argv)
+    assert not (work / "x").exists()
+
+
+# --------------------------------------------------------------------------- #
+# the other commands' arguments
+# --------------------------------------------------------------------------- #
+@pytest.mark.parametrize(
+    "argv, needle",
+    [
+        (["envs", "CartPole-v9"], "CartPole-v9"),
+        (["envs", "CartPole-v0", "--option", "poles=3"], "poles"),
+        (["envs", "CartPole-v0", "--option", "polls=2"], "polls"),
+        (["envs", "CartPole-v0", "--option", "poles"], "--option"),
+        (["sweep", "lqr", "--plan", str(PLAN), "--workers", "0"], "--workers"),
+        (["sweep", "lqr", "--plan", str(PLAN), "--baseline", "pid"], "--baseline"),
+        (["sweep", "lqr", "--plan", str(CONFIG)], "run config"),
+        (["evolve", str(PLAN)], "scenario"),
+        (["evolve", str(CONFIG), "--seed", "-1"], "--seed"),
+        (["evolve", str(CONFIG), "--generations", "0"], "--generations"),
+        (["evolve", str(CONFIG), "--workers", "two"], "--workers"),
+        (["replay", "lqr"], "--env"),
+        (["replay", "lqr", "--env", "Pendulum-v1"], "Pendulum-v1"),
+        (["replay", "lqr", "--env", "CartPole-v0", "--seed", "-4"], "--seed"),
+        (["replay", "lqr", "--env", "CartPole-v0", "--plot", "trace.bmp"], "trace.bmp"),
+    ],
+)
+def test_other_arguments(capsys, work, argv, needle):
+    before = snapshot(work)
+    assert needle in refused(capsys, argv)
+    assert snapshot(work) == before
+
+
+@pytest.mark.parametrize("prefix", ["1policy", "my-policy", "int", "", "x" * 200])
+def test_export_bad_prefix(capsys, work, policy, prefix):
+    out = work / "out"
+    assert "--prefix" in refused(capsys, ["export", str(policy), "--to", "c", "--out", str(out), "--prefix", prefix])
+    assert not out.exists()
+
+
+def test_outputs_that_cannot_be_written(capsys, work, policy):
+    (work / "afile").write_text("notes\n")
+    before = snapshot(work)
+    assert "afile" in refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile")])
+    assert "afile" in refused(capsys, ["export", str(policy), "--to", "c", "--out", str(work / "afile")])
+    assert "afile" in refused(capsys, ["evolve", str(CONFIG), "--out", str(work / "afile" / "run")])
+    assert "afile" in refused(capsys, ["replay", str(policy), "--csv", str(work / "afile" / "t.csv")])
+    assert snapshot(work) == before
+
+
+def test_debug_shows_the_traceback(capsys, work):
+    capsys.readouterr()
+    assert main(["--debug", "replay", str(work / "nothing.json")]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" in err and err.strip().splitlines()[-1].startswith("pretrial: error:")
+
+
+def test_existing_output_is_never_overwritten(capsys, work, policy):
+    out = work / "exported"
+    out.mkdir()
+    (out / "pretrial_policy.c").write_text("/* hand-tuned, keep */\n")
+    before = snapshot(work)
+    # export writes into a directory; a file of the same name that is already there is kept
+    code = main(["export", str(policy), "--to", "c", "--out", str(out)])
+    err = capsys.readouterr().err
+    if code == 0:
+        pytest.fail("export overwrote an existing file without being asked")
+    assert "pretrial_policy.c" in err and snapshot(work) == before
+    shutil.rmtree(out)
+
+
+# --------------------------------------------------------------------------- #
+# fuzzing the plan and results loaders: nothing but the tool's own errors escapes
+# --------------------------------------------------------------------------- #
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+from test_config import _fuzz_toml, _scalars  # noqa: E402
+
+from pretrial.errors import InputError, PretrialError  # noqa: E402
+
+_FUZZ = settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+
+_PLAN_KEYS = sorted({
+    "analysis", "baseline", "delay_steps", "dispersion", "distribution", "env", "episodes", "gain_margin_db",
+    "horizon", "map", "map_episodes", "map_points", "margins", "mean", "montecarlo_sampler", "montecarlo_samples",
+    "name", "options", "params", "phase_margin_deg", "q", "r", "range", "require", "run", "scenario", "seed",
+    "sensitivity_episodes", "sensitivity_samples", "start", "std", "success_rate", "tolerance", "units",
+    "worstcase_episodes", "worstcase_iterations", "worstcase_population", "pole_mass", "x", "theta", "force",
+    "actuator_gain", "control_period_s", "high", "low", "high_ratio", "low_ratio", "poles", "rnage", "ratio",
+    "normal", "sobol", "linear", "montecarlo",
+})
+_plan_values = st.recursive(
+    st.one_of(_scalars, st.sampled_from(["pole_mass", "actuator_gain", "ratio", "normal", "sobol", "margins",
+                                         "pretrial/CartPole-v0", "x"])),
+    lambda inner: st.one_of(st.lists(inner, max_size=3),
+                            st.dictionaries(st.sampled_from(_PLAN_KEYS), inner, max_size=3)),
+    max_leaves=10,
+)
+_plan_tables = st.dictionaries(
+    st.sampled_from(["scenario", "scenario.start", "scenario.params", "scenario.options", "analysis", "require",
+                     "require.margins", "baseline", "baseline.q", "baseline.r", "[vary]", "[vary] ", "sceanrio"]),
+    st.dictionaries(st.sampled_from(_PLAN_KEYS), _plan_values, max_size=5),
+    max_size=6,
+)
+
+
+def _plan_only_input_errors(path: Path) -> None:
+    from pretrial.sweep_run import controlled
+
+    try:
+        controlled("lqr", str(path), "CartPole-v0")
+    except PretrialError as exc:
+        assert isinstance(exc, InputError), exc
+        assert "\n" not in str(exc) and str(path) in str(exc), exc
+
+
+@_FUZZ
+@given(st.binary(max_size=300))
+def test_fuzz_plan_random_bytes(tmp_path, data):
+    path = tmp_path / "plan.toml"
+    path.write_bytes(data)
+    _plan_only_input_errors(path)
+
+
+@_FUZZ
+@given(_plan_tables)
+def test_fuzz_plan_tomlish_text(tmp_path, tables):
+    lines = ["[scenario]", 'env = "pretrial/CartPole-v0"', "episodes = 80"] if "scenario" not in tables else []
+    for name, table in tables.items():
+        lines.append(f"[{name.strip()}]")
+        lines += [f"{k} = {_fuzz_toml(v)}" for k, v in table.items()]
+    path = tmp_path / "plan.toml"
+    path.write_text("\n".join(lines), encoding="utf-8")
+    _plan_only_input_errors(path)
+
+
+def _results_only_input_errors(path: Path) -> None:
+    from pretrial.sweep_run import read_results
+
+    try:
+        read_results(path)
+    except PretrialError as exc:
+        assert isinstance(exc, InputError) and "\n" not in str(exc) and str(path) in str(exc), exc
+    else:
+        pytest.fail("a made-up file was accepted as sweep results")
+
+
+@_FUZZ
+@given(st.one_of(st.binary(max_size=200), st.recursive(
+    st.one_of(st.none(), st.booleans(), st.floats(allow_nan=False), st.text(max_size=8)),
+    lambda inner: st.one_of(st.lists(inner, max_size=3), st.dictionaries(
+        st.sampled_from(["schema", "schema_version", "content_sha256", "verdict", "x"]), inner, max_size=4)),
+    max_leaves=8)))
+def test_fuzz_results_loader(tmp_path, value):
+    path = tmp_path / "results.json"
+    if isinstance(value, bytes):
+        path.write_bytes(value)
+    else:
+        if isinstance(value, dict) and "schema" in value:
+            value["schema"] = "pretrial.sweep"
+        path.write_text(json.dumps(value))
+    _results_only_input_errors(path)
+
+
+def test_resume_into_another_out_is_refused(capsys, work):
+    (work / "run").mkdir()
+    line = refused(capsys, ["evolve", str(CONFIG), "--resume", str(work / "run"), "--out", str(work / "elsewhere")])
+    assert "--out" in line and "--resume" not in line.split(":")[0]
+    assert not (work / "elsewhere").exists()
