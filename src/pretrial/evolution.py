@@ -401,6 +401,14 @@ class Evolution:
             # Interrupted while evaluating: checkpointed above. Elsewhere: the last checkpoint stands.
             self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
+        except PretrialError as exc:
+            if "--resume" in exc.message:  # an evaluation failure, already checkpointed and explained
+                raise
+            # e.g. the disk filled while writing history or a checkpoint: every file written is whole
+            raise PretrialError(
+                f"generation {st.generation}: {exc.message}; the last checkpoint stands, continue the run with  "
+                f"pretrial evolve {self.cfg.path} --resume {self.run_dir}"
+            ) from None
         return self.finish(reached)
 
     def _update_hall(self, genomes: Sequence[Any]) -> None:
