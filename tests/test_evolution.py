@@ -135,6 +135,8 @@ def test_resume_continues_exactly(reference, tmp_path, capsys):
     first_timing = (run_dir / "timing.csv").read_text().splitlines()
     capsys.readouterr()
     assert main(["evolve", cfg, "--resume", str(run_dir), "--generations", "3", "--workers", "1"]) == 0
+    # the resolved config records what the run now is: 3 generations, like the reference
+    assert tomllib.loads((run_dir / "config.resolved.toml").read_text())["run"]["generations"] == 3
     for name in ("history.csv", "champion.json"):
         assert (run_dir / name).read_bytes() == (reference["run_dir"] / name).read_bytes(), name
     # it continued rather than started over: only generation 2 ran, the first session's timings are kept

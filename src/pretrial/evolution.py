@@ -281,6 +281,8 @@ class Evolution:
         if timing.exists():  # read once: rows of generations the checkpoint already holds
             with open(timing, newline="") as f:
                 self._timing_rows = [r for r in csv.DictReader(f) if int(r["generation"]) < self.state.generation]
+        # the checkpoint loaded and only settings a resume may change differ: record them (e.g. more generations)
+        atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
         self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
 
     def _check_same_config(self) -> None:
