@@ -304,6 +304,7 @@ def test_outputs_that_cannot_be_written(capsys, work, policy):
     (work / "afile").write_text("notes\n")
     before = snapshot(work)
     assert "afile" in refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile")])
+    assert "afile" in refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile" / "s")])
     assert "afile" in refused(capsys, ["export", str(policy), "--to", "c", "--out", str(work / "afile")])
     assert "afile" in refused(capsys, ["evolve", str(CONFIG), "--out", str(work / "afile" / "run")])
     assert "afile" in refused(capsys, ["replay", str(policy), "--csv", str(work / "afile" / "t.csv")])

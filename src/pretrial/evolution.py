@@ -40,7 +40,7 @@ from .errors import InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
-from .perturb import describe_values
+from .perturb import describe_values, diverged_warning
 from .policy import IOMap, PopulationPolicy, policy_to_dict, save_policy
 from .rollout import Scenarios, draw_scenarios, run_episodes
 
@@ -89,7 +89,7 @@ def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple
     physics = task.physics()
     policy = PopulationPolicy(PopulationNetwork(specs), task.io)
     out = run_episodes(physics, policy, scenarios, task.max_steps)
-    diverged = (~out.success & (out.failure == physics.diverged_code)).sum(axis=0)
+    diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
     return out.returns.mean(axis=1), out.success.mean(axis=1), diverged
 
 
@@ -204,8 +204,7 @@ class Evolution:
             if self.manifest_path.exists():
                 raise InputError(f"{self.run_dir}: already holds a run; continue it with --resume {self.run_dir} "
                                  "or pick another --out")
-            # what create() lays out before the first manifest: a run stopped (killed) in those few moments
-            if any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini")):
+            if self._stopped_before_first_checkpoint():
                 raise InputError(f"{self.run_dir}: already holds files of a run stopped before its first "
                                  "checkpoint; delete the directory and start again")
             raise InputError(f"{self.run_dir}: already holds files; pick another --out")
@@ -240,10 +239,14 @@ class Evolution:
         self.state = RunState(0, population, species, reproduction, None, [], [], [], 0)
         self.save_checkpoint()  # also writes the manifest: from here on the directory resumes
 
+    def _stopped_before_first_checkpoint(self) -> bool:
+        """Whether the directory holds what create() lays out before its first manifest (a run killed then)."""
+        return any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini"))
+
     def resume(self) -> None:
         """Continue from the newest checkpoint recorded in the manifest."""
         if not self.manifest_path.is_file():
-            if any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini")):
+            if self._stopped_before_first_checkpoint():
                 raise InputError(f"{self.run_dir}: the run was stopped before its first checkpoint (no "
                                  "manifest.json); delete the directory and start the run again")
             raise InputError(f"{self.run_dir}: not a run directory (no manifest.json)")
@@ -324,15 +327,15 @@ class Evolution:
         where = describe_values(physics, values) or describe_values(
             physics, {k: np.array([v]) for k, v in self.task.params.items()}) or "nominal physics"
         if label is None:  # generations: the first few are named; the finalists' re-test always is
-            label = f"generation {self.state.generation if self.state is not None else 0}"
             self._warnings += 1
-        if label.startswith("generation") and self._warnings > _DIVERGED_WARNINGS:
-            if self._warnings == _DIVERGED_WARNINGS + 1:
-                self.warn("pretrial: warning: more generations with diverged episodes; not shown again this session")
-            return
-        self.warn(f"pretrial: warning: {label}: {int(diverged.sum())} of {n_genomes * len(scenarios)} "
-                  f"episodes diverged (the simulation blew up; counted as failures) in {len(rows)} scenario(s) "
-                  f"at {where}")
+            if self._warnings > _DIVERGED_WARNINGS:
+                if self._warnings == _DIVERGED_WARNINGS + 1:
+                    self.warn("pretrial: warning: more generations with diverged episodes; not shown again this "
+                              "session")
+                return
+            label = f"generation {self.state.generation if self.state is not None else 0}"
+        self.warn(diverged_warning(int(diverged.sum()), f"{where} ({len(rows)} scenarios)",
+                                   n_genomes * len(scenarios), label))
 
     def run(self, generations: int) -> dict[str, Any]:
         """Evolve until ``generations`` have been evaluated or the fitness target is reached."""
@@ -350,18 +353,13 @@ class Evolution:
                 scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k)
                 try:
                     fitness, succ = self.evaluate(genomes, scen)
-                except (KeyboardInterrupt, PretrialError) as exc:
+                except (KeyboardInterrupt, PretrialError):
                     # Nothing of generation k is recorded yet: the state is exactly its start.
                     try:
                         self.save_checkpoint()
                     except PretrialError:
                         pass  # e.g. the disk is full: the previous checkpoint stands, resuming still works
-                    if isinstance(exc, KeyboardInterrupt):
-                        raise
-                    raise PretrialError(
-                        f"generation {k}: {exc.message}; the run is checkpointed, continue it with  "
-                        f"pretrial evolve {self.cfg.path} --resume {self.run_dir}"
-                    ) from None
+                    raise
                 for g, f in zip(genomes, fitness):
                     g.fitness = float(f)
                 st.evaluations += len(genomes) * self.cfg.task.episodes
@@ -404,9 +402,7 @@ class Evolution:
             self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
         except PretrialError as exc:
-            if "--resume" in exc.message:  # an evaluation failure, already checkpointed and explained
-                raise
-            # e.g. the disk filled while writing history or a checkpoint: every file written is whole
+            # a failed evaluation (checkpointed above), or e.g. the disk filled while writing: every file is whole
             raise PretrialError(
                 f"generation {st.generation}: {exc.message}; the last checkpoint stands, continue the run with  "
                 f"pretrial evolve {self.cfg.path} --resume {self.run_dir}"

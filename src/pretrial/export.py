@@ -38,7 +38,7 @@ from . import __version__
 from .console import CAUTIONS, emit_json, print_cautions, table
 from .errors import InputError
 from .export_code import Program, Syntax, build_program
-from .files import atomic_write_text
+from .files import atomic_write_text, check_creatable
 from .policy import Policy
 
 TARGETS = ("c", "python")
@@ -104,13 +104,7 @@ def prepare_out_dir(out_dir: str | os.PathLike[str], flag: str = "out_dir") -> P
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"{flag} {out}: is an existing file, not a directory")
-    probe = out
-    while not probe.exists():
-        probe = probe.parent
-    if not probe.is_dir():
-        raise InputError(f"{flag} {out}: {probe} is a file, so the directory cannot be created")
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise InputError(f"{flag} {out}: {probe} is not writable")
+    check_creatable(out, f"{flag} {out}")
     return out
 
 
@@ -407,10 +401,10 @@ def _export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision:
     _checked(to, precision, prefix)
     if min(sequences, steps) < 1:
         raise InputError(f"golden file: sequences {sequences} and steps {steps} must be >= 1")
+    out = prepare_out_dir(out_dir, flag)
     syntax = _syntax(to, precision, prefix)
     prog = build_program(policy, syntax)
     facts = header_facts(policy, prog, env_facts(policy), to, precision, prefix)
-    out = prepare_out_dir(out_dir, flag)
     tolerance = TOLERANCE[precision]
     if to == "c":
         from .export_c import render
@@ -462,7 +456,6 @@ def run_cli(args: argparse.Namespace) -> int:
 
     _checked(args.to, args.precision, args.prefix)
     policy = open_policy(args.policy)
-    prepare_out_dir(args.out, "--out")
     files, prog = _export(policy, args.to, args.out, args.precision, args.prefix, GOLDEN_SEQUENCES, GOLDEN_STEPS,
                           GOLDEN_SEED, "--out")
     if args.json:

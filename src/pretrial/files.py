@@ -109,6 +109,18 @@ def _nearest_existing(p: Path) -> Path:
     return p
 
 
+def check_creatable(path: str | Path, label: str | None = None) -> None:
+    """Fail unless the directory ``path`` exists or can be created: its nearest existing ancestor
+    must be a writable directory. ``label`` starts the message (default: the path)."""
+    p = Path(path).resolve()
+    probe = _nearest_existing(p)
+    head = label or str(p)
+    if not probe.is_dir():
+        raise PretrialError(f"{head}: {probe} is a file, so the directory cannot be created")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise PretrialError(f"{head}: {probe} is not writable")
+
+
 def check_free_space(path: str | Path, minimum: int = MIN_FREE_BYTES) -> None:
     """Fail before any work starts if the disk holding ``path`` has less than ``minimum`` bytes free."""
     p = Path(path).resolve()
@@ -124,12 +136,7 @@ def check_free_space(path: str | Path, minimum: int = MIN_FREE_BYTES) -> None:
         )
 
 
-def check_writable_dir(path: str | Path, min_free: int = MIN_FREE_BYTES) -> None:
-    """Fail before any work starts if ``path`` (or its nearest existing parent) is not writable or the disk is full."""
-    p = Path(path).resolve()
-    probe = _nearest_existing(p)
-    if not probe.is_dir():
-        raise PretrialError(f"{probe}: is a file, cannot create the output directory {p} under it")
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise PretrialError(f"{probe}: not writable, cannot create the output directory {p}")
-    check_free_space(p, min_free)
+def check_writable_dir(path: str | Path, min_free: int = MIN_FREE_BYTES, label: str | None = None) -> None:
+    """Fail before any work starts if ``path`` cannot be created or written, or the disk is (nearly) full."""
+    check_creatable(path, label)
+    check_free_space(path, min_free)

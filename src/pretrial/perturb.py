@@ -211,6 +211,14 @@ def describe_values(physics: Physics, values: Mapping[str, np.ndarray]) -> str:
     return ", ".join(parts)
 
 
+def diverged_warning(count: int, where: str, total: int | None = None, context: str = "") -> str:
+    """The one-line warning for ``count`` episodes whose simulation blew up (they count as failures)."""
+    of = f" of {total}" if total is not None else ""
+    ctx = f"{context}: " if context else ""
+    return (f"pretrial: warning: {ctx}{count}{of} episodes diverged (the simulation blew up; counted as "
+            f"failures) at {where}")
+
+
 class Loop:
     """The perturbed control loop around a plant, for a batch of ``n`` rows.
 

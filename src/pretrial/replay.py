@@ -27,7 +27,7 @@ from pretrial_envs.core import EpisodeMetric, Physics
 
 from .console import CAUTIONS, emit_json, fmt_number, print_cautions, table
 from .errors import InputError, PretrialError
-from .perturb import Setup, apply_settings
+from .perturb import Setup, apply_settings, diverged_warning
 from .rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
 
 #: replay records every step of every episode; beyond this many, a sweep is the tool
@@ -453,8 +453,7 @@ def run_cli(args: argparse.Namespace) -> int:
     note = rep.setup.words() or "nominal"
     blew_up = rep.outcome.failure_counts().get("diverged", 0)
     if blew_up:
-        print(f"pretrial: warning: {blew_up} of {args.episodes} episodes diverged (the simulation blew up; counted "
-              f"as failures) at {note}", file=sys.stderr)
+        print(diverged_warning(blew_up, note, args.episodes), file=sys.stderr)
     try:
         if args.csv:
             traces.write_trace_csv(args.csv, rep.physics, trace, params, steps)

@@ -27,7 +27,8 @@ from pretrial_envs.core import Physics
 from . import __version__
 from .console import CAUTIONS, Progress, emit_json, fmt_number, print_cautions, table
 from .errors import InputError
-from .files import canonical_json, sha256_hex, write_json
+from .files import canonical_json, check_writable_dir, sha256_hex, write_json
+from .perturb import diverged_warning
 from .plan import Plan, load_plan
 
 LQR = "lqr"
@@ -200,11 +201,11 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     finally:
         if bar is not None:
             bar.close()
-    for who, part in (("", results), ("LQR baseline: ", results.get("baseline") or {})):
+    for who, part in (("", results), ("LQR baseline", results.get("baseline") or {})):
         d = part.get("diverged")
         if d:
-            print(f"pretrial: warning: {who}{d['episodes']} episodes diverged (the simulation blew up; counted as "
-                  f"failures) at {d['where']}; replay one: {d['first']['replay']}", file=sys.stderr)
+            print(f"{diverged_warning(d['episodes'], d['where'], context=who)}; replay one: {d['first']['replay']}",
+                  file=sys.stderr)
     results["cautions"] = list(CAUTIONS)
     from .console import jsonable
 
@@ -246,15 +247,7 @@ def _check_out(out: Path) -> None:
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         what = "a file" if not out.is_dir() else "a directory that is not empty"
         raise InputError(f"--out {out}: is {what}; choose a new directory (nothing is overwritten)")
-    parent = out.parent if str(out.parent) else Path(".")
-    probe = parent
-    while not probe.exists():
-        probe = probe.parent
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise InputError(f"--out {out}: {probe} is not writable")
-    from .files import check_free_space
-
-    check_free_space(out)  # found out now, not after the work
+    check_writable_dir(out, label=f"--out {out}")  # found out now, not after the work
 
 
 # --------------------------------------------------------------------------- #
