@@ -188,7 +188,13 @@ class DaskExecutor(Executor):
             # one future at a time rather than client.gather: a gather interrupted by Ctrl-C leaves tasks on
             # dask's event loop that print "Task exception was never retrieved" when the client closes
             return [f.result() for f in futures]
-        except Exception as exc:
+        except BaseException as exc:
+            # the map failed: its other tasks must not keep running (a task that kills its worker would go on
+            # killing the restarted workers, and with them whatever work is submitted next)
+            with contextlib.suppress(Exception):
+                self._client.cancel(futures)
+            if not isinstance(exc, Exception):
+                raise
             if type(exc).__name__ == "KilledWorker":
                 if self._cluster is not None:
                     # let our nannies finish restarting the dead workers: a worker closed while it starts
