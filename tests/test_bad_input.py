@@ -8,6 +8,7 @@ another kind of file) are crossed with every argument that names a file.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 from collections.abc import Callable
@@ -430,3 +431,19 @@ def test_resume_into_another_out_is_refused(capsys, work):
     line = refused(capsys, ["evolve", str(CONFIG), "--resume", str(work / "run"), "--out", str(work / "elsewhere")])
     assert "--out" in line and "--resume" not in line.split(":")[0]
     assert not (work / "elsewhere").exists()
+
+
+def test_neat_settings_it_cannot_breed_with(capsys, work):
+    # Every genome its own species (a tiny compatibility threshold) needs pop_size >=
+    # species x min_species_size, which neat-python refuses at the first breeding: one line
+    # naming the config and the keys to change, and the run directory left whole.
+    config = work / "crowded.toml"
+    config.write_text(
+        '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n'
+        "[neat]\npop_size = 6\ncompatibility_threshold = 1e-9\n\n[run]\ngenerations = 3\nworkers = 1\n"
+    )
+    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    assert "crowded.toml" in line and "compatibility_threshold" in line and "--resume" not in line
+    manifest = json.loads((work / "run" / "manifest.json").read_text())
+    for rel, digest in manifest["checkpoints"].items():
+        assert hashlib.sha256((work / "run" / "checkpoints" / rel).read_bytes()).hexdigest() == digest

@@ -383,7 +383,13 @@ class Evolution:
                 reached = target is not None and best.fitness >= target
                 if not reached:  # also after the last one, so a resume with more generations continues
                     random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, k + 1))
-                    st.population = st.reproduction.reproduce(cfg, st.species, cfg.pop_size, k)
+                    try:
+                        st.population = st.reproduction.reproduce(cfg, st.species, cfg.pop_size, k)
+                    except RuntimeError as exc:  # neat-python refuses settings it cannot breed with
+                        raise InputError(
+                            f"{self.cfg.path}: [neat]: generation {k}: neat-python cannot breed the next generation "
+                            f"({exc}); raise pop_size or compatibility_threshold, or lower min_species_size"
+                        ) from None
                     if not st.species.species:
                         st.population = st.reproduction.create_new(cfg.genome_type, cfg.genome_config, cfg.pop_size)
                     st.species.speciate(cfg, st.population, k + 1)
@@ -401,6 +407,8 @@ class Evolution:
             # Interrupted while evaluating: checkpointed above. Elsewhere: the last checkpoint stands.
             self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
+        except InputError:
+            raise  # the settings, not the machine: resuming would fail the same way
         except PretrialError as exc:
             # a failed evaluation (checkpointed above), or e.g. the disk filled while writing: every file is whole
             raise PretrialError(
