@@ -48,14 +48,14 @@ def mirror_swap(s: np.ndarray) -> np.ndarray:
     """The same scene seen in a mirror (x -> -x) with the drones' labels swapped.
 
     Built from the documented state layout only: x, pitch, x_dot, pitch_rate and gust_x
-    change sign; rotor names are per drone's own frame, so rotor pairs swap unchanged.
+    change sign; rotors are named by world side (left = -x), so in the mirror each
+    drone's left and right rotors trade names.
     """
     out = np.empty_like(s)
     sign = np.array([-1.0, 1.0, -1.0, -1.0, 1.0, -1.0])
     out[..., 0:6] = s[..., 6:12] * sign
     out[..., 6:12] = s[..., 0:6] * sign
-    out[..., 12:14] = s[..., 14:16]
-    out[..., 14:16] = s[..., 12:14]
+    out[..., 12:16] = s[..., [15, 14, 13, 12]]
     out[..., 16] = -s[..., 16]
     out[..., 17] = s[..., 17]
     return out
@@ -164,12 +164,11 @@ def test_rotor_forces_and_torque(t_left, t_right, pitch, arm, inertia, mass):
     physics, p = setup({"arm_length": arm, "inertia": inertia, "mass": mass, "gust_std": 0.0, "drag_linear": 0.0})
     s = physics.start_center(p)
     s[0, [2, 8]] = pitch
-    s[0, 12:16] = [t_left, t_right, t_left, t_right]  # own-frame names for each drone
+    s[0, 12:16] = [t_left, t_right, t_left, t_right]
     d = physics.derivatives(s, s[:, 12:16].copy(), p)[0]
     alpha = (t_right - t_left) * arm / inertia
     assert d[5] == pytest.approx(alpha, rel=1e-12, abs=1e-9)
-    # drone 1's own frame is mirrored, so the same own-frame command turns it the other way in the world
-    assert d[11] == pytest.approx(-alpha, rel=1e-12, abs=1e-9)
+    assert d[11] == pytest.approx(alpha, rel=1e-12, abs=1e-9)  # both drones name rotors by world side
     total = t_left + t_right
     for i in (0, 1):
         assert d[6 * i + 3] == pytest.approx(-total * math.sin(pitch) / mass, rel=1e-12, abs=1e-12)
@@ -188,7 +187,7 @@ def test_pure_torque_in_zero_gravity_integrates_to_parabola():
     t = physics.dt * np.arange(1, 11)
     alpha = 2.0 * 0.25 / 0.01
     np.testing.assert_allclose(states[:, 0, 2], 0.5 * alpha * t**2, rtol=1e-12)
-    np.testing.assert_allclose(states[:, 0, 8], -0.5 * alpha * t**2, rtol=1e-12)
+    np.testing.assert_allclose(states[:, 0, 8], 0.5 * alpha * t**2, rtol=1e-12)
 
 
 def test_positive_pitch_raises_the_right_rotor_and_pushes_toward_minus_x():
@@ -393,7 +392,8 @@ def test_first_failure_word_wins():
 
 def test_success_after_hold_time_at_goals():
     # Contract: success when both drones are settled at their goals for hold_time seconds;
-    # the success bonus of time_limit is paid on that step.
+    # the success bonus of time_limit is paid on that step (hovering level at the goals, far
+    # apart, costs nothing: no miss, no near penalty, hover commands).
     physics, p = setup({"gust_std": 0.0}, hold_time=0.5)
     s = physics.start_center(p)
     s[0, [0, 6]] = s[0, [6, 0]]  # put each at its goal
@@ -403,7 +403,7 @@ def test_success_after_hold_time_at_goals():
         tr = physics.transition(s, a, p, hold, steps)
         s, hold, steps = tr.state, tr.hold, tr.steps
         assert bool(tr.success[0]) == (k == 25)
-    assert tr.terminated[0] and tr.reward[0] > physics.time_limit
+    assert tr.terminated[0] and tr.reward[0] == pytest.approx(physics.time_limit, abs=1e-12)
     s[0, 3] = 0.3  # faster than goal_speed: not settled
     assert not physics.in_goal(s, p)[0]
 
@@ -416,6 +416,59 @@ def test_failure_is_penalised_and_start_is_clean():
     tr = physics.transition(s, hover_action(p), p, np.zeros(1), np.zeros(1, dtype=np.int64))
     assert physics.failure_words[tr.failure[0]] == "crashed"
     assert tr.reward[0] < -physics.time_limit + physics.dt
+
+
+def test_failing_later_scores_better_and_never_pays():
+    # Contract (reward_doc): a failure is charged the worst running cost for the rest of the
+    # time limit, so a crash after k periods of the worst cost scores the same as a crash after
+    # k + 1 (worse than any real flight), and a crash always scores below flying on to the end.
+    physics, p = setup()
+    worst = physics.worst_cost_rate(p)[0]
+    crashed = np.array([CRASHED])
+
+    def crash_after(k):
+        remaining = np.array([(physics.max_steps - k) * physics.dt])
+        tail = physics.terminal_reward(p, crashed, np.zeros(1, dtype=bool), remaining)[0]
+        return -worst * physics.dt * k + tail
+
+    scores = [crash_after(k) for k in range(1, physics.max_steps + 1)]
+    flying_on_worst = -worst * physics.time_limit
+    assert max(scores) < flying_on_worst
+    np.testing.assert_allclose(np.diff(scores), 0.0, atol=1e-9)
+
+
+def test_a_timeout_is_charged_nothing_extra():
+    # Contract: the terminal charge is for failures; running out of time (truncation) ends with
+    # the running cost alone. Hovering at the starts never reaches the goals.
+    physics, p = setup({"gust_std": 0.0}, time_limit=0.1)
+    s = physics.start_center(p)
+    a = hover_action(p)
+    hold, steps = np.zeros(1), np.zeros(1, dtype=np.int64)
+    for _ in range(physics.max_steps):
+        tr = physics.transition(s, a, p, hold, steps)
+        s, hold, steps = tr.state, tr.hold, tr.steps
+    assert tr.truncated[0] and not tr.terminated[0]
+    none = np.zeros(1, dtype=np.int64)
+    assert tr.reward[0] == physics.reward(s, a, p, none, np.zeros(1, dtype=bool))[0] == pytest.approx(-physics.dt)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    d0=st.tuples(st.floats(-3.0, 3.0), st.floats(0.0, 4.0)),
+    d1=st.tuples(st.floats(-3.0, 3.0), st.floats(0.0, 4.0)),
+    actions=st.lists(st.floats(-1.0, 1.0), min_size=4, max_size=4),
+    mass=st.floats(0.05, 10.0),
+    max_thrust=st.floats(0.1, 200.0),
+)
+def test_running_cost_stays_below_its_documented_bound(d0, d1, actions, mass, max_thrust):
+    # The failure charge rests on this bound (reward_doc): per second, the running cost never
+    # exceeds worst_cost_rate, anywhere in the field and for any command.
+    physics, p = setup({"mass": mass, "max_thrust": max_thrust})
+    s = physics.start_center(p)
+    s[0, [0, 1, 6, 7]] = [*d0, *d1]
+    none = np.zeros(1, dtype=np.int64)
+    r = physics.reward(s, np.array([actions]), p, none, np.zeros(1, dtype=bool))[0]
+    assert 0.0 <= -r / physics.dt <= physics.worst_cost_rate(p)[0] * (1 + 1e-12)
 
 
 STATE = st.tuples(
@@ -438,19 +491,20 @@ STATE = st.tuples(
     actions=st.lists(st.floats(-1.0, 1.0), min_size=4, max_size=4),
 )
 def test_mirror_swap_symmetry(d0, d1, rotors, gust, wind_x, actions):
-    # Mirror symmetry of the plane (x -> -x) with the drones relabelled: the observation
-    # blocks swap exactly, and dynamics, rules and reward are equivariant (common practice:
-    # a shared policy needs an equivariant plant and an exactly symmetric input).
+    # Mirror symmetry of the plane (x -> -x) with the drones relabelled: dynamics, rules and
+    # reward are equivariant, and each observation block is the other's mirror image
+    # (x-like entries negated, common practice for a reflection of the plane).
     physics, p = setup({"wind_x": wind_x, "wind_z": 0.3})
     pm = p.copy()
     pm[0, PARAMS.index("wind_x")] = -wind_x
     s = np.array([[*d0, *d1, *rotors, *gust]])
     sm = mirror_swap(s)
     a = np.array([actions])
-    am = a[:, [2, 3, 0, 1]]
+    am = a[:, [3, 2, 1, 0]]  # drones relabelled, left and right trade names
     obs, obs_m = physics.observe(s, p)[0], physics.observe(sm, pm)[0]
-    np.testing.assert_array_equal(obs_m[:12], obs[12:])
-    np.testing.assert_array_equal(obs_m[12:], obs[:12])
+    block_sign = np.array([-1.0, 1.0, -1.0, -1.0, 1.0, -1.0, -1.0, 1.0, -1.0, 1.0, -1.0, 1.0])
+    np.testing.assert_array_equal(obs_m[:12], obs[12:] * block_sign)
+    np.testing.assert_array_equal(obs_m[12:], obs[:12] * block_sign)
     f, fm = physics.actuate(a, p), physics.actuate(am, pm)
     np.testing.assert_allclose(physics.derivatives(sm, fm, pm), mirror_swap(physics.derivatives(s, f, p)), atol=1e-12)
     assert physics.check(sm, fm, pm)[0] == physics.check(s, f, p)[0]
@@ -459,28 +513,63 @@ def test_mirror_swap_symmetry(d0, d1, rotors, gust, wind_x, actions):
     assert physics.reward(sm, am, pm, fail, ok)[0] == pytest.approx(physics.reward(s, a, p, fail, ok)[0], abs=1e-15)
 
 
-def test_shared_network_flies_either_drone():
-    # A single policy fed each drone's block (and driving that drone's rotors) gives
-    # mirror-image flights from mirror-image scenes, gusts included (symmetry as above).
-    physics, p = setup({"wind_x": 1.0})
-    pm = p.copy()
-    pm[0, PARAMS.index("wind_x")] = -1.0
-    rng = np.random.default_rng(5)
-    w1, w2 = rng.normal(0, 0.3, (12, 8)), rng.normal(0, 0.3, (8, 2))
+def test_blocks_are_one_function_of_each_drone():
+    # Contract (documented table): a block is the drone's own body state, its goal minus its
+    # position, and the other drone minus itself; drone 1's goal is drone 0's start.
+    physics, p = setup()
+    rng = np.random.default_rng(11)
+    s = physics.sample_start(rng, p) + rng.normal(0.0, 0.3, (1, 18))
+    obs = physics.observe(s, p)[0]
+    goals = {0: (1.5, 2.0), 1: (-1.5, 2.0)}
+    for i, j in ((0, 1), (1, 0)):
+        own, other = s[0, 6 * i : 6 * i + 6], s[0, 6 * j : 6 * j + 6]
+        gx, gz = goals[i]
+        expected = [*own, gx - own[0], gz - own[1], *(other[[0, 1, 3, 4]] - own[[0, 1, 3, 4]])]
+        np.testing.assert_allclose(obs[12 * i : 12 * i + 12], expected, rtol=0, atol=1e-15)
 
-    def policy(obs):
-        return np.tanh(np.tanh(obs.reshape(2, 12) @ w1) @ w2).reshape(1, 4) * 0.2 + hover_action(p)[:, :1]
 
+def _shared_pd(block: np.ndarray, p: dict[str, float], climb_per_m: float) -> np.ndarray:
+    """Rotor commands of one drone from its block: a near-hover cascaded PD controller.
+
+    Position PD to a desired acceleration, pitch set-point -a_x / g (thrust along
+    (-sin, cos)), attitude PD on the torque (the small-angle planar quadrotor controller,
+    common practice). The height set-point is raised by ``climb_per_m`` times the distance
+    still to go in x: the tie-break by direction of travel.
+    """
+    _, _, pitch, vx, vz, rate, gdx, gdz = block[:, :8].T
+    ax = np.clip(4.0 * gdx - 4.0 * vx, -4.0, 4.0)
+    az = np.clip(8.0 * (gdz + np.clip(climb_per_m * gdx, -0.5, 0.5)) - 5.6 * vz, -5.0, 5.0)
+    g, m = p["gravity"], p["mass"]
+    pitch_set = np.clip(-ax / g, -0.5, 0.5)
+    total = m * (g + az) / np.cos(pitch)
+    diff = p["inertia"] * (150.0 * (pitch_set - pitch) - 22.0 * rate) / p["arm_length"]  # T_r - T_l
+    thrust = np.stack([total - diff, total + diff], axis=1) / 2.0
+    return 2.0 * thrust / p["max_thrust"] - 1.0
+
+
+@pytest.mark.parametrize(("climb_per_m", "least", "most"), [(0.3, 0.97, 1.0), (0.0, 0.0, 0.0)])
+def test_one_program_for_both_drones_passes_by_direction_of_travel(climb_per_m, least, most):
+    # One controller applied to each block in turn, as a shared network is. Climbing by the
+    # distance still to go (sign of goal_dx: drone 0 climbs, drone 1 descends) separates the
+    # drones vertically where they pass; without it the two flights are mirror images that
+    # meet in the middle (common practice: the cruising-level rules of air traffic decide
+    # height by direction of travel). 200 episodes at nominal physics in the default gusts.
+    n = 200
+    physics, p1 = setup()
+    p = np.repeat(p1, n, axis=0)
+    named = dict(zip(PARAMS.names, p1[0], strict=True))
+    rng = np.random.default_rng(3)
     s = physics.sample_start(rng, p)
-    sm = mirror_swap(s)
-    hold, steps = np.zeros(1), np.zeros(1, dtype=np.int64)
-    for _ in range(50):
-        noise = rng.standard_normal((1, 2))
-        a, am = policy(physics.observe(s, p)), policy(physics.observe(sm, pm))
-        s = physics.transition(s, a, p, hold, steps, noise).state
-        sm = physics.transition(sm, am, pm, hold, steps, noise * [-1.0, 1.0]).state
-    np.testing.assert_allclose(sm, mirror_swap(s), atol=1e-9)
-    assert np.abs(s[0, :12] - physics.start_center(p)[0, :12]).max() > 1e-3  # it did fly
+    hold, steps = np.zeros(n), np.zeros(n, dtype=np.int64)
+    ended, success = np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
+    for _ in range(physics.max_steps):
+        blocks = physics.observe(s, p).reshape(n * 2, 12)
+        action = _shared_pd(blocks, named, climb_per_m).reshape(n, 4)
+        tr = physics.transition(s, action, p, hold, steps, rng.standard_normal((n, 2)))
+        success |= ~ended & tr.success
+        ended |= tr.terminated | tr.truncated
+        s, hold, steps = tr.state, tr.hold, tr.steps
+    assert least <= success.mean() <= most
 
 
 def test_options_round_trip_and_hold_time_validation():

@@ -320,7 +320,7 @@ class Physics:
     Subclasses declare the class attributes and implement :meth:`derivatives`,
     :meth:`check` and :meth:`reward`; override :meth:`actuate`,
     :meth:`observe`, :meth:`in_goal`, :meth:`start_center`,
-    :meth:`advance_disturbance` and :meth:`draw` as needed. An instance is one
+    :meth:`terminal_reward`, :meth:`advance_disturbance` and :meth:`draw` as needed. An instance is one
     configuration (control period, integrator, options); parameters are data
     passed with each call, so every sub-environment can have its own.
 
@@ -447,6 +447,17 @@ class Physics:
     def reward(self, state: Array, action: Array, params: Array, failure: Array, success: Array) -> Array:
         """Shaped reward for the control period that ended in ``state``."""
         raise NotImplementedError
+
+    def terminal_reward(self, params: Array, failure: Array, success: Array, remaining: Array) -> Array | None:
+        """Reward added on the period an episode terminates, given the seconds ``remaining`` to the time limit.
+
+        Called only when some instance terminated (success or failure, not
+        truncation); the result counts for those instances only. It lets a
+        plant settle the rest of the episode at once, e.g. charge a failure
+        its worst running cost for the time it did not fly, so that failing
+        later always scores better than failing sooner. Default: None (nothing).
+        """
+        return None
 
     def actuate(self, action: Array, params: Array) -> Array:
         """Map actions in [-1, 1] (N, A) to physical inputs (N, A)."""
@@ -620,6 +631,11 @@ class Physics:
                 truncated = ok & (steps >= self.max_steps)
                 success = truncated.copy()
             reward = self.reward(state, action, params, failure, success)
+            if terminated.any():
+                remaining = np.maximum(self.max_steps - steps, 0) * self.dt
+                extra = self.terminal_reward(params, failure, success, remaining)
+                if extra is not None:
+                    reward = reward + np.where(terminated, extra, 0.0)
             if any_bad:  # finite states give finite rewards; a diverged row's reward is 0
                 reward = np.where(bad | ~np.isfinite(reward), 0.0, reward)
         return Transition(state, reward, failure, success, terminated, truncated, hold, steps)

@@ -26,14 +26,14 @@ from .core import (
     state_mask,
 )
 
-#: Frame sign per drone: drone 0 sees the world frame, drone 1 the world mirrored in x.
-MIRROR = np.array([1.0, -1.0])
-MIRROR.setflags(write=False)
-
 _BODY = ("x", "z", "pitch", "x_dot", "z_dot", "pitch_rate")
 _BODY_UNITS = ("m", "m", "rad", "m/s", "m/s", "rad/s")
 _BLOCK = (*_BODY, "goal_dx", "goal_dz", "other_dx", "other_dz", "other_dx_dot", "other_dz_dot")
 _BLOCK_UNITS = (*_BODY_UNITS, "m", "m", "m", "m", "m/s", "m/s")
+
+#: Direction of travel per drone: drone 0 flies toward +x, drone 1 toward -x.
+_HEADING = np.array([1.0, -1.0])
+_HEADING.setflags(write=False)
 
 #: Row layout of the state: two drone blocks of 6, then 4 rotor thrusts, then 2 gust components.
 ROTORS = slice(12, 16)
@@ -44,8 +44,8 @@ _POS, _VEL = [0, 1, 2, 6, 7, 8], [3, 4, 5, 9, 10, 11]
 _LEFT, _RIGHT = [12, 14], [13, 15]
 
 # Reward weights (see reward_doc).
-_NEAR_WEIGHT = 0.5
-_EFFORT_WEIGHT = 0.1
+NEAR_WEIGHT = 0.5  # per second at half the minimum separation inside the near zone
+EFFORT_WEIGHT = 0.5  # per second per mean squared command deviation from hover
 
 PARAMS = ParamTable(
     [
@@ -120,7 +120,7 @@ class DronePairPhysics(Physics):
         "gust_z",
     )
     state_units = (*_BODY_UNITS, *_BODY_UNITS, "N", "N", "N", "N", "m/s", "m/s")
-    #: two egocentric blocks of 12: one shared network can fly either drone
+    #: two blocks of 12, each centred on its drone (world axes): one shared network can fly either drone
     obs_blocks = 2
     #: typical magnitudes per block entry (field size, pitch limit, common rates)
     obs_scale = (2.0, 2.0, 0.5, 1.0, 1.0, 2.0, 4.0, 2.0, 2.0, 2.0, 1.0, 1.0) * 2
@@ -132,11 +132,13 @@ class DronePairPhysics(Physics):
     success_mode = "reach"
     hold_time = 1.0
     reward_doc = (
-        "per control period dt * (progress - 0.5 near - 0.1 effort), where progress = 1 - mean over the drones of "
-        "min(distance to goal / (2 start_x), 1), near = clip((2 min_separation - separation) / min_separation, 0, 1) "
-        "and effort = mean over the 4 rotors of (action - hover action)^2 / 4; plus time_limit on success and minus "
-        "time_limit on collision, crashed, out_of_bounds, flipped or diverged (not on timeout), so that failing early "
-        "never pays and succeeding always does"
+        f"per control period -dt * (miss + {NEAR_WEIGHT:g} near + {EFFORT_WEIGHT:g} effort), where miss = mean over "
+        "the drones of min(distance to goal / (2 start_x), 1), near = clip((2 min_separation - separation) / "
+        "min_separation, 0, 1) and effort = mean over the 4 rotors of (action - hover action)^2; plus time_limit on "
+        "success; on collision, crashed, out_of_bounds, flipped or diverged (not on timeout), minus the worst cost "
+        f"rate (1 + {NEAR_WEIGHT:g} + {EFFORT_WEIGHT:g} (1 + |hover action|)^2) times the seconds left to the time "
+        "limit plus dt. A cost while flying: arriving sooner scores better, failing later scores better than failing "
+        "sooner, failing never pays and succeeding always does"
     )
     noise_dim = 2
     default_dt = 0.02
@@ -187,9 +189,7 @@ class DronePairPhysics(Physics):
         out[_POS] = st[_VEL]
         out[_VX] = (-total * np.sin(pitch) - drag * rel_x) * inv_m
         out[_VZ] = (total * np.cos(pitch) - drag * rel_z) * inv_m - pt[col("gravity")]
-        # Rotor names are in each drone's own frame; MIRROR turns that torque into world pitch.
-        lever = pt[col("arm_length")] / pt[col("inertia")]
-        out[_OMEGA] = (right - left) * lever * MIRROR[:, None]
+        out[_OMEGA] = (right - left) * (pt[col("arm_length")] / pt[col("inertia")])
         out[ROTORS] = (force.T - st[ROTORS]) / pt[col("rotor_time_constant")]
         out[GUST] = 0.0  # the gust is held within a control period
         return out.T
@@ -208,7 +208,7 @@ class DronePairPhysics(Physics):
     # ----------------------------------------------------------- task
     def goals(self, params: Array) -> tuple[Array, Array]:
         """Goal x and z of (drone 0, drone 1), each (2, N): drone 0's at +start_x, drone 1's at -start_x."""
-        gx = MIRROR[:, None] * self.param(params, "start_x")
+        gx = _HEADING[:, None] * self.param(params, "start_x")
         gz = np.broadcast_to(self.param(params, "start_height"), gx.shape)
         return gx, gz
 
@@ -265,7 +265,7 @@ class DronePairPhysics(Physics):
         p = dict(zip(PARAMS.names, map(float, params), strict=True))
         hw, tol = p["field_half_width"], p["goal_tolerance"]
         out: dict[str, list[TraceLimit]] = {}
-        for i, goal in enumerate(p["start_x"] * MIRROR):
+        for i, goal in enumerate(p["start_x"] * _HEADING):
             out[f"d{i}_x"] = [TraceLimit(-hw, hw, "field"), TraceLimit(goal - tol, goal + tol, f"d{i} goal", "band")]
             out[f"d{i}_z"] = [
                 TraceLimit(0.0, p["field_height"], "ground / ceiling"),
@@ -321,35 +321,39 @@ class DronePairPhysics(Physics):
         settled = (dist <= self.param(params, "goal_tolerance")) & (speed <= self.param(params, "goal_speed"))
         return settled.all(axis=0)
 
+    def hover_action(self, params: Array) -> Array:
+        """The rotor command (N,) whose thrust holds a level drone's weight, m g / 2 per rotor."""
+        return self.param(params, "mass") * self.param(params, "gravity") / self.param(params, "max_thrust") - 1.0
+
     def reward(self, state: Array, action: Array, params: Array, failure: Array, success: Array) -> Array:
         dist, _, sep = self._distances(state, params)
         span = 2.0 * self.param(params, "start_x")
-        progress = 1.0 - 0.5 * (np.minimum(dist[0] / span, 1.0) + np.minimum(dist[1] / span, 1.0))
+        miss = 0.5 * (np.minimum(dist[0] / span, 1.0) + np.minimum(dist[1] / span, 1.0))
         min_sep = self.param(params, "min_separation")
         near = np.clip((2.0 * min_sep - sep) / np.maximum(min_sep, 1e-12), 0.0, 1.0)
-        hover = self.param(params, "mass") * self.param(params, "gravity") / self.param(params, "max_thrust") - 1.0
-        effort = 0.25 * ((action - hover[:, None]) ** 2).mean(axis=1)
-        r = self.dt * (progress - _NEAR_WEIGHT * near - _EFFORT_WEIGHT * effort)
-        failed = (failure != 0) & (failure != self.timeout_code)
-        return r + self.time_limit * (success.astype(float) - failed)
+        effort = ((action - self.hover_action(params)[:, None]) ** 2).mean(axis=1)
+        return -self.dt * (miss + NEAR_WEIGHT * near + EFFORT_WEIGHT * effort)
+
+    def worst_cost_rate(self, params: Array) -> Array:
+        """Largest running cost per second (N,): miss <= 1, near <= 1, |action - hover| <= 1 + |hover|."""
+        return 1.0 + NEAR_WEIGHT + EFFORT_WEIGHT * (1.0 + np.abs(self.hover_action(params))) ** 2
+
+    def terminal_reward(self, params: Array, failure: Array, success: Array, remaining: Array) -> Array:
+        # A success is paid time_limit; a failure is charged the worst cost rate for the rest of the
+        # time limit and once more for a whole dt, so it never pays better than flying on, however late.
+        charge = self.worst_cost_rate(params) * (remaining + self.dt)
+        return np.where(success, self.time_limit, np.where(failure != 0, -charge, 0.0))
 
     def observe(self, state: Array, params: Array) -> Array:
         st = state.T
         gx, gz = self.goals(params)
-        m = MIRROR[:, None]
         obs = np.empty((2, 12, state.shape[0]))  # (drone, block entry, N)
-        # Each block in its drone's own frame: x-like entries (x, pitch and their rates) times MIRROR.
-        obs[:, 0] = st[[0, 6]] * m
-        obs[:, 1] = st[[1, 7]]
-        obs[:, 2] = st[_PITCH] * m
-        obs[:, 3] = st[_VX] * m
-        obs[:, 4] = st[_VZ]
-        obs[:, 5] = st[_OMEGA] * m
-        obs[:, 6] = (gx - st[[0, 6]]) * m
+        obs[:, :6] = st[:12].reshape(2, 6, -1)  # own body state
+        obs[:, 6] = gx - st[[0, 6]]
         obs[:, 7] = gz - st[[1, 7]]
-        obs[:, 8] = (st[[6, 0]] - st[[0, 6]]) * m
+        obs[:, 8] = st[[6, 0]] - st[[0, 6]]
         obs[:, 9] = st[[7, 1]] - st[[1, 7]]
-        obs[:, 10] = (st[[9, 3]] - st[_VX]) * m
+        obs[:, 10] = st[[9, 3]] - st[_VX]
         obs[:, 11] = st[[10, 4]] - st[_VZ]
         return np.ascontiguousarray(obs.reshape(24, -1).T)
 
@@ -361,16 +365,13 @@ class DronePairPhysics(Physics):
         hw, top, arm = p["field_half_width"], p["field_height"], p["arm_length"]
         ax.add_patch(Rectangle((-hw, 0.0), 2 * hw, top, fill=False, edgecolor="0.5", linestyle="-", linewidth=1))
         ax.axhspan(-0.5, 0.0, color="0.85", zorder=0)
-        gx = p["start_x"] * MIRROR
+        gx = p["start_x"] * _HEADING
         for i, color in enumerate(("tab:blue", "tab:orange")):
             x, z, pitch = state[6 * i : 6 * i + 3]
             along = np.array([math.cos(pitch), math.sin(pitch)])  # body axis, rotor left -> right (world)
             up = np.array([-math.sin(pitch), math.cos(pitch)])  # thrust direction
             centre = np.array([x, z])
-            # world-left and world-right thrusts: drone 1's own left rotor is on its world +x side
-            t_own = state[12 + 2 * i : 14 + 2 * i]
-            t_world = t_own if i == 0 else t_own[::-1]
-            for side, thrust in zip((-1.0, 1.0), t_world, strict=True):
+            for side, thrust in zip((-1.0, 1.0), state[12 + 2 * i : 14 + 2 * i], strict=True):
                 hub = centre + side * arm * along
                 blade = np.array([hub - 0.35 * arm * along, hub + 0.35 * arm * along]) + 0.06 * up
                 ax.plot(*blade.T, color=color, linewidth=2)
@@ -409,13 +410,13 @@ _DOC = r"""Two planar quadrotors swap places across a field without coming too c
     (world +x side) is higher. The thrust acts along (-sin pitch, cos pitch), so a
     positive pitch tilts the thrust toward -x.
 
-    Equations of motion of drone i (world frame), with rotor thrusts ``T_l``, ``T_r``
-    named in the drone's own frame (below), total thrust ``F = T_l + T_r``, air velocity
+    Equations of motion of each drone (world frame), with thrusts ``T_l`` of its left
+    (-x side) and ``T_r`` of its right rotor, total thrust ``F = T_l + T_r``, air velocity
     ``w = (wind_x + gust_x, wind_z + gust_z)`` and airspeed vector ``v_r = v - w``:
 
         m x''     = -F sin(pitch) - (c1 + c2 |v_r|) v_r,x
         m z''     =  F cos(pitch) - m g - (c1 + c2 |v_r|) v_r,z
-        I pitch'' =  s_i L (T_r - T_l)          s_0 = +1, s_1 = -1
+        I pitch'' =  L (T_r - T_l)
         tau T'    =  T_cmd - T                  (each rotor, first-order lag)
 
     with m = ``mass``, g = ``gravity``, I = ``inertia``, L = ``arm_length``, c1 =
@@ -433,26 +434,29 @@ _DOC = r"""Two planar quadrotors swap places across a field without coming too c
     common practice. Nominal values are representative of a 0.5-1 kg quadrotor class,
     not of any specific product.
 
-    **Own frames (shared network).** Drone 0's frame is the world frame. Drone 1's frame
-    is the world mirrored about the field's centre line x = 0: x, x velocity, pitch and
-    pitch rate change sign, z does not. Rotors are named in each drone's own frame, so
-    ``d1_rotor_left`` drives the rotor on drone 1's world +x side. In its own frame each
-    drone starts at (-start_x, start_height) and heads to +x, and obeys the equations
-    above with s = +1 (for drone 1 with wind_x and gust_x negated). So one network, fed
-    one observation block and driving that drone's two rotors, can fly either drone:
-    swapping the drones by a mirror swaps the observation blocks exactly.
+    **Blocks (shared network).** Each drone's observation block is the same function of
+    that drone's own state, its own goal and the other drone, on world axes (x right, z
+    up), and each drone's rotors are named the same way (``left`` is the world -x side).
+    So one network, fed one block and driving that drone's two rotors, can fly either
+    drone, as identical vehicles running one flight program with their own goals do.
+    The blocks are not mirrored: a shared network sees from the sign of ``goal_dx``
+    which way its drone travels, and that is what lets it pass the other drone. With
+    mirror-image blocks both drones would see the same picture at a symmetric start and
+    a shared network would steer them into each other; deciding height by direction of
+    travel is the tie-break that air traffic uses in its cruising-level rules (common
+    practice).
 
     ## Action Space
 
     ``Box(-1, 1, (4,))``: ``[d0_rotor_left, d0_rotor_right, d1_rotor_left, d1_rotor_right]``
-    (own-frame names). Each command maps linearly to a thrust command
+    (left: the rotor on the drone's -x side). Each command maps linearly to a thrust command
     ``T_cmd = max_thrust (a + 1) / 2`` in [0, max_thrust]: a rotor never pushes down.
     Hover is ``a = m g / max_thrust - 1`` on both rotors.
 
     ## Observation Space
 
-    ``Box(-inf, inf, (24,))``: one block of 12 per drone, drone 0 then drone 1, each in
-    its drone's own frame (``d1_x`` is minus drone 1's world x):
+    ``Box(-inf, inf, (24,))``: one block of 12 per drone, drone 0 then drone 1, on world
+    axes; entries 6 to 11 are relative to the block's own drone:
 
     | Num     | Observation           | Unit  |
     |---------|-----------------------|-------|
@@ -474,7 +478,7 @@ _DOC = r"""Two planar quadrotors swap places across a field without coming too c
     The state (``info["state"]``, 18 values) is, in world frame: per drone ``[x, z,
     pitch, x_dot, z_dot, pitch_rate]`` (drone 0, then drone 1), then the actual rotor
     thrusts ``d0_thrust_left, d0_thrust_right, d1_thrust_left, d1_thrust_right`` in N
-    (own-frame names, the order of the actions), then ``gust_x, gust_z`` in m/s.
+    (the order of the actions), then ``gust_x, gust_z`` in m/s.
 
     ## Rewards
 
