@@ -426,6 +426,17 @@ def test_fuzz_results_loader(tmp_path, value):
     _results_only_input_errors(path)
 
 
+@pytest.mark.parametrize("text", [
+    '{"schema": "pretrial.sweep", "schema_version": Infinity}',  # found by the fuzzer above: json reads it
+    '{"schema": "pretrial.sweep", "schema_version": NaN}',
+    '{"schema": "pretrial.sweep", "schema_version": 1' + "0" * 5000 + "}",  # past Python's int-digits limit
+])
+def test_results_with_numbers_json_does_not_allow(tmp_path, text):
+    path = tmp_path / "results.json"
+    path.write_text(text)
+    _results_only_input_errors(path)
+
+
 def test_resume_into_another_out_is_refused(capsys, work):
     (work / "run").mkdir()
     line = refused(capsys, ["evolve", str(CONFIG), "--resume", str(work / "run"), "--out", str(work / "elsewhere")])

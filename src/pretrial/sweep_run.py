@@ -359,14 +359,18 @@ def print_results(results: dict[str, Any], out: Path) -> None:
     print_cautions()
 
 
+def _no_constant(text: str) -> Any:
+    raise ValueError(f"{text} is not a number a results file may hold (written with allow_nan=False)")
+
+
 def read_results(path: str | Path) -> dict[str, Any]:
     """Read a results.json back, refusing an edited or damaged file."""
     p = Path(path)
     try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
+        doc = json.loads(p.read_text(encoding="utf-8"), parse_constant=_no_constant)
     except FileNotFoundError:
         raise InputError(f"{p}: no such file") from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except (OSError, UnicodeDecodeError, ValueError, RecursionError) as exc:  # ValueError: bad JSON, NaN, huge ints
         raise InputError(f"{p}: not a readable results file ({exc})") from None
     if not isinstance(doc, dict) or doc.get("schema") != SCHEMA:
         raise InputError(f"{p}: not a pretrial sweep results file")
