@@ -11,6 +11,7 @@ import argparse
 import sys
 import traceback
 from collections.abc import Callable, Sequence
+from pathlib import Path
 from typing import Any
 
 from . import __version__
@@ -159,7 +160,6 @@ def _configure_evolve(p: argparse.ArgumentParser) -> None:
 def _run_evolve(args: argparse.Namespace) -> int:
     import dataclasses
     import time
-    from pathlib import Path
 
     from .config import load_config
     from .evolution import Evolution
@@ -210,9 +210,7 @@ def _run_evolve(args: argparse.Namespace) -> int:
     if "replay" in names:
         nxt.append(f"pretrial replay {run_dir} --gif {run_dir}/replay.gif")
     if "sweep" in names:
-        plans = Path(cfg.path).resolve().parent / "sweeps"
-        stems = [cfg.name, cfg.name.removesuffix("-positions")]
-        plan = next((plans / f"{s}.toml" for s in stems if (plans / f"{s}.toml").is_file()), None)
+        plan = plan_beside(cfg.path, cfg.name)
         shown = Path(cfg.path).parent / "sweeps" / plan.name if plan else "PLAN.toml"
         nxt.append(f"pretrial sweep {run_dir} --plan {shown} --baseline lqr")
     if nxt:
@@ -220,6 +218,18 @@ def _run_evolve(args: argparse.Namespace) -> int:
         for line in nxt:
             print(f"  {line}")
     return 0
+
+
+def plan_beside(config_path: str | Path, name: str) -> Path | None:
+    """The sweep plan for a run config: ``sweeps/NAME.toml`` beside it, else the one for
+    the longest hyphen-prefix of NAME (``drone-pair-wide`` falls back to ``drone-pair``)."""
+    plans = Path(config_path).resolve().parent / "sweeps"
+    parts = name.split("-")
+    for n in range(len(parts), 0, -1):
+        plan = plans / f"{'-'.join(parts[:n])}.toml"
+        if plan.is_file():
+            return plan
+    return None
 
 
 # --------------------------------------------------------------------------- #
