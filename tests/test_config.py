@@ -229,6 +229,13 @@ BAD = [
     (BASE_TASK + "[task.randomize]\npole_mass = [true, false]\n", "task.randomize.pole_mass", "expected [low, high]"),
     (BASE_TASK + "[task.randomize]\nsensor_nosie_std = [0.0, 0.1]\n", "task.randomize.sensor_nosie_std",
      "did you mean 'sensor_noise_std'"),
+    (BASE_TASK + "randomize_ramp = 10\n", "task.randomize_ramp", "add [task.randomize]"),
+    (BASE_TASK + "randomize_ramp = -1\n[task.randomize]\npole_mass = [0.05, 0.2]\n", "task.randomize_ramp",
+     "not allowed"),
+    (BASE_TASK + "randomize_ramp = 2.5\n[task.randomize]\npole_mass = [0.05, 0.2]\n", "task.randomize_ramp",
+     "expected"),
+    (BASE_TASK + "randomize_ramp = true\n[task.randomize]\npole_mass = [0.05, 0.2]\n", "task.randomize_ramp",
+     "expected"),
     (BASE_TASK + "[neat]\npop_szie = 50\n", "neat.pop_szie", "did you mean 'neat.pop_size'"),
     (BASE_TASK + "[neat]\nnum_inputs = 4\n", "neat.num_inputs", "derived from the environment"),
     (BASE_TASK + "[neat]\nnum_outputs = 1\n", "neat.num_outputs", "derived from the environment"),
@@ -295,6 +302,7 @@ def test_fuzz_random_bytes(tmp_path, data):
 
 _KEYS = sorted(
     {"task", "neat", "run", "env", "episodes", "horizon", "network", "options", "params", "randomize", "generations",
+     "randomize_ramp",
      "seed", "fitness_target", "checkpoint_every", "workers", "dask", "finalists", "validation_episodes", "poles",
      "observe", "dt", "substeps", "integrator", "time_limit", "start_spread", "hold_time", "hoist", "x", "theta",
      "cart_mass", "pole_mass", "gravity", "mass", "gust_std", "sensor_noise_std", "actuator_gain", "actuator_lag_s",
@@ -383,6 +391,16 @@ def test_dump_toml_round_trips_to_dict(tmp_path):
     # the resolved file is itself a valid config that resolves to the same thing
     again = load_config(write(tmp_path, text, "resolved.toml"))
     assert again.to_dict() == data and again.content_hash() == cfg.content_hash()
+
+
+def test_randomize_ramp_is_read_and_resolved(tmp_path):
+    text = GOOD.replace("horizon = 12.5\n", "horizon = 12.5\nrandomize_ramp = 40\n")
+    cfg = load_config(write(tmp_path, text))
+    assert cfg.task.randomize_ramp == 40
+    assert cfg.to_dict()["task"]["randomize_ramp"] == 40
+    assert load_config(write(tmp_path, dump_toml(cfg.to_dict()), "resolved.toml")).task.randomize_ramp == 40
+    assert load_config(write(tmp_path, GOOD, "plain.toml")).task.randomize_ramp == 0  # default: full ranges at once
+    assert "randomize_ramp" not in load_config(write(tmp_path, GOOD, "plain.toml")).to_dict()["task"]
 
 
 def test_dump_toml_round_trips_awkward_strings(tmp_path):

@@ -26,7 +26,7 @@ import pretrial_envs
 from pretrial import checkpoint
 from pretrial.cli import main
 from pretrial.config import load_config
-from pretrial.evolution import Evolution
+from pretrial.evolution import Evolution, _scenarios, make_task
 from pretrial.execution import Executor
 from pretrial.policy import load_policy, policy_from_genome
 from pretrial.rollout import draw_scenarios, run_episodes
@@ -431,3 +431,23 @@ def test_bad_input_is_one_line_exit_2_and_leaves_nothing(case, tmp_path, monkeyp
     assert err.count("\n") == 1 and err.startswith("pretrial"), err
     assert needle in err and "Traceback" not in err + out
     assert snapshot(tmp_path) == before
+
+
+def test_randomize_ramp_widens_the_ranges_from_nominal(tmp_path):
+    # cart_mass nominal 1.0 kg sits inside its range; pole_mass nominal 0.1 kg lies below [0.2, 0.3],
+    # so that range grows from its nearest end (the env's ParamSpec table gives both nominals)
+    ranges = "[task.randomize]\ncart_mass = [0.9, 1.1]\npole_mass = [0.2, 0.3]\nsensor_noise_std = [0.0, 0.002]\n"
+    ramped = make_task(load_config(write_config(tmp_path / "a.toml", task_extra="randomize_ramp = 10\n" + ranges)))
+    plain = make_task(load_config(write_config(tmp_path / "b.toml", task_extra=ranges)))
+    assert ramped.ranges(0) == {"cart_mass": (1.0, 1.0), "pole_mass": (0.2, 0.2), "sensor_noise_std": (0.0, 0.0)}
+    half = ramped.ranges(5)
+    assert half["cart_mass"] == pytest.approx((0.95, 1.05)) and half["pole_mass"] == pytest.approx((0.2, 0.25))
+    assert ramped.ranges(10) == ramped.ranges(None) == plain.ranges(3) == plain.randomize
+    physics = ramped.physics()
+    col = physics.param_table.index("cart_mass")
+    first = _scenarios(ramped, 6, 7, 1, 0, generation=0)
+    assert np.all(first.params[:, col] == 1.0) and np.all(first.perturb["sensor_noise_std"] == 0.0)
+    # past the ramp a generation draws exactly what it would have drawn without one
+    late = [_scenarios(t, 6, 7, 1, 12, generation=12) for t in (ramped, plain)]
+    assert np.array_equal(late[0].params, late[1].params)
+    assert np.array_equal(late[0].perturb["sensor_noise_std"], late[1].perturb["sensor_noise_std"])

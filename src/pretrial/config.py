@@ -42,6 +42,7 @@ class TaskConfig:
     horizon: float | None = None  # seconds of simulated time; None = the env's time limit
     network: str = "whole"  # "shared": one network per repeated observation block (drones)
     randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
+    randomize_ramp: int = 0  # generations over which the ranges widen from nominal; 0 = full at once
 
 
 @dataclass(frozen=True)
@@ -91,6 +92,8 @@ class Config:
             task["params"] = dict(self.task.params)
         if self.task.randomize:
             task["randomize"] = {k: list(v) for k, v in self.task.randomize.items()}
+        if self.task.randomize_ramp:
+            task["randomize_ramp"] = self.task.randomize_ramp
         out["neat"] = dict(self.neat)
         run = {k: v for k, v in self.run.__dict__.items() if v is not None}
         out["run"] = run
@@ -238,6 +241,9 @@ def load_config(path: str | Path) -> Config:
     env_options = t.table_of("options")
     params = t.table_of("params")
     randomize_t = t.table_of("randomize")
+    ramp = t.take("randomize_ramp", int, 0, lambda v: 0 <= v <= 1_000_000,
+                  "generations over which the [task.randomize] ranges widen from the nominal values, "
+                  "a whole number from 0 (full ranges at once) to 1000000")
     t.finish()
 
     from .generic import make_plant
@@ -287,6 +293,8 @@ def load_config(path: str | Path) -> Config:
                 f"[{spec.low:g}, {spec.high:g}] {spec.unit}"
             )
         randomize[name] = (lo, hi)
+    if ramp and not randomize:
+        raise InputError(f"{path}: task.randomize_ramp: {ramp} needs ranges to widen: add [task.randomize]")
     if network == "shared" and not getattr(physics, "obs_blocks", 0):
         raise InputError(
             f"{path}: task.network: 'shared' needs an env with repeated observation blocks; {env} has none"
@@ -329,7 +337,7 @@ def load_config(path: str | Path) -> Config:
 
     cfg = Config(
         path=path,
-        task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize),
+        task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize, ramp),
         neat=neat,
         run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation),
         source_text=text,

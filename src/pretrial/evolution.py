@@ -40,7 +40,7 @@ from .errors import InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
-from .perturb import describe_values, diverged_warning
+from .perturb import describe_values, diverged_warning, nominal_value
 from .policy import IOMap, PopulationPolicy, policy_to_dict, save_policy
 from .rollout import Scenarios, draw_scenarios, run_episodes
 
@@ -65,6 +65,24 @@ class Task:
     max_steps: int
     io: IOMap
     randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
+    randomize_ramp: int = 0
+    nominal: dict[str, float] = field(default_factory=dict)  # of each randomized name
+
+    def ranges(self, generation: int | None) -> dict[str, tuple[float, float]]:
+        """The randomized ranges a generation draws from (``None``: the full ranges, for validation).
+
+        Over the first ``randomize_ramp`` generations each range widens linearly
+        from the nominal value (or the range's nearest end) to its full width: a
+        curriculum, so the task is learnt before it is made hard.
+        """
+        if generation is None or generation >= self.randomize_ramp:
+            return self.randomize
+        f = generation / self.randomize_ramp
+        out = {}
+        for name, (lo, hi) in self.randomize.items():
+            c = min(max(self.nominal[name], lo), hi)
+            out[name] = (c + f * (lo - c), c + f * (hi - c))
+        return out
 
     def physics(self):
         key = (self.env_id, json.dumps(self.options, sort_keys=True))
@@ -111,7 +129,8 @@ def make_task(cfg: Config) -> Task:
     )
     steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
     opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
-    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize))
+    nominal = {name: nominal_value(physics, params, name) for name in cfg.task.randomize}
+    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize), cfg.task.randomize_ramp, nominal)
 
 
 # --------------------------------------------------------------------------- #
@@ -121,9 +140,9 @@ def _seed_int(seed: int, *key: int) -> int:
     return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
 
 
-def _scenarios(task: Task, n: int, seed: int, *key: int) -> Scenarios:
+def _scenarios(task: Task, n: int, seed: int, *key: int, generation: int | None = None) -> Scenarios:
     ss = np.random.SeedSequence(seed, spawn_key=key)
-    return draw_scenarios(task.physics(), n, ss, task.params, task.randomize)
+    return draw_scenarios(task.physics(), n, ss, task.params, task.ranges(generation))
 
 
 def _neat_config(path: Path):
@@ -350,7 +369,8 @@ class Evolution:
                 t0 = time.perf_counter()
                 k = st.generation
                 genomes = [st.population[key] for key in sorted(st.population)]
-                scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k)
+                scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k,
+                                  generation=k)
                 try:
                     fitness, succ = self.evaluate(genomes, scen)
                 except (KeyboardInterrupt, PretrialError):
@@ -486,6 +506,7 @@ class Evolution:
             "episodes_per_genome": self.cfg.task.episodes,
             "horizon_steps": self.task.max_steps,
             "randomize": {k: list(v) for k, v in self.task.randomize.items()},
+            "randomize_ramp": self.task.randomize_ramp,
             "fitness_target": self.cfg.run.fitness_target,
             "target_reached": bool(reached),
             "config_sha256": self.cfg.content_hash(),

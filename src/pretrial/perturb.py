@@ -184,6 +184,13 @@ def apply_settings(physics: Physics, base_params: Mapping[str, float] | None,
     return Setup(physics, params, perturb, given)
 
 
+def nominal_value(physics: Physics, base_params: Mapping[str, float] | None, name: str) -> float:
+    """Nominal value of a physics parameter (``base_params`` overrides first) or a generic perturbation."""
+    if name in physics.param_table:
+        return float((base_params or {}).get(name, physics.param_table[name].nominal))
+    return float(spec_of(physics, name).nominal)
+
+
 def spec_of(physics: Physics, name: str) -> ParamSpec:
     """The table row for a physics parameter or a generic perturbation."""
     if name in physics.param_table:

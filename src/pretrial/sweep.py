@@ -27,7 +27,7 @@ from pretrial_envs.core import Physics
 from . import streams
 from .errors import InputError
 from .execution import Executor
-from .perturb import CONTROL_PERIOD, PERTURBATIONS, describe_values, with_control_period
+from .perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
 from .plan import Z2, Plan, Vary
 from .rollout import keyed_scenarios, run_episodes
 
@@ -118,9 +118,7 @@ class Campaign:
         """Nominal value of a varied name here (policy/plan overrides included)."""
         if name == CONTROL_PERIOD:
             return self.physics.dt
-        if name in self.physics.param_table:
-            return self.base_params.get(name, self.physics.param_table[name].nominal)
-        return PERTURBATIONS[name].nominal
+        return nominal_value(self.physics, self.base_params, name)
 
     def plant(self, period: float) -> Physics:
         if period == self.physics.dt:
