@@ -204,7 +204,7 @@ PLAN_EDITS = [
     ("success_rate = 0.95", "success_rate = 1.5", "success_rate"),
     ("success_rate = 0.95", "success_rate = nan", "success_rate"),
     ("gain_margin_db = 6.0", "gain_margin_db = -inf", "gain_margin_db"),
-    ("tolerance = 0.02", "tolerance = 0.0", "tolerance"),
+    ("tolerance = 0.002", "tolerance = 0.0", "tolerance"),
     ("montecarlo_samples = 2000", "montecarlo_samples = 0", "montecarlo_samples"),
     ("map_points = 6", "map_points = 1", "map_points"),
     ('map = ["pole_mass", "actuator_delay_s"]', 'map = ["pole_mass", "wind"]', "wind"),

@@ -66,7 +66,8 @@ def sweep(root: Path, name: str, *executor: str) -> Path:
     if not plan.exists():
         plan.write_text(PLAN, encoding="utf-8")
     out = root / name
-    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--json", *executor]) == 0
+    # exit 0 (PASS) or 1 (FAIL): the verdict is not the point here, the bytes are
+    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--json", *executor]) in (0, 1)
     return out
 
 

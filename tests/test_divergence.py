@@ -101,7 +101,8 @@ def test_sweep_counts_warns_and_goes_on(runaway, tmp_path, capsys):
     plan = tmp_path / "runaway.toml"
     plan.write_text(PLAN)
     out = tmp_path / "sweep"
-    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", "1"]) == 0
+    # exit 1: diverged episodes are failures, so the verdict fails (and the sweep still finishes)
+    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", "1"]) == 1
     err = capsys.readouterr().err
     results = json.loads((out / "results.json").read_text())
     mc, div = results["montecarlo"], results["diverged"]

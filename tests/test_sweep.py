@@ -84,7 +84,8 @@ def run_sweep(capsys, tmp_path: Path, name: str, policy: str, plan_text: str, *e
     plan = tmp_path / f"{name}.toml"
     plan.write_text(plan_text, encoding="utf-8")
     out = tmp_path / f"{name}-out"
-    assert main(["sweep", policy, "--plan", str(plan), "--out", str(out), "--workers", "1", "--json", *extra]) == 0
+    # exit 0 (PASS) or 1 (FAIL): the tests using this look at the results themselves
+    assert main(["sweep", policy, "--plan", str(plan), "--out", str(out), "--workers", "1", "--json", *extra]) in (0, 1)
     capsys.readouterr()
     return json.loads((out / "results.json").read_text(encoding="utf-8")), out
 
@@ -95,7 +96,8 @@ def lqr_sweep(tmp_path_factory) -> tuple[dict, Path]:
     plan = d / "lqr.toml"
     plan.write_text(LQR_PLAN, encoding="utf-8")
     out = d / "out"
-    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", "1", "--json"]) == 0
+    # exit 1: the verdict is FAIL, since the dispersion reaches gains below the loop's margin (see below)
+    assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", "1", "--json"]) == 1
     return json.loads((out / "results.json").read_text(encoding="utf-8")), out
 
 
@@ -195,8 +197,15 @@ def test_gain_margin_edge_agrees_with_linear_gain_margin(lqr_sweep):
     # Above gm_low the loop is stable and every small-start episode survives; just below it the
     # divergence is slow (growth rate ~ 0 at the boundary), so a 5 s horizon still survives a little
     # below gm_low; and the sampled 50 Hz loop shifts the boundary a little. Hence a bracket, not equality.
-    assert 0.7 * gm_low <= edge["low"] <= 1.05 * gm_low
-    assert not edge["low_limit_reached"] and edge["low_failure"] == "pole_fell"
+    # The simulated loop is sampled (50 Hz), so its stability limit is the sampled loop's margin
+    # (a little above gm_low). Survival alone put the edge 30% below it (a slow divergence outlives a
+    # 5 s horizon); with loop quality judged, gains below the limit fail as growing and those just
+    # above it, still poorly damped at the horizon, as not settled or offset: the edge sits just above.
+    gm_sampled = loop_report(physics, lqr, None, sampled=True).channels[0].gain_margin_low
+    assert gm_sampled <= edge["low"] <= 1.06 * gm_sampled
+    assert not edge["low_limit_reached"] and edge["low_failure"] in ("growing", "not_settled", "offset")
+    # the dispersion [0.1, 1.2] holds unstable gains: Monte Carlo fails them, so the verdict fails
+    assert res["verdict"] == "fail" and res["montecarlo"]["failure_modes"].get("growing", 0) > 0
     # the first failing value is just below the edge, within the plan's tolerance of the range
     failing = [p["value"] for p in edge["points"] if not p["pass"]]
     past = max(v for v in failing if v < edge["low"])
@@ -343,7 +352,8 @@ def test_same_plan_same_bytes_across_worker_counts(tmp_path):
     blobs = []
     for workers in ("1", "2"):
         out = tmp_path / f"w{workers}"
-        assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", workers, "--json"]) == 0
+        # exit 0 or 1 (the verdict of a 2 s horizon is not the point here; the bytes are)
+        assert main(["sweep", "lqr", "--plan", str(plan), "--out", str(out), "--workers", workers, "--json"]) in (0, 1)
         blobs.append((out / "results.json").read_bytes())
     assert blobs[0] == blobs[1]
     assert json.loads(blobs[0])["content_sha256"] == json.loads(blobs[1])["content_sha256"]

@@ -188,6 +188,15 @@ class CartPolePhysics(Physics):
         self._col = {name: i for i, name in enumerate(self.param_table.names)}
         self._const_cache: tuple[Array | None, tuple[Any, ...]] = (None, ())
 
+    def regulated(self) -> dict[str, tuple[str, float]]:
+        """Cart position and pole angles, held at 0: bands 0.1 m and 0.05 rad (about 3 degrees).
+
+        The bands are our defaults for a balance task on a 4.8 m track (common
+        practice: a few percent of the travel, a few degrees of tilt); a plan's
+        ``[require.quality] band`` overrides them.
+        """
+        return {"x": ("m", 0.1), **{n: ("rad", 0.05) for n in self.state_names[2::2]}}
+
     def __getstate__(self) -> dict[str, Any]:
         state = self.__dict__.copy()
         state["_const_cache"] = (None, ())  # a cache, not configuration: never pickled

@@ -191,16 +191,16 @@ Derivatives = Callable[[Array, Array, Array], Array]
 # same order (a + b and a * b are the same float as b + a and b * a).
 
 
-def euler_step(f: Derivatives, x: Array, u: Array, p: Array, h: float) -> Array:
-    """Explicit (forward) Euler: ``x + h f(x, u, p)``."""
+def euler_step(f: Derivatives, x: Array, u: Array, p: Array, h: float | Array) -> Array:
+    """Explicit (forward) Euler: ``x + h f(x, u, p)`` (``h`` a number or an (N, 1) step per row)."""
     dx = f(x, u, p)
     dx *= h
     dx += x
     return dx
 
 
-def rk4_step(f: Derivatives, x: Array, u: Array, p: Array, h: float) -> Array:
-    """Classical fourth-order Runge-Kutta with ``u`` held over the step.
+def rk4_step(f: Derivatives, x: Array, u: Array, p: Array, h: float | Array) -> Array:
+    """Classical fourth-order Runge-Kutta with ``u`` held over the step (``h`` a number or (N, 1) per row).
 
     ``x + (h / 6) (k1 + 2 (k2 + k3) + k4)`` with ``k1 = f(x)``,
     ``k2 = f(x + (h / 2) k1)``, ``k3 = f(x + (h / 2) k2)``, ``k4 = f(x + h k3)``.
@@ -494,6 +494,35 @@ class Physics:
         """
         return np.zeros((params.shape[0], self.state_dim))
 
+    def safe_action(self, params: Array) -> Array:
+        """The command an exported controller falls back to on a fault, (A,) in [-1, 1] for params (P,).
+
+        Default: zero command on every channel. A plant where zero is not
+        the least harmful command (one that must carry its own weight)
+        overrides it.
+        """
+        return np.zeros(self.action_dim)
+
+    def regulated(self) -> dict[str, tuple[str, float]]:
+        """Quantities the task regulates, for loop-quality checks: name -> (unit, default band half-width).
+
+        The default regulates nothing (a plant that declares no quantities gets
+        no settling, offset or growth checks; saturation and chatter still apply).
+        Names that are state names need no more: :meth:`regulation_error`
+        takes them minus :meth:`target_state`.
+        """
+        return {}
+
+    def regulation_error(self, state: Array, params: Array) -> Array:
+        """Deviation of each regulated quantity from its target, (N, R) in its unit."""
+        idx = [self.state_names.index(n) for n in self.regulated()]
+        return state[:, idx] - self.target_state(params)[:, idx]
+
+    def regulation_band(self, params: Array) -> Array:
+        """Tolerance band half-width of each regulated quantity, (N, R); default the declared constants."""
+        bands = np.array([b for _, b in self.regulated().values()], dtype=float)
+        return np.broadcast_to(bands, (params.shape[0], len(bands)))
+
     def advance_disturbance(self, state: Array, params: Array, noise: Array) -> Array:
         """Update disturbance states once per control period (held within it)."""
         return state
@@ -564,9 +593,13 @@ class Physics:
         return {}
 
     # ----------------------------------------------------------- provided
-    def integrate(self, state: Array, force: Array, params: Array) -> Array:
-        """Advance ``state`` over one control period with ``force`` held."""
-        h = self.dt / self.substeps
+    def integrate(self, state: Array, force: Array, params: Array, fraction: Array | None = None) -> Array:
+        """Advance ``state`` over one control period with ``force`` held, or over ``fraction`` (N, 1) of it per row.
+
+        With ``fraction`` each row takes ``substeps`` steps of ``fraction dt / substeps`` (never longer than
+        the whole period's step); a fraction of exactly 1 gives the same numbers as none.
+        """
+        h = self.dt / self.substeps if fraction is None else (self.dt * fraction) / self.substeps
         f = self.derivatives
         step = self._step
         for _ in range(self.substeps):
@@ -591,6 +624,10 @@ class Physics:
         hold: Array,
         steps: Array,
         noise: Array | None = None,
+        *,
+        earlier: Array | None = None,
+        switch: Array | None = None,
+        gain: Array | None = None,
     ) -> Transition:
         """One control period for a batch, with the episode rules applied.
 
@@ -602,6 +639,16 @@ class Physics:
         hold : (N,) seconds already spent in the goal region
         steps : (N,) control periods already taken
         noise : (N, noise_dim) standard normal draws, or None for none
+        earlier : (N, A) array, optional
+            Action (clipped too) acting over the first ``switch`` of the period, ``action`` over the
+            rest: a command arriving within the period (a transport delay of a fraction of a period,
+            a late control step). The period is integrated in two phases, exactly.
+        switch : (N, 1) array in [0, 1], optional
+            Share of the period before ``action`` takes over; rows at 0 integrate the period in one
+            piece, bit for bit as without ``switch``.
+        gain : (N, A) or (N, 1) array, optional
+            Multiplier on the physical inputs :meth:`actuate` produces (force, thrust), e.g. a weak
+            or failed actuator: 0 means no output at all.
         """
         action = np.maximum(action, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
         np.minimum(action, 1.0, out=action)
@@ -611,7 +658,12 @@ class Physics:
                     noise = np.zeros((state.shape[0], self.noise_dim))
                 state = self.advance_disturbance(state, params, noise)
             force = self.actuate(action, params)
-            state = self.integrate(state, force, params)
+            if gain is not None:
+                force = force * gain
+            if switch is None:
+                state = self.integrate(state, force, params)
+            else:
+                state = self._two_phases(state, earlier, force, params, switch, gain)
             bad = _diverged_rows(state)
             any_bad = bool(bad.any())
             failure = np.asarray(self.check(state, force, params), dtype=np.int64)
@@ -639,6 +691,19 @@ class Physics:
             if any_bad:  # finite states give finite rewards; a diverged row's reward is 0
                 reward = np.where(bad | ~np.isfinite(reward), 0.0, reward)
         return Transition(state, reward, failure, success, terminated, truncated, hold, steps)
+
+    def _two_phases(self, state: Array, earlier: Array, force: Array, params: Array, switch: Array,
+                    gain: Array | None) -> Array:
+        """The period: ``earlier`` over its first ``switch``, ``force`` over the rest (rows at 0 or 1: one piece)."""
+        first = np.maximum(earlier, -1.0)
+        np.minimum(first, 1.0, out=first)
+        first = self.actuate(first, params)
+        if gain is not None:
+            first = first * gain
+        # a zero-length phase is skipped by mask, not integrated with h = 0 (x + 0 k is not always x: -0.0, inf)
+        mid = np.where(switch > 0, self.integrate(state, first, params, switch), state)
+        end = self.integrate(mid, force, params, 1.0 - switch)
+        return np.where(switch < 1, end, mid)
 
     def describe(self) -> dict[str, Any]:
         """Everything a listing needs: parameters, spaces, rules."""

@@ -229,6 +229,14 @@ class DronePairPhysics(Physics):
         s[ROTORS] = 0.5 * self.param(params, "mass") * self.param(params, "gravity")
         return np.ascontiguousarray(s.T)
 
+    def regulated(self) -> dict[str, tuple[str, float]]:
+        """Each drone's position at its goal, banded by ``goal_tolerance`` per axis."""
+        tol = self.param_table["goal_tolerance"].nominal
+        return {n: ("m", tol) for n in ("d0_x", "d0_z", "d1_x", "d1_z")}
+
+    def regulation_band(self, params: Array) -> Array:
+        return np.repeat(self.param(params, "goal_tolerance")[:, None], 4, axis=1)
+
     # ----------------------------------------------------------- measures
     def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
         """The generic measures (:meth:`Physics.episode_metrics`, incl. ``settling_time``) plus the pair's.
@@ -324,6 +332,16 @@ class DronePairPhysics(Physics):
     def hover_action(self, params: Array) -> Array:
         """The rotor command (N,) whose thrust holds a level drone's weight, m g / 2 per rotor."""
         return self.param(params, "mass") * self.param(params, "gravity") / self.param(params, "max_thrust") - 1.0
+
+    def safe_action(self, params: Array) -> Array:
+        """Hover thrust on all 4 rotors: each drone's weight m g shared by its 2 rotors, m g / 2 per rotor.
+
+        Through ``actuate`` (thrust = (a + 1) max_thrust / 2) that is the command
+        a = m g / max_thrust - 1, clipped to [-1, 1] (+1 where m g > 2 max_thrust:
+        no hover then). Open loop it holds no attitude or position: a fallback only.
+        """
+        hover = np.clip(self.hover_action(np.asarray(params, dtype=float)[None]), -1.0, 1.0)
+        return np.repeat(hover, self.action_dim)
 
     def reward(self, state: Array, action: Array, params: Array, failure: Array, success: Array) -> Array:
         dist, _, sep = self._distances(state, params)

@@ -360,6 +360,18 @@ class GantryPhysics(Physics):
             target[:, 4] = params[:, self._col["rope_length"]]
         return target
 
+    def regulated(self) -> dict[str, tuple[str, float]]:
+        """The load's horizontal miss from ``target_x`` and the sway, banded by the goal tolerances."""
+        table = self.param_table
+        return {"load_x": ("m", table["position_tolerance"].nominal), "phi": ("rad", table["sway_tolerance"].nominal)}
+
+    def regulation_error(self, state: Array, params: Array) -> Array:
+        return np.stack([self.load_x(state, params) - params[:, self._col["target_x"]], state[:, 2]], axis=1)
+
+    def regulation_band(self, params: Array) -> Array:
+        c_ = self._col
+        return np.stack([params[:, c_["position_tolerance"]], params[:, c_["sway_tolerance"]]], axis=1)
+
     # ----------------------------------------------------------- measures
     def episode_metrics(self, states: Array, actions: Array, params: Array, steps: Array) -> dict[str, EpisodeMetric]:
         """The generic measures (:meth:`Physics.episode_metrics`, incl. ``settling_time``) plus the crane's.

@@ -27,6 +27,7 @@ from .config import _kind, _Reader, dump_toml, read_toml
 from .errors import InputError
 from .files import sha256_hex
 from .perturb import CONTROL_PERIOD, PERTURBATIONS, setting_names, spec_of, with_control_period
+from .quality import QualityLimits
 
 ANALYSES = ("margins", "montecarlo", "worstcase", "sensitivity", "map", "linear", "linear_sampled",
             "integrator_check")
@@ -37,6 +38,9 @@ Z2 = 1.959963984540054**2
 #: requirement defaults for linear margins (MIL-F-9490D, flight control systems)
 DEFAULT_GAIN_MARGIN_DB = 6.0
 DEFAULT_PHASE_MARGIN_DEG = 45.0
+#: default worst-case requirement, as a share of the required success rate (our choice: the worst point
+#: found inside the dispersion may fall a little below the average requirement, not to a coin toss)
+DEFAULT_WORSTCASE_SHARE = 0.8
 
 
 def episodes_needed(rate: float) -> int:
@@ -100,6 +104,10 @@ class Plan:
     lqr_q: dict[str, float] = field(default_factory=dict)
     lqr_r: dict[str, float] = field(default_factory=dict)
     source_text: str = ""
+    #: what a surviving episode must also meet to count as a success (``[require.quality]``)
+    quality: QualityLimits = field(default_factory=QualityLimits)
+    #: the least success rate accepted at the worst case found inside the dispersion
+    worstcase_success_rate: float | None = None
 
     @property
     def name(self) -> str:
@@ -120,7 +128,9 @@ class Plan:
                      for v in self.vary],
             "analysis": {"run": list(self.analyses), **self.budgets},
             "require": {"success_rate": self.required_success_rate, "margins": self.required_margins,
-                        "gain_margin_db": self.gain_margin_db, "phase_margin_deg": self.phase_margin_deg},
+                        "gain_margin_db": self.gain_margin_db, "phase_margin_deg": self.phase_margin_deg,
+                        "worstcase_success_rate": self.worstcase_success_rate,
+                        "quality": self.quality.to_dict()},
             "baseline": {"q": dict(self.lqr_q), "r": dict(self.lqr_r)},
         }
 
@@ -261,8 +271,11 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     rate = q.take("success_rate", float, 0.95, lambda v: 0 < v < 1, "a fraction, 0 < p < 1")
     gm = q.take("gain_margin_db", float, DEFAULT_GAIN_MARGIN_DB, lambda v: v >= 0, "dB >= 0")
     pm = q.take("phase_margin_deg", float, DEFAULT_PHASE_MARGIN_DEG, lambda v: 0 <= v <= 180, "degrees 0..180")
+    worst_rate = q.take("worstcase_success_rate", float, None, lambda v: 0 <= v < 1, "a fraction, 0 <= p < 1")
     margins_t = q.table_of("margins")
+    quality_t = q.table_of("quality")
     q.finish()
+    quality = read_quality(path, "require.quality", quality_t, physics)
     required_margins: dict[str, dict[str, float]] = {}
     varied = {v.name: v for v in vary}
     for name, req in margins_t.items():
@@ -311,8 +324,68 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
 
     if env is not None and policy_env is not None and env != policy_env:
         raise InputError(f"{path}: scenario.env: the plan is for {env}, the policy for {policy_env}")
+    if worst_rate is None and "worstcase" in run:
+        worst_rate = DEFAULT_WORSTCASE_SHARE * rate
     return Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
-                tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text)
+                tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text, quality,
+                worst_rate)
+
+
+def read_quality(path: str, key: str, table: dict[str, Any], physics: Any) -> QualityLimits:
+    """``[require.quality]`` -> :class:`QualityLimits` (defaults for what is not given).
+
+    Keys: ``settled`` (true/false), ``settle_window`` (share of the horizon),
+    ``band`` and ``offset`` (tables by regulated name, physical units),
+    ``saturated_fraction`` and ``chatter_hz`` (a number, or false for no
+    limit), ``chatter_level``, ``growth`` (true/false), ``growth_span``,
+    ``growth_ratio``, ``growth_floor``, ``noisy_growth_ratio``,
+    ``noisy_growth_floor`` (see :mod:`pretrial.quality`).
+    """
+    r = _Reader(path, key, table)
+    base = QualityLimits()
+
+    def limit_or_off(name: str, default: float | None, check, allowed: str) -> float | None:
+        value = r.take(name, (float, bool), default if default is not None else False)
+        if value is False:
+            return None
+        if value is True:
+            return default
+        if not check(value):
+            r.fail(r.key(name), f"{value!r} not allowed ({allowed})")
+        return float(value)
+
+    settled = r.take("settled", bool, base.settled)
+    window = r.take("settle_window", float, base.settle_window, lambda v: 0 < v <= 1,
+                    "a share of the horizon, 0 < w <= 1")
+    sat = limit_or_off("saturated_fraction", base.saturated_fraction, lambda v: 0 <= v <= 1,
+                       "a fraction 0..1, or false")
+    chat = limit_or_off("chatter_hz", base.chatter_hz, lambda v: v >= 0, "reversals per second >= 0, or false")
+    level = r.take("chatter_level", float, base.chatter_level, lambda v: 0 < v < 1, "a share of full scale, 0 < l < 1")
+    growth = r.take("growth", bool, base.growth)
+    span = r.take("growth_span", float, base.growth_span, lambda v: 0 < v <= 1, "a share of the horizon, 0 < s <= 1")
+    ratio = r.take("growth_ratio", float, base.growth_ratio, lambda v: v >= 1, ">= 1")
+    floor = r.take("growth_floor", float, base.growth_floor, lambda v: v >= 0, "a share of the band >= 0")
+    noisy_ratio = r.take("noisy_growth_ratio", float, base.noisy_growth_ratio, lambda v: v >= 1, ">= 1")
+    noisy_floor = r.take("noisy_growth_floor", float, base.noisy_growth_floor, lambda v: v >= 0,
+                         "a share of the band >= 0")
+    bands: dict[str, dict[str, float]] = {}
+    for kind in ("band", "offset"):
+        sub = r.table_of(kind)
+        bands[kind] = {}
+        for name, value in sub.items():
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+                raise InputError(f"{path}: {key}.{kind}.{name}: {value!r} must be a number > 0 (physical units)")
+            bands[kind][name] = float(value)
+    r.finish()
+    limits = QualityLimits(settled=settled, settle_window=window, band=bands["band"], offset=bands["offset"],
+                           saturated_fraction=sat, chatter_hz=chat, chatter_level=level, growth=growth,
+                           growth_span=span, growth_ratio=ratio, growth_floor=floor, noisy_growth_ratio=noisy_ratio,
+                           noisy_growth_floor=noisy_floor)
+    try:
+        limits.check_names(physics)
+    except ValueError as exc:
+        raise InputError(f"{path}: {key}.{exc}") from None
+    return limits
 
 
 def _positive(path: str, key: str, value: Any) -> float:
@@ -341,6 +414,8 @@ def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: 
         try:
             spec = spec_of(physics, name)
         except ValueError as exc:
+            if "." in name:  # NAME.CHANNEL: the message already lists the valid forms
+                raise InputError(f"{path}: {key}.name: {exc}") from None
             valid = ", ".join(setting_names(physics))
             raise InputError(f"{path}: {key}.name: {exc}".split("; valid:")[0] + f"; valid: {valid}") from None
         unit, low_ok, high_ok = spec.unit, spec.low, spec.high

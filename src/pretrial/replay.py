@@ -28,6 +28,7 @@ from pretrial_envs.core import EpisodeMetric, Physics
 from .console import CAUTIONS, emit_json, fmt_number, print_cautions, table
 from .errors import InputError, PretrialError
 from .perturb import Setup, apply_settings, diverged_warning
+from .quality import QualityLimits, quality_metrics
 from .rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
 
 #: replay records every step of every episode; beyond this many, a sweep is the tool
@@ -228,7 +229,7 @@ def _number(item: str, text: str, valid: str) -> float:
 
 def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: int = 0, start: str | None = None,
                policy_label: str = "", env_id: str = "", policy_hash: str | None = None,
-               max_steps: int | None = None) -> Replay:
+               max_steps: int | None = None, quality: QualityLimits | None = None) -> Replay:
     """Run and measure ``episodes`` recorded episodes of seed ``seed`` (all in one batch).
 
     Parameters
@@ -243,6 +244,9 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
         ``--start`` text: replaces every episode's start state.
     max_steps : int, optional
         Episode length in control periods (default: the env's time limit; a plan's horizon).
+    quality : QualityLimits, optional
+        Loop-quality limits an episode must also meet to succeed (a plan's, or
+        the defaults); None judges survival only.
     """
     if isinstance(episodes, bool) or not isinstance(episodes, (int, np.integer)) or not 1 <= episodes <= MAX_EPISODES:
         raise InputError(f"--episodes {episodes!r}: expected a whole number from 1 to {MAX_EPISODES}")
@@ -252,9 +256,11 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     if start is not None:
         scenarios.start = parse_start(start, physics, scenarios.params)
         start_state = scenarios.start[0].tolist()
-    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True)
+    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality)
     trace = outcome.trace
     metrics = physics.episode_metrics(trace["state"], trace["action"], scenarios.params, outcome.steps[0])
+    if outcome.quality is not None:
+        metrics.update(quality_metrics(physics, outcome.quality))
     return Replay(policy_label, policy_hash, env_id or physics.env_id, setup, int(seed), scenarios, outcome, metrics,
                   start_state, start)
 
@@ -280,6 +286,14 @@ def metric_summary(metric: EpisodeMetric) -> dict[str, Any]:
     }
 
 
+def success_interval(successes: int, episodes: int) -> list[float]:
+    """Wilson 95% interval [lo, hi] of ``successes`` of ``episodes`` (:func:`pretrial.sweep.wilson_interval`)."""
+    from .sweep import wilson_interval
+
+    lo, hi = wilson_interval(successes, episodes)
+    return [float(lo), float(hi)]
+
+
 def summary(rep: Replay) -> dict[str, Any]:
     """The JSON document of a replay (infinities become null: "never")."""
     out = rep.outcome
@@ -296,6 +310,7 @@ def summary(rep: Replay) -> dict[str, Any]:
         "start": rep.start,
         "control_period_s": physics.dt,
         "success_rate": float(out.success.mean()),
+        "success_ci95": success_interval(int(out.success.sum()), rep.episodes),
         "successes": int(out.success.sum()),
         "failure_modes": out.failure_counts(),
         "returns": returns.tolist(),
@@ -332,8 +347,10 @@ def print_summary(rep: Replay, out=None) -> None:
               file=out)
     print(file=out)
     r = doc["return"]
+    lo, hi = doc["success_ci95"]
     rows = [["episodes", rep.episodes, ""], ["success rate", f"{doc['success_rate']:.1%}",
-                                             f"{doc['successes']} of {rep.episodes}"],
+                                             f"{doc['successes']} of {rep.episodes}; Wilson 95% interval "
+                                             f"{lo:.1%} to {hi:.1%}"],
             ["return", fmt_number(r["mean"]), f"mean (min {fmt_number(r['min'])}, max {fmt_number(r['max'])})"]]
     for word, count in sorted(doc["failure_modes"].items()):
         rows.append([f"failed: {word}", count, "episodes"])
@@ -446,8 +463,10 @@ def run_cli(args: argparse.Namespace) -> int:
             max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
     else:
         policy, setup, env_id, digest = prepare(args.policy, args.env, settings)
+    quality = ctl.plan.quality if getattr(args, "plan", None) and ctl.plan is not None else QualityLimits()
     rep = run_replay(policy, setup, episodes=args.episodes, seed=args.seed, start=args.start,
-                     policy_label=args.policy, env_id=env_id, policy_hash=digest, max_steps=max_steps)
+                     policy_label=args.policy, env_id=env_id, policy_hash=digest, max_steps=max_steps,
+                     quality=quality)
     rep.plan = getattr(args, "plan", None)
     trace, steps, params = rep.outcome.trace, rep.outcome.steps[0], rep.scenarios.params
     note = rep.setup.words() or "nominal"

@@ -19,7 +19,8 @@ import numpy as np
 from pretrial_envs.core import Physics
 
 from . import streams
-from .perturb import PERTURBATIONS, Loop
+from .perturb import Loop, spec_of
+from .quality import QualityLimits, QualityTracker, merge_words
 
 
 class BatchPolicy(Protocol):
@@ -103,7 +104,8 @@ def keyed_scenarios(
     params : (n, P) array
         Physics parameter rows (settings for physics names are written into a copy).
     settings : mapping of str to (n,) array, optional
-        Physics parameter or generic perturbation values per row.
+        Physics parameter or generic perturbation values per row (channel forms such as
+        ``sensor_noise_std.theta`` included).
     """
     params = np.array(params, dtype=float)
     table = physics.param_table
@@ -112,7 +114,7 @@ def keyed_scenarios(
         if name in table:
             params[:, table.index(name)] = v
         else:
-            PERTURBATIONS.index(name)
+            spec_of(physics, name)  # a perturbation or one channel of it; anything else fails loudly
             perturb[name] = np.asarray(v, dtype=float)
     keys = streams.episode_keys(seeds, episodes)
     scale = perturb.get("start_scale", 1.0)
@@ -131,6 +133,8 @@ class Outcome:
     failure_words: tuple[str, ...]
     trace: dict[str, np.ndarray] | None = None  # (T+1, rows, ...) when recorded
     score: np.ndarray | None = None  # (G, S) when asked for; see episode_score
+    #: loop-quality measures (name -> (G, S) array) when judged; see :mod:`pretrial.quality`
+    quality: dict[str, np.ndarray] | None = None
 
 
     def failure_counts(self) -> dict[str, int]:
@@ -146,6 +150,7 @@ def run_episodes(
     max_steps: int | None = None,
     record: bool = False,
     score: bool = False,
+    quality: QualityLimits | None = None,
 ) -> Outcome:
     """Run every policy of ``policy`` on every scenario until all rows end.
 
@@ -163,6 +168,11 @@ def run_episodes(
         Keep per-step states, observations and actions (for replay; small batches only).
     score : bool
         Also compute each episode's continuous score (:func:`episode_score`).
+    quality : QualityLimits, optional
+        Judge how the loop behaved (:mod:`pretrial.quality`): an episode that
+        survived but chattered, saturated, kept growing, did not settle or kept
+        an offset is a failure with that word (codes after the env's own words),
+        and its score is 0 (on the line between passing and failing).
     """
     g, s = policy.n_policies, len(scenarios)
     rows = g * s
@@ -172,6 +182,9 @@ def run_episodes(
     loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
     state = np.tile(scenarios.start, (g, 1))
     limit = physics.max_steps if max_steps is None else int(max_steps)
+    tracker = None
+    if quality is not None:
+        tracker = QualityTracker(physics, quality, params, limit, np.tile(random_rows(physics, scenarios), g))
     hold = np.zeros(rows)
     steps = np.zeros(rows, dtype=np.int64)
     # results by original row; `where` maps the rows still stepped to them
@@ -210,7 +223,9 @@ def run_episodes(
         measured = loop.sense(obs, k)
         command = policy.act(measured)
         action = loop.actuate(command, k)
-        tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k))
+        tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k), **loop.plant_inputs())
+        if tracker is not None:
+            tracker.update(k, tr.state, action, tr.hold, params, None if finished is None else active)
         if slack is not None:
             with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
                 now = physics.constraint_slack(tr.state, physics.actuate(action, params), params)
@@ -265,6 +280,9 @@ def run_episodes(
                 if slack is not None:
                     slack_all[where], best_hold_all[where] = slack, best_hold
                     slack, best_hold = slack[keep], best_hold[keep]
+                if tracker is not None:
+                    tracker.store(where, rows)
+                    tracker.take(keep)
                 policy = smaller
                 where, ret, state, hold, steps, active = (
                     where[keep], ret[keep], state[keep], hold[keep], steps[keep], active[keep]
@@ -282,19 +300,42 @@ def run_episodes(
     steps = length
     failure[success] = 0
     shape = (g, s)
+    words = physics.failure_words
+    measures = None
+    poor = None
+    if tracker is not None:
+        tracker.store(where, rows)
+        code, measures = tracker.finish(steps, success)
+        poor = code >= 0
+        success[poor] = False
+        failure[poor] = len(words) + code[poor]
+        words = merge_words(words)
     scores = None
     if slack is not None:
         slack_all[where], best_hold_all[where] = slack, best_hold
-        scores = episode_score(physics, success, failure, steps, limit, slack_all, best_hold_all).reshape(shape)
+        scores = episode_score(physics, success, failure, steps, limit, slack_all, best_hold_all)
+        if poor is not None:
+            scores[poor] = 0.0
+        scores = scores.reshape(shape)
     return Outcome(
         returns.reshape(shape),
         success.reshape(shape),
         failure.reshape(shape),
         steps.reshape(shape),
-        physics.failure_words,
+        words,
         {k: np.asarray(v) for k, v in trace.items()} if trace is not None else None,
         scores,
+        {k: v.reshape(shape) for k, v in measures.items()} if measures is not None else None,
     )
+
+
+def random_rows(physics: Physics, scenarios: Scenarios) -> np.ndarray:
+    """(S,) bool: scenarios driven by random inputs (sensor noise, control jitter, the plant's own gusts)."""
+    noisy = np.full(len(scenarios), physics.noise_dim > 0)
+    for name, v in scenarios.perturb.items():
+        if name.split(".")[0] in ("sensor_noise_std", "control_jitter_s"):
+            noisy |= np.asarray(v).reshape(len(scenarios), -1).any(axis=1)
+    return noisy
 
 
 def episode_score(physics: Physics, success: np.ndarray, failure: np.ndarray, steps: np.ndarray, limit: int,

@@ -75,9 +75,9 @@ class Batch:
 
 def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Work item: one chunk of rows of one plant (module level, so it pickles)."""
-    physics, policy, params, settings, seeds, episodes, max_steps = item
+    physics, policy, params, settings, seeds, episodes, max_steps, quality = item
     sc = keyed_scenarios(physics, seeds, episodes, params, settings)
-    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True)
+    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality)
     words = np.array(out.failure_words, dtype=object)[out.failure[0]]
     return out.success[0], words.astype(str), out.score[0], out.steps[0]
 
@@ -155,7 +155,8 @@ class Campaign:
                 r = rows[lo:lo + CHUNK]
                 params = np.repeat(base, len(r), axis=0)
                 settings = {k: v[r] for k, v in vals.items()}
-                items.append((physics, self.policy, params, settings, seeds[r], episodes[r], self.max_steps(physics)))
+                items.append((physics, self.policy, params, settings, seeds[r], episodes[r], self.max_steps(physics),
+                              self.plan.quality))
                 where.append(r)
         # map in groups so progress can be shown between them
         group = max(1, getattr(self.executor, "workers", 1))
@@ -320,7 +321,9 @@ def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
             s.done = True  # passed to the range end
     # bisect all open brackets together, round by round
     while True:
-        open_ = [s for s in searches if not s.done and abs(s.failed - s.passed) > tol * (s.vary.high - s.vary.low)]
+        # the tolerance is a fraction of the way to the range end, on the search's own scale (logarithmic
+        # where the range spans more than 4x), so a wide log range still ends with a fine relative step
+        open_ = [s for s in searches if not s.done and abs(s.frac(s.failed) - s.frac(s.passed)) > tol]
         if not open_:
             break
         mids = []
@@ -479,11 +482,20 @@ def worstcase(c: Campaign, seed: int) -> dict[str, Any]:
     score, batch = _scored(c, names, best[None, :], seed, k)
     vals = {n: float(x) for n, x in zip(names, best, strict=True)}
     successes = int(batch.success.sum())
+    # the search saw K episodes per point: confirm the point found on the plan's episodes, fresh draws
+    kc = c.plan.episodes
+    cseed = derive_seed(seed, 1)
+    confirm = c.evaluate({n: np.full(kc, x) for n, x in vals.items()}, cseed, np.arange(kc))
+    cs = int(confirm.success.sum())
+    lo, hi = wilson_interval(cs, kc)
     return {
         "method": "scipy.optimize.differential_evolution", "evaluations": evaluations, "episodes": k,
         "score": float(score[0]), "values": vals, "seed": seed, "success_rate": successes / k,
         "failure": _commonest(batch.failure), "failure_modes": _modes(batch.failure),
         "replay": c.replay_command(vals, seed, k),
+        "confirm": {"episodes": kc, "seed": cseed, "successes": cs, "success_rate": cs / kc,
+                    "ci95": [float(lo), float(hi)], "failure_modes": _modes(confirm.failure),
+                    "replay": c.replay_command(vals, cseed, kc)},
     }
 
 
@@ -519,7 +531,11 @@ def _finite(v: Any) -> float | None:
 
 
 def success_map(c: Campaign, seed: int) -> dict[str, Any]:
-    """Success rate over a grid of two varied names (the others nominal), K common episodes per cell."""
+    """Success rate over a grid of two varied names (the others nominal), K common episodes per cell.
+
+    The grid spans each name's margin search range (``range``, not the dispersion box), so the map
+    shows where the margins' edges lie; each cell carries its successes and Wilson 95% bounds.
+    """
     xname, yname = c.plan.budgets["map"]
     vx = next(v for v in c.plan.vary if v.name == xname)
     vy = next(v for v in c.plan.vary if v.name == yname)
@@ -527,9 +543,9 @@ def success_map(c: Campaign, seed: int) -> dict[str, Any]:
     k = c.plan.budgets.get("map_episodes", c.plan.episodes)
 
     def grid(v: Vary) -> np.ndarray:
-        if v.box_low > 0 and v.box_high / v.box_low > 10:
-            return np.geomspace(v.box_low, v.box_high, m)
-        return np.linspace(v.box_low, v.box_high, m)
+        if v.low > 0 and v.high / v.low > 10:
+            return np.geomspace(v.low, v.high, m)
+        return np.linspace(v.low, v.high, m)
 
     xs, ys = grid(vx), grid(vy)
     if CONTROL_PERIOD in (xname, yname):
@@ -538,9 +554,11 @@ def success_map(c: Campaign, seed: int) -> dict[str, Any]:
     pts = np.column_stack([gx.ravel(), gy.ravel()])
     reps = np.repeat(np.arange(len(pts)), k)
     batch = c.evaluate({xname: pts[reps, 0], yname: pts[reps, 1]}, seed, np.tile(np.arange(k), len(pts)))
-    rate = batch.success.reshape(len(pts), k).mean(axis=1).reshape(m, m)
+    wins = batch.success.reshape(len(pts), k).sum(axis=1).reshape(m, m)
+    lower, upper = wilson_interval(wins, k)
     return {"x": xname, "y": yname, "x_unit": vx.unit, "y_unit": vy.unit, "x_values": xs.tolist(),
-            "y_values": ys.tolist(), "success_rate": rate.tolist(), "episodes": k, "seed": seed}
+            "y_values": ys.tolist(), "success_rate": (wins / k).tolist(), "episodes": k, "seed": seed,
+            "successes": wins.astype(int).tolist(), "lower_bound": lower.tolist(), "upper_bound": upper.tolist()}
 
 
 # --------------------------------------------------------------------------- #
@@ -562,7 +580,17 @@ def linear_analysis(c: Campaign, sampled: bool) -> tuple[list[dict[str, Any]], d
         for ch in rep.channels:
             h = ch.frequency_response(omega)
             details["response"]["channels"][ch.name] = {"re": np.real(h).tolist(), "im": np.imag(h).tolist()}
-    return (rep.channel_dicts() if rep.linearizable else []), details
+    if not getattr(c.policy, "feed_forward", True):
+        # a dynamic (recurrent) controller is not analysed here: its linear requirements do not apply,
+        # rather than fail by construction (the report says so)
+        details["not_applicable"] = "recurrent controller (its network state is not linearized)"
+    channels = rep.channel_dicts() if rep.linearizable else []
+    if rep.linearizable and rep.stable is False:
+        # margins of an unstable loop are meaningless numbers (0 dB / 0 deg): say UNSTABLE instead
+        details["unstable"] = True
+        channels = [{k: (None if k not in ("channel",) and isinstance(v, (int, float)) and not isinstance(v, bool)
+                         else v) for k, v in ch.items()} | {"unstable": True} for ch in channels]
+    return channels, details
 
 
 def integrator_check(c: Campaign, seed: int) -> dict[str, Any]:
@@ -612,13 +640,15 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
     if mc is not None:
         out.append({"name": "success rate (Monte Carlo, Wilson 95% lower bound)",
                     "required": plan.required_success_rate, "measured": mc["ci95"][0],
+                    "interval": list(mc["ci95"]), "point": mc["success_rate"],
                     "pass": mc["ci95"][0] >= plan.required_success_rate})
     elif res.get("integrator_check") is not None:
         ic = res["integrator_check"]
         k = ic["episodes"]
-        lo, _ = wilson_interval(round(ic["nominal"]["success_rate"] * k), k)
+        lo, hi = wilson_interval(round(ic["nominal"]["success_rate"] * k), k)
         out.append({"name": "success rate (nominal episodes, Wilson 95% lower bound)",
                     "required": plan.required_success_rate, "measured": float(lo),
+                    "interval": [float(lo), float(hi)], "point": ic["nominal"]["success_rate"],
                     "pass": float(lo) >= plan.required_success_rate})
     margins_by = {m["name"]: m for m in res.get("margins") or []}
     for name, req in plan.required_margins.items():
@@ -631,11 +661,30 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
             got = m[key]
             ok = got is not None and (got >= want if key.startswith("high") else got <= want)
             out.append({"name": label, "required": want, "measured": got, "pass": bool(ok)})
+    wc = res.get("worstcase")
+    if wc is not None and plan.worstcase_success_rate is not None:
+        conf = wc.get("confirm") or {"success_rate": wc["success_rate"], "ci95": None}
+        out.append({"name": "success rate at the worst case found (point estimate)",
+                    "required": plan.worstcase_success_rate, "measured": conf["success_rate"],
+                    "interval": conf["ci95"], "pass": conf["success_rate"] >= plan.worstcase_success_rate})
     wanted = (("gain_margin_db", plan.gain_margin_db), ("phase_margin_deg", plan.phase_margin_deg))
     for key, title in (("linear", "continuous loop"), ("linear_sampled", "sampled loop")):
         if res.get(key) is None:
             continue
         details = res["linear_details"]["continuous" if key == "linear" else "sampled"]
+        if details.get("not_applicable"):
+            for req_name, want in wanted:
+                if want is not None:
+                    out.append({"name": f"{req_name} ({title})", "required": want,
+                                "measured": f"not applicable: {details['not_applicable']}", "pass": None})
+            continue
+        if details.get("unstable"):
+            for req_name, want in wanted:
+                if want is not None:
+                    out.append({"name": f"{req_name} ({title})", "required": want,
+                                "measured": "UNSTABLE: the nominal linearized loop has a pole in the right half "
+                                            "plane (outside the unit circle when sampled)", "pass": False})
+            continue
         if not details["linearizable"]:
             reason = f"not linearizable: {details['reason']}"
             for req_name, want in wanted:
@@ -660,8 +709,13 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
 
 
 def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
-    """"pass" when every requirement passes (and there is at least one)."""
-    return "pass" if reqs and all(r["pass"] for r in reqs) else "fail"
+    """"pass" when every applicable requirement passes (and there is at least one).
+
+    A requirement whose ``pass`` is None does not apply (e.g. linear margins of
+    a recurrent controller) and neither passes nor fails.
+    """
+    judged = [r for r in reqs if r["pass"] is not None]
+    return "pass" if judged and all(r["pass"] for r in judged) else "fail"
 
 
 #: analysis -> key into the plan seed, so adding an analysis never changes another's draws
