@@ -55,7 +55,10 @@ def lqr():
     return controlled("lqr", str(CARTPOLE_PLAN))
 
 
-def _episodes(ctl, k: int, settings: dict[str, float], policy=None, quality=QualityLimits(), params=None):
+DEFAULTS = QualityLimits()
+
+
+def _episodes(ctl, k: int, settings: dict[str, float], policy=None, quality=DEFAULTS, params=None):
     ph = ctl.physics
     base = ph.param_table.resolve_batch({**ctl.base_params, **(params or {})}, 1)
     sc = keyed_scenarios(ph, np.full(k, 7, dtype=np.uint64), np.arange(k), np.repeat(base, k, axis=0),
