@@ -73,15 +73,26 @@ def test_first_order_lag_matches_scipy_zoh_discretization(cart):
     np.testing.assert_allclose(u, y[1:, 0], rtol=1e-10, atol=1e-13)
 
 
-@pytest.mark.parametrize("delay", [0.009, 0.011, 0.02, 0.061, 0.1, 0.5])
+@pytest.mark.parametrize("delay", [0.009, 0.011, 0.02, 0.06, 0.061, 0.1, 0.5])
 def test_actuator_delay_shifts_commands(cart, delay):
-    # Reference: a transport delay of d periods, u[k] = c[k - d], zero before the line fills (common practice).
-    d = round(delay / DT)
+    # Reference: a transport delay of d = (m + f) periods on a sampled, held command (Astrom & Wittenmark,
+    # Computer-Controlled Systems, sampling a system with a time delay): over period k the plant sees
+    # c[k - m - 1] for the first f of the period and c[k - m] for the rest; zero before the line fills.
+    m = math.floor(delay / DT + 1e-9)
+    f = delay / DT - m if abs(delay / DT - round(delay / DT)) > 1e-9 else 0.0
     rng = np.random.default_rng(1)
     cmd = rng.uniform(-1, 1, (60, 1, 1))
-    u = drive(make_loop(cart, {"actuator_delay_s": delay}), cmd)
-    expected = np.concatenate([np.zeros((d, 1, 1)), cmd[: len(cmd) - d]])
-    np.testing.assert_array_equal(u, expected)
+    loop = make_loop(cart, {"actuator_delay_s": delay})
+    shifted = np.concatenate([np.zeros((m + 1, 1, 1)), cmd[: len(cmd) - m]])  # shifted[k + 1] = c[k - m]
+    for k in range(len(cmd)):
+        u = loop.actuate(cmd[k], k)
+        np.testing.assert_array_equal(u, shifted[k + 1])
+        inputs = loop.plant_inputs()
+        if f == 0.0:
+            assert inputs == {}  # whole periods: the plant integrates the period in one piece
+        else:
+            np.testing.assert_array_equal(inputs["earlier"], shifted[k])
+            np.testing.assert_allclose(inputs["switch"], [[f]], rtol=1e-12)
 
 
 def test_deadband_zeroes_small_commands(cart):
@@ -94,10 +105,17 @@ def test_deadband_zeroes_small_commands(cart):
 
 
 @pytest.mark.parametrize("gain", [0.0, 0.3, 1.7, 100.0])
-def test_gain_multiplies_then_clips(cart, gain):
+def test_gain_goes_to_the_physical_output_not_the_command(cart, gain):
+    # the command stays the (clipped) command; the gain is handed to the plant for its physical output
     cmd = np.linspace(-1, 1, 41)[:, None, None]
-    u = drive(make_loop(cart, {"actuator_gain": gain}), cmd)
-    np.testing.assert_allclose(u, np.clip(gain * cmd, -1, 1), rtol=1e-15, atol=0)
+    loop = make_loop(cart, {"actuator_gain": gain})
+    for k, c in enumerate(cmd):
+        np.testing.assert_array_equal(loop.actuate(c.copy(), k), c)
+        inputs = loop.plant_inputs()
+        if gain == 1.0:
+            assert inputs == {}
+        else:
+            np.testing.assert_array_equal(inputs["gain"], [[gain]])
 
 
 def test_rate_limit_bounds_change_per_step(cart):
@@ -118,38 +136,45 @@ def test_output_is_clipped_to_actuator_range(cart):
     cmd = np.array([-7.0, -1.0, -0.5, 0.5, 1.0, 3.0, np.inf, -np.inf])[:, None, None]
     u = drive(make_loop(cart, {}), cmd)
     np.testing.assert_array_equal(u, np.clip(cmd, -1, 1))
-    u = drive(make_loop(cart, {"actuator_gain": 5.0, "actuator_lag_s": 0.01}), np.full((50, 1, 1), 0.9))
+    u = drive(make_loop(cart, {"actuator_gain": 5.0, "actuator_lag_s": 0.01}), np.full((50, 1, 1), 3.0))
     assert u.max() == 1.0 and u.min() >= 0.0
 
 
 def test_elements_are_in_documented_order(cart):
-    # delay -> deadband -> gain -> slew -> lag -> clip, worked by hand for four steps from rest; any other
-    # order of these elements gives different numbers here
+    # delay -> deadband -> slew -> lag -> clip (the gain acts on the plant's physical output), worked by
+    # hand for four steps from rest; any other order of these elements gives different numbers here
     tau, rate, band, gain = 0.05, 10.0, 0.2, 3.0
     loop = make_loop(cart, {"actuator_lag_s": tau, "actuator_rate_limit": rate, "actuator_deadband": band,
                             "actuator_gain": gain, "actuator_delay_s": 2 * DT})
-    u = drive(loop, np.array([0.5, 0.1, 0.1, 0.1])[:, None, None])[:, 0, 0]
+    u = drive(loop, np.array([0.5, 0.1, 0.3, 0.3])[:, None, None])[:, 0, 0]
     alpha = 1 - math.exp(-DT / tau)
     slew = rate * DT
-    # step 2: 0.5 arrives, passes the deadband, x3 = 1.5, slewed to 0.2 from rest, lagged to 0.2 alpha;
-    # step 3: 0.1 is inside the deadband (0.3 after the gain would not be), 0 is within one slew step of
-    # 0.2 alpha, and the lag moves alpha of the way there
+    # step 2: 0.5 arrives, passes the deadband, is slewed to 0.2 from rest, lagged to 0.2 alpha;
+    # step 3: 0.1 is inside the deadband (0.3 after a gain of 3 would not be), 0 is within one slew step
+    # of 0.2 alpha, and the lag moves alpha of the way there
     np.testing.assert_allclose(u, [0.0, 0.0, alpha * slew, alpha * slew * (1 - alpha)], rtol=1e-14, atol=0)
 
 
 # --------------------------------------------------------------------------- #
 # sensor path
 # --------------------------------------------------------------------------- #
-@pytest.mark.parametrize("delay", [0.009, 0.011, 0.04, 0.1])
+@pytest.mark.parametrize("delay", [0.0, 0.009, 0.011, 0.04, 0.06, 0.1, 0.027])
 def test_sensor_delay_returns_old_observation(cart, delay):
-    # Reference: a measurement delay of d periods, y[k] = x[k - d], holding the first sample before the
-    # line fills (common practice).
-    d = round(delay / DT)
+    # Reference: a measurement delay of d = (m + f) periods, y[k] = x(t_k - d), holding the first sample
+    # before the line fills (common practice); between two samples x is taken on the straight line
+    # through them (linear interpolation, the approximation the module states).
+    ratio = delay / DT
+    m = round(ratio) if abs(ratio - round(ratio)) <= 1e-9 else math.floor(ratio)
+    f = ratio - m if abs(ratio - round(ratio)) > 1e-9 else 0.0
     rng = np.random.default_rng(3)
     obs = rng.normal(size=(40, 1, cart.obs_dim))
     seen = sense_all(make_loop(cart, {"sensor_delay_s": delay}, obs0=obs[0]), obs)
-    expected = np.concatenate([np.repeat(obs[:1], d, axis=0), obs[: len(obs) - d]])
-    np.testing.assert_array_equal(seen, expected)
+    padded = np.concatenate([np.repeat(obs[:1], m + 1, axis=0), obs])  # padded[k + m + 1] = x[k]
+    newer, older = padded[1:len(obs) + 1], padded[:len(obs)]  # x[k - m], x[k - m - 1]
+    if f == 0.0:
+        np.testing.assert_array_equal(seen, newer)
+    else:
+        np.testing.assert_allclose(seen, (1 - f) * newer + f * older, rtol=1e-12, atol=1e-15)
 
 
 def test_sensor_bias_adds(cart):
@@ -213,20 +238,35 @@ def test_nominal_values_touch_nothing(cart, explicit):
         cmd = rng.uniform(-1, 1, (n, 1)) * 10.0 ** rng.uniform(-9, 0, (n, 1))
         np.testing.assert_array_equal(_bits(loop.sense(obs, k)), _bits(obs))
         np.testing.assert_array_equal(_bits(loop.actuate(cmd, k)), _bits(cmd))
+        assert loop.plant_inputs() == {}  # the plant's transition runs exactly as without a loop
 
 
 ROW_VALUES = {
     # one row per column; row 0 and row 5 are nominal, the others vary one or several things
     "actuator_gain": [1.0, 1.5, 1.0, 0.7, 1.0, 1.0],
     "actuator_lag_s": [0.0, 0.03, 0.0, 0.2, 0.0, 0.0],
-    "actuator_delay_s": [0.0, 0.04, 0.0, 0.1, 0.02, 0.0],
+    "actuator_delay_s": [0.0, 0.04, 0.0, 0.1, 0.027, 0.0],
     "actuator_deadband": [0.0, 0.0, 0.05, 0.01, 0.0, 0.0],
     "actuator_rate_limit": [np.inf, 20.0, np.inf, 5.0, np.inf, np.inf],
     "sensor_noise_std": [0.0, 0.1, 0.0, 0.02, 0.3, 0.0],
     "sensor_bias": [0.0, 0.01, -0.2, 0.0, 0.0, 0.0],
-    "sensor_delay_s": [0.0, 0.06, 0.0, 0.02, 0.0, 0.0],
+    "sensor_delay_s": [0.0, 0.06, 0.0, 0.033, 0.0, 0.0],
     "sensor_quantization": [0.0, 0.0, 0.001, 0.01, 0.0, 0.0],
+    "control_jitter_s": [0.0, 0.0, 0.0, 0.005, 0.015, 0.0],
+    "sensor_bias.theta": [0.0, 0.0, 0.003, 0.0, -0.01, 0.0],
+    "sensor_noise_std.x_dot": [0.0, 0.0, 0.0, 0.0, 0.05, 0.0],
 }
+
+
+def _plant_view(loop: Loop, u: np.ndarray) -> np.ndarray:
+    """What the plant is handed for a period: command, earlier command, switch and gain, side by side."""
+    inputs = loop.plant_inputs()
+    n, a = u.shape
+    switch = np.broadcast_to(inputs.get("switch", np.zeros((n, 1))), (n, 1))
+    # the earlier command means nothing on a row whose switch is 0 (the plant never integrates it)
+    earlier = np.where(switch > 0, inputs.get("earlier", u), u)
+    gain = np.broadcast_to(inputs.get("gain", np.ones((n, 1))), (n, a))
+    return np.concatenate([u, earlier, switch, gain], axis=1)
 
 
 def _run_rows(physics, values: dict[str, np.ndarray], keys: np.ndarray, obs: np.ndarray, cmd: np.ndarray):
@@ -235,7 +275,7 @@ def _run_rows(physics, values: dict[str, np.ndarray], keys: np.ndarray, obs: np.
     seen, applied = [], []
     for k in range(len(obs)):
         seen.append(loop.sense(obs[k], k))
-        applied.append(loop.actuate(cmd[k], k))
+        applied.append(_plant_view(loop, loop.actuate(cmd[k], k)))
     return np.stack(seen), np.stack(applied)
 
 
@@ -278,7 +318,7 @@ def test_take_keeps_rows_mid_episode(cart):
         if k == cut:
             loop.take(keep)
         rows = np.arange(n) if k < cut else keep
-        y, u = loop.sense(obs[k, rows], k), loop.actuate(cmd[k, rows], k)
+        y, u = loop.sense(obs[k, rows], k), _plant_view(loop, loop.actuate(cmd[k, rows], k))
         seen.append(y[keep] if k < cut else y)
         applied.append(u[keep] if k < cut else u)
     s1, a1 = _run_rows(cart, {k: v[keep] for k, v in values.items()}, keys[keep], obs[:, keep], cmd[:, keep])
@@ -290,9 +330,11 @@ _ROW_RANGES = {
     "actuator_gain": (0.0, 3.0), "actuator_lag_s": (0.0, 0.3), "actuator_delay_s": (0.0, 0.1),
     "actuator_deadband": (0.0, 0.3), "actuator_rate_limit": (0.0, 50.0), "sensor_noise_std": (0.0, 1.0),
     "sensor_bias": (-1.0, 1.0), "sensor_delay_s": (0.0, 0.1), "sensor_quantization": (0.0, 0.1),
+    "control_jitter_s": (0.0, 0.03), "actuator_gain.d1_rotor_left": (0.0, 3.0), "sensor_bias.d0_pitch": (-1.0, 1.0),
 }
 _row_value = {
-    name: st.one_of(st.just(PERTURBATIONS[name].nominal), st.floats(lo, hi)) for name, (lo, hi) in _ROW_RANGES.items()
+    name: st.one_of(st.just(PERTURBATIONS[name.split(".")[0]].nominal), st.floats(lo, hi))
+    for name, (lo, hi) in _ROW_RANGES.items()
 }
 
 

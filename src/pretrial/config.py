@@ -5,7 +5,7 @@ A config has four tables::
     [task]              env, episodes, horizon, network layout
     [task.options]      the env's keyword arguments (poles, hoist, dt, substeps, ...)
     [task.params]       physics overrides (names from the env's parameter table)
-    [task.randomize]    NAME = [low, high]: drawn afresh each generation
+    [task.randomize]    NAME = [low, high]: drawn afresh each generation ("NAME.CHANNEL" for one channel)
     [neat]              neat-python settings by name, merged onto the shipped defaults
     [run]               generations, seed, fitness_target, checkpoint_every, workers, dask
 
@@ -164,6 +164,22 @@ _TYPE_NAMES = {
 }
 
 
+def _channel_items(table: dict[str, Any]) -> list[tuple[str, Any]]:
+    """``(name, value)`` pairs of a table of varied names, ``NAME.CHANNEL`` forms flattened.
+
+    A quoted key ``"sensor_noise_std.theta"`` arrives as one name; written
+    unquoted, TOML reads it as a table ``sensor_noise_std = {theta = ...}``,
+    which is taken to mean the same.
+    """
+    out: list[tuple[str, Any]] = []
+    for name, value in table.items():
+        if isinstance(value, dict):
+            out.extend((f"{name}.{channel}", v) for channel, v in value.items())
+        else:
+            out.append((name, value))
+    return out
+
+
 def _kind(value: Any) -> str:
     return {bool: "boolean", int: "integer", float: "number", str: "string", list: "list", dict: "table"}.get(
         type(value), type(value).__name__
@@ -272,7 +288,7 @@ def load_config(path: str | Path) -> Config:
     from .perturb import spec_of
 
     randomize: dict[str, tuple[float, float]] = {}
-    for name, rng in randomize_t.items():
+    for name, rng in _channel_items(randomize_t):
         key = f"task.randomize.{name}"
         try:
             spec = spec_of(physics, name)

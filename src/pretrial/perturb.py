@@ -7,27 +7,56 @@ plant. They are declared once, in :data:`PERTURBATIONS`, with the same
 :class:`~pretrial_envs.core.ParamSpec` rows the environments use; the nominal
 value of each is "no perturbation".
 
+Per-channel forms. ``sensor_noise_std``, ``sensor_bias`` and
+``sensor_quantization`` given alone are one number for every observation, each
+in that observation's own unit (so 0.01 means 0.01 m on a position and 0.01
+rad on an angle at once); ``NAME.OBS`` (e.g. ``sensor_noise_std.theta``) sets
+the observation ``OBS`` alone, in its unit from the env's ``obs_units``, and
+is what a sensor data sheet is matched to. ``actuator_gain`` alone multiplies
+every actuator; ``actuator_gain.ACTION`` (e.g. ``actuator_gain.d0_rotor_left``)
+one of them. A channel form overrides the plain form for its channel. See
+:func:`channel_names` (and ``pretrial envs ID``) for the forms of an env.
+
 :class:`Loop` applies them vectorized over a batch of rows (one row = one
 scenario, possibly repeated for many genomes):
 
-* sensor path: ``measured = quantize(obs + bias + noise_std * n)``, delayed by
-  ``sensor_delay_s`` (rounded to whole control periods);
-* actuator path: the policy's command is delayed by ``actuator_delay_s``,
-  passed through a deadband, multiplied by ``actuator_gain``, slew-limited by
-  ``actuator_rate_limit`` (full scale per second), lagged by a first-order
-  ``actuator_lag_s`` and clipped to the actuator range [-1, 1];
+* sensor path: ``measured = quantize(obs(t - sensor_delay_s) + bias + noise_std * n)``
+  per observation. The policy samples at the control steps, so a delay that is
+  a whole number of periods returns a stored observation exactly; a fraction
+  of a period is *linearly interpolated* between the two stored observations
+  around ``t - d`` (an approximation: the signal between samples is taken as
+  a straight line, an error of order ``dt^2`` times its curvature);
+* actuator path: the policy's command is clipped to [-1, 1], delayed by the
+  whole periods of ``actuator_delay_s``, passed through a deadband,
+  slew-limited by ``actuator_rate_limit`` (full scale per second), lagged by a
+  first-order ``actuator_lag_s`` (exact for a command held over a period) and
+  clipped to [-1, 1] again; this normalized command is what the plant's
+  actuator map (``Physics.actuate``) turns into physical inputs, and
+  ``actuator_gain`` multiplies those physical inputs (force, thrust, speed),
+  not the command: a gain of 0 means no force or thrust at all, and saturation
+  still means the command reached its limit;
+* exact fractional delays: the plant integrates each control period in two
+  phases (per-row step lengths), the older applied command for the first
+  ``s dt`` and the newer for the rest (:meth:`Physics.transition`,
+  ``earlier``/``switch``). An actuator delay ``(m + f) dt`` gives
+  ``s = f``: the plant sees exactly the command sequence shifted by the
+  delay, as a continuous transport delay would give it (the
+  modified-z-transform loop of sampled-data control);
 * timing: with ``control_jitter_s`` each new command reaches the plant
-  ``tau ~ U(0, jitter)`` seconds late (at most one period), the previous one
-  acting until then. The plant sees the time average of the two over the
-  period, ``prev + (1 - tau/dt) (new - prev)``: exact for the impulse the
-  period delivers, a first-order approximation of the path within it.
+  ``tau ~ U(0, min(jitter, dt))`` seconds late, the previous one acting until
+  then: the same two-phase switch, ``s = min(f + tau / dt, 1)`` (a command
+  never arrives later than the end of its period; exact while
+  ``f dt + jitter <= dt``, otherwise the arrival is held at the period's end).
+
+Nothing is rounded to whole periods: a delay within ``1e-9`` of a whole number
+of periods counts as that whole number (float noise in ``d / dt``), and rows
+whose delays are whole periods integrate the period in one piece, bit for bit
+as before. Rows are independent: a row's results never depend on what the
+other rows of the batch carry (a sweep sample replays alone bit for bit).
 
 ``control_period_s`` (see :func:`apply_settings`) is the control period
 itself: the plant is rebuilt with that ``dt`` and enough integration substeps
 that the integration step never grows.
-
-Delays are whole control periods because the plant only sees a new action at
-a control step; a delay below half a period rounds to none (stated in reports).
 """
 
 from __future__ import annotations
@@ -45,18 +74,24 @@ from . import streams
 
 PERTURBATIONS = ParamTable(
     [
-        ParamSpec("actuator_gain", "-", 1.0, 0.0, 100.0, "multiplier on every actuator command", "actuator"),
+        ParamSpec("actuator_gain", "-", 1.0, 0.0, 100.0,
+                  "multiplier on every actuator's physical output (force, thrust); .ACTION for one", "actuator"),
         ParamSpec("actuator_lag_s", "s", 0.0, 0.0, 10.0, "first-order actuator time constant", "actuator"),
-        ParamSpec("actuator_delay_s", "s", 0.0, 0.0, 10.0, "transport delay of commands", "actuator"),
+        ParamSpec("actuator_delay_s", "s", 0.0, 0.0, 10.0, "transport delay of commands (exact, any fraction of a "
+                  "period)", "actuator"),
         ParamSpec("actuator_deadband", "-", 0.0, 0.0, 1.0, "commands below this (full scale) give zero", "actuator"),
         ParamSpec(
             "actuator_rate_limit", "1/s", float("inf"), 0.0, float("inf"), "slew limit, full scale per second",
             "actuator",
         ),
-        ParamSpec("sensor_noise_std", "obs unit", 0.0, 0.0, 1e6, "white noise std added to each observation", "sensor"),
-        ParamSpec("sensor_bias", "obs unit", 0.0, -1e6, 1e6, "constant offset added to every observation", "sensor"),
-        ParamSpec("sensor_delay_s", "s", 0.0, 0.0, 10.0, "age of the observation the policy sees", "sensor"),
-        ParamSpec("sensor_quantization", "obs unit", 0.0, 0.0, 1e6, "observation resolution (0 = exact)", "sensor"),
+        ParamSpec("sensor_noise_std", "obs unit", 0.0, 0.0, 1e6,
+                  "white noise std added to each observation, in its own unit; .OBS for one", "sensor"),
+        ParamSpec("sensor_bias", "obs unit", 0.0, -1e6, 1e6,
+                  "constant offset added to every observation, in its own unit; .OBS for one", "sensor"),
+        ParamSpec("sensor_delay_s", "s", 0.0, 0.0, 10.0,
+                  "age of the observation the policy sees (fractions of a period interpolated)", "sensor"),
+        ParamSpec("sensor_quantization", "obs unit", 0.0, 0.0, 1e6,
+                  "observation resolution in its own unit (0 = exact); .OBS for one", "sensor"),
         ParamSpec(
             "control_jitter_s", "s", 0.0, 0.0, 10.0, "late arrival of each new command, uniform in [0, value]",
             "timing",
@@ -64,6 +99,13 @@ PERTURBATIONS = ParamTable(
         ParamSpec("start_scale", "-", 1.0, 0.0, 100.0, "multiplier on the start-state ranges", "start"),
     ]
 )
+
+#: perturbations with a per-channel form ``NAME.CHANNEL``, and what their channels are
+CHANNELLED = {"sensor_noise_std": "observation", "sensor_bias": "observation",
+              "sensor_quantization": "observation", "actuator_gain": "action"}
+
+#: a delay within this many periods of a whole number of periods is that whole number (float noise in d / dt)
+WHOLE_PERIOD_TOL = 1e-9
 
 #: the control period as a varied name: the plant is rebuilt with this ``dt`` (not a per-row value)
 CONTROL_PERIOD = "control_period_s"
@@ -73,26 +115,74 @@ _SENSOR_STREAM, _PLANT_STREAM = 0, 1
 _STREAMS = 2
 
 
+def _channels(physics: Physics, base: str) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """Channel names and units of a channelled perturbation: the observations or the actions."""
+    if CHANNELLED[base] == "observation":
+        return tuple(physics.obs_names), tuple(physics.obs_units)
+    return tuple(physics.action_names), tuple(physics.action_units)
+
+
+def channel_names(physics: Physics, base: str | None = None) -> list[str]:
+    """Every per-channel form ``NAME.CHANNEL`` valid on ``physics`` (of ``base`` only, when given)."""
+    bases = CHANNELLED if base is None else (base,)
+    return [f"{b}.{ch}" for b in bases for ch in _channels(physics, b)[0]]
+
+
+def channel_of(physics: Physics, name: str) -> tuple[str, int] | None:
+    """``(perturbation, column)`` of a per-channel name such as ``sensor_noise_std.theta``.
+
+    None when ``name`` is not of the form ``NAME.CHANNEL`` for a perturbation
+    in :data:`CHANNELLED`. Raises ValueError, listing the valid channel
+    names, for an unknown channel of such a perturbation.
+    """
+    base, dot, channel = str(name).partition(".")
+    if not dot or base not in CHANNELLED:
+        return None
+    names = _channels(physics, base)[0]
+    if channel not in names:
+        raise ValueError(unknown_name_message(f"{CHANNELLED[base]} channel of {base} on {physics.env_id}", name,
+                                              channel_names(physics, base)))
+    return base, names.index(channel)
+
+
+def _channel_spec(physics: Physics, base: str, column: int) -> ParamSpec:
+    """The table row of one channel: the plain form's range, the channel's own unit."""
+    spec = PERTURBATIONS[base]
+    names, units = _channels(physics, base)
+    if base == "actuator_gain":
+        doc = f"multiplier on the physical output of actuator {names[column]}"
+        unit = "-"
+    else:
+        doc = f"{spec.doc.split(',')[0].split(';')[0]} (observation {names[column]} only)"
+        unit = units[column]
+    return ParamSpec(f"{base}.{names[column]}", unit, spec.nominal, spec.low, spec.high, doc, spec.role)
+
+
+def is_perturbation(physics: Physics, name: str) -> bool:
+    """Whether ``name`` is a generic perturbation or one of its channel forms (ValueError for an unknown channel)."""
+    return name in PERTURBATIONS or channel_of(physics, name) is not None
+
+
 def split_names(physics: Physics, names: list[str]) -> tuple[list[str], list[str]]:
-    """Split varied names into (physics parameters, generic perturbations).
+    """Split varied names into (physics parameters, generic perturbations with their channel forms).
 
     Raises ValueError for a name that is neither, suggesting the nearest.
     """
     phys, pert = [], []
-    valid = list(physics.param_table.names) + list(PERTURBATIONS.names)
     for name in names:
         if name in physics.param_table:
             phys.append(name)
-        elif name in PERTURBATIONS:
+        elif is_perturbation(physics, name):
             pert.append(name)
         else:
+            valid = [*physics.param_table.names, *PERTURBATIONS.names, *channel_names(physics)]
             raise ValueError(unknown_name_message("parameter or perturbation", name, valid))
     return phys, pert
 
 
 def setting_names(physics: Physics) -> list[str]:
-    """Every name a replay ``--set`` or a sweep plan may vary on ``physics``."""
-    return [*physics.param_table.names, *PERTURBATIONS.names, CONTROL_PERIOD]
+    """Every name a replay ``--set`` or a sweep plan may vary on ``physics`` (channel forms included)."""
+    return [*physics.param_table.names, *PERTURBATIONS.names, *channel_names(physics), CONTROL_PERIOD]
 
 
 def with_control_period(physics: Physics, period: float) -> Physics:
@@ -151,7 +241,8 @@ def apply_settings(physics: Physics, base_params: Mapping[str, float] | None,
         Physics overrides already in force (e.g. the policy's ``env.params``).
     settings : mapping, optional
         Name -> value for physics parameters, generic perturbations
-        (:data:`PERTURBATIONS`) or ``control_period_s``.
+        (:data:`PERTURBATIONS`, or a channel form such as
+        ``sensor_noise_std.theta``) or ``control_period_s``.
 
     Raises
     ------
@@ -173,13 +264,12 @@ def apply_settings(physics: Physics, base_params: Mapping[str, float] | None,
             physics = with_control_period(physics, period)
             given[name] = period
             continue
-        spec = spec_of(physics, name) if name in physics.param_table or name in PERTURBATIONS else None
-        if spec is None:
+        if name in physics.param_table:
+            params[name] = given[name] = physics.param_table.check_value(name, value)
+            continue
+        if not is_perturbation(physics, name):  # an unknown channel has raised already, naming the channels
             raise ValueError(unknown_name_message("parameter or perturbation", name, setting_names(physics)))
-        table = physics.param_table if name in physics.param_table else PERTURBATIONS
-        v = table.check_value(name, value)
-        given[name] = v
-        (params if table is physics.param_table else perturb)[name] = v
+        perturb[name] = given[name] = ParamTable([spec_of(physics, name)]).check_value(name, value)
     physics.param_table.resolve(params)  # the combination must be valid too
     return Setup(physics, params, perturb, given)
 
@@ -192,11 +282,14 @@ def nominal_value(physics: Physics, base_params: Mapping[str, float] | None, nam
 
 
 def spec_of(physics: Physics, name: str) -> ParamSpec:
-    """The table row for a physics parameter or a generic perturbation."""
+    """The table row for a physics parameter, a generic perturbation or one channel of it (its unit)."""
     if name in physics.param_table:
         return physics.param_table[name]
     if name in PERTURBATIONS:
         return PERTURBATIONS[name]
+    found = channel_of(physics, name)  # an unknown channel raises, naming the valid ones
+    if found is not None:
+        return _channel_spec(physics, *found)
     split_names(physics, [name])  # raises with the nearest-name hint
     raise AssertionError  # pragma: no cover
 
@@ -226,6 +319,19 @@ def diverged_warning(count: int, where: str, total: int | None = None, context: 
             f"failures) at {where}")
 
 
+def split_delay(seconds: np.ndarray, dt: float) -> tuple[np.ndarray, np.ndarray]:
+    """A delay as ``(m, f)``: ``seconds = (m + f) dt`` with whole ``m >= 0`` and ``0 <= f < 1``.
+
+    A delay within :data:`WHOLE_PERIOD_TOL` periods of a whole number of
+    periods is that whole number, ``f = 0`` (``0.06 / 0.02`` is 2.9999999999999996).
+    """
+    ratio = np.asarray(seconds, dtype=float) / dt
+    whole = np.rint(ratio)
+    snap = np.abs(ratio - whole) <= WHOLE_PERIOD_TOL * np.maximum(1.0, ratio)
+    floor = np.where(snap, whole, np.floor(ratio))
+    return floor.astype(np.int64), np.where(snap, 0.0, ratio - floor)
+
+
 class Loop:
     """The perturbed control loop around a plant, for a batch of ``n`` rows.
 
@@ -234,9 +340,22 @@ class Loop:
     physics : Physics
         The plant (its ``dt`` sets the control period).
     values : mapping of str to array
-        Generic perturbation values per row (missing names take their nominal).
+        Generic perturbation values per row, plain or per channel
+        (``sensor_bias.theta``); missing names take their nominal.
     keys : (n,) uint64 array
         Scenario keys for the random streams (see :mod:`pretrial.streams`).
+
+    Raises
+    ------
+    ValueError
+        An unknown name or channel; or a fractional delay, jitter or gain on a
+        plant whose ``transition`` cannot take them (a plain gymnasium env
+        steps whole periods and maps its own actuators).
+
+    Notes
+    -----
+    Per control step: :meth:`sense`, the policy, :meth:`actuate`, then the
+    plant's ``transition(..., **loop.plant_inputs())``.
     """
 
     def __init__(self, physics: Physics, values: Mapping[str, np.ndarray], keys: np.ndarray):
@@ -245,72 +364,107 @@ class Loop:
         self.n = n
         self.keys = keys
         for name in values:
-            PERTURBATIONS.index(name)  # unknown names fail loudly
+            if not is_perturbation(physics, name):  # unknown names fail loudly
+                PERTURBATIONS.index(name)
         v = {s.name: np.broadcast_to(np.asarray(values.get(s.name, s.nominal), float), (n,)) for s in PERTURBATIONS}
         dt = physics.dt
-        self.gain = v["actuator_gain"][:, None]
+        self.gain = self._per_channel(values, v, "actuator_gain")
         self.deadband = v["actuator_deadband"][:, None]
         self.max_slew = (v["actuator_rate_limit"] * dt)[:, None]
         lag = v["actuator_lag_s"]
         # exact first-order response to a command held over one period
         with np.errstate(over="ignore"):  # a lag far below dt is no lag: alpha = 1
             self.lag_alpha = np.where(lag > 0, -np.expm1(-dt / np.where(lag > 0, lag, 1.0)), 1.0)[:, None]
-        self.noise_std = v["sensor_noise_std"][:, None]
-        self.bias = v["sensor_bias"][:, None]
-        self.quantum = v["sensor_quantization"][:, None]
-        self.act_delay = np.rint(v["actuator_delay_s"] / dt).astype(np.int64)
-        self.obs_delay = np.rint(v["sensor_delay_s"] / dt).astype(np.int64)
+        self.noise_std = self._per_channel(values, v, "sensor_noise_std")
+        self.bias = self._per_channel(values, v, "sensor_bias")
+        self.quantum = self._per_channel(values, v, "sensor_quantization")
+        self.act_delay, act_frac = split_delay(v["actuator_delay_s"], dt)
+        self.act_frac = act_frac[:, None]
+        self.obs_delay, obs_frac = split_delay(v["sensor_delay_s"], dt)
+        self.obs_frac = obs_frac[:, None]
         self.start_scale = v["start_scale"].copy()
         self.jitter_frac = np.minimum(v["control_jitter_s"] / dt, 1.0)[:, None]
         self._jitter_rows = self.jitter_frac > 0
-        # Per-row masks: a row whose element is nominal passes values through exactly, so its results never
-        # depend on what the other rows of the batch carry (a sweep sample replays alone bit for bit).
+        # Per-row (and per-channel) masks: an element that is nominal passes values through exactly, so a row's
+        # results never depend on what the other rows of the batch carry (a sweep sample replays alone bit for bit).
         self._sensor_rows = (self.noise_std != 0) | (self.bias != 0) | (self.quantum > 0)
         self._dead_rows = self.deadband > 0
         self._slew_rows = np.isfinite(self.max_slew)
         self._lag_rows = self.lag_alpha != 1.0
         self._safe_quantum = np.where(self.quantum > 0, self.quantum, 1.0)
         self._batch_flags()
+        self._check_plant()
         self._obs_buf: np.ndarray | None = None
         self._act_buf: np.ndarray | None = None
         self._applied: np.ndarray | None = None
-        self._held: np.ndarray | None = None
+        self._inputs: dict[str, np.ndarray] = {}
         self._rows = np.arange(n)
+
+    def _per_channel(self, values: Mapping[str, np.ndarray], plain: Mapping[str, np.ndarray], base: str) -> np.ndarray:
+        """(n, 1) from the plain form, or (n, C) when a channel form is given (it overrides its channel)."""
+        col = plain[base][:, None]
+        given = [(j, name) for j, name in enumerate(channel_names(self.physics, base)) if name in values]
+        if not given:
+            return col
+        width = len(_channels(self.physics, base)[0])
+        out = np.repeat(col, width, axis=1)
+        for j, name in given:
+            out[:, j] = np.broadcast_to(np.asarray(values[name], float), (self.n,))
+        return out
+
+    def _check_plant(self) -> None:
+        # the within-period inputs need the physics core's transition (a gymnasium env steps itself)
+        import inspect
+
+        if not (self._any_switch or self._any_gain):
+            return
+        if "switch" in inspect.signature(self.physics.transition).parameters:
+            return
+        what = ("actuator_gain" if self._any_gain else "control_jitter_s" if self._any_jitter
+                else "actuator_delay_s (a fraction of a period)")
+        raise ValueError(f"{what}: {self.physics.env_id} steps whole control periods of "
+                         f"{self.physics.dt:g} s and maps its own actuators, so this cannot act on it "
+                         "(only whole-period delays, sensor perturbations and the actuator shaping apply)")
 
     def _batch_flags(self) -> None:
         # Which elements act on some row (the others are skipped: nominal passes values through) and
         # which on every row (their masks are all true, so the np.where that applies them is skipped).
         self._any_sensor = bool(self._sensor_rows.any())
         # rows the sensor path leaves alone, when few: copied back by index instead of a full np.where
-        nominal = np.flatnonzero(~self._sensor_rows[:, 0])
+        nominal = np.flatnonzero(~self._sensor_rows.any(axis=1))
         self._nominal_sensor = nominal if 4 * len(nominal) < self.n else None
         self._any_quantum = bool(np.any(self.quantum > 0))
         self._tiny_quantum = bool(np.any((self.quantum > 0) & (self.quantum < 1e-280)))
         self._any_jitter = bool(self._jitter_rows.any())
+        self._any_obs_frac = bool(np.any(self.obs_frac > 0))
+        self._any_switch = self._any_jitter or bool(np.any(self.act_frac > 0))
         self._any_gain = bool(np.any(self.gain != 1.0))
         self._any_dead = bool(self._dead_rows.any())
         self._any_slew, self._all_slew = bool(self._slew_rows.any()), bool(self._slew_rows.all())
         self._any_lag, self._all_lag = bool(self._lag_rows.any()), bool(self._lag_rows.all())
-        self._any_act_shape = (self._any_gain or self._any_dead or self._any_slew or self._any_lag
-                               or self._any_jitter)
+        self._any_act_shape = self._any_dead or self._any_slew or self._any_lag
 
     def reset(self, obs0: np.ndarray) -> None:
         """Start of an episode: delay lines hold the first observation and zero commands."""
         a = self.physics.action_dim
-        dmax = int(self.obs_delay.max(initial=0))
+        # a fractional sensor delay reads one observation further back
+        dmax = int((self.obs_delay + (self.obs_frac[:, 0] > 0)).max(initial=0))
         self._obs_buf = np.repeat(obs0[None], dmax + 1, axis=0) if dmax else None
         amax = int(self.act_delay.max(initial=0))
         self._act_buf = np.zeros((amax + 1, self.n, a)) if amax else None
         self._applied = np.zeros((self.n, a))
-        self._held = np.zeros((self.n, a))
+        self._inputs = {}
 
     def sense(self, obs: np.ndarray, step: int) -> np.ndarray:
         """What the policy measures at control step ``step`` from the true ``obs``."""
         if self._obs_buf is not None:
             depth = self._obs_buf.shape[0]
             self._obs_buf[step % depth] = obs
+            # before the line has filled, the oldest entries are the first observation
             obs = self._obs_buf[(step - self.obs_delay) % depth, self._rows]
-            # before the line has filled, the oldest entry is the first observation
+            if self._any_obs_frac:  # t - d between two samples: linear interpolation between them
+                older = self._obs_buf[(step - self.obs_delay - 1) % depth, self._rows]
+                obs = np.where(self.obs_frac > 0, obs + self.obs_frac * (older - obs), obs)
         if not self._any_sensor:
             return obs
         counter = _STREAMS * step + _SENSOR_STREAM
@@ -321,13 +475,17 @@ class Loop:
             if self._tiny_quantum:  # out / q can overflow: such a quantum is below the float spacing anyway
                 rounded = np.where(np.isfinite(rounded), rounded, out)
             out = np.where(self.quantum > 0, rounded, out)
-        if self._nominal_sensor is not None:  # out is this call's own array
+        if self._nominal_sensor is not None and self._sensor_rows.shape[1] == 1:  # out is this call's own array
             out[self._nominal_sensor] = obs[self._nominal_sensor]
             return out
         return np.where(self._sensor_rows, out, obs)
 
     def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
-        """Action applied to the plant at ``step`` for the policy's ``command``."""
+        """Normalized command in [-1, 1] applied to the plant at ``step`` for the policy's ``command``.
+
+        The plant sees it from ``switch`` of the period on, the previous period's
+        before; both, and the gain on the physical output, are in :meth:`plant_inputs`.
+        """
         command = np.maximum(command, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
         np.minimum(command, 1.0, out=command)
         if self._act_buf is not None:
@@ -335,30 +493,43 @@ class Loop:
             self._act_buf[step % depth] = command
             lagged = (step - self.act_delay) % depth
             command = np.where((step >= self.act_delay)[:, None], self._act_buf[lagged, self._rows], 0.0)
-        if not self._any_act_shape:
-            self._applied = command
-            return command
-        u = command
-        if self._any_dead:
-            u = np.where(self._dead_rows & (np.abs(u) <= self.deadband), 0.0, u)
-        if self._any_gain:
-            u = u * self.gain
         prev = self._applied
-        # prev + (u - prev) is not always u in floating point: rows without a slew limit or lag skip them
-        if self._any_slew:
-            slewed = prev + np.clip(u - prev, -self.max_slew, self.max_slew)
-            u = slewed if self._all_slew else np.where(self._slew_rows, slewed, u)
-        if self._any_lag:
-            lagged = prev + self.lag_alpha * (u - prev)
-            u = lagged if self._all_lag else np.where(self._lag_rows, lagged, u)
-        u = np.maximum(u, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
-        np.minimum(u, 1.0, out=u)
+        u = command
+        if self._any_act_shape:
+            if self._any_dead:
+                u = np.where(self._dead_rows & (np.abs(u) <= self.deadband), 0.0, u)
+            # prev + (u - prev) is not always u in floating point: rows without a slew limit or lag skip them
+            if self._any_slew:
+                slewed = prev + np.clip(u - prev, -self.max_slew, self.max_slew)
+                u = slewed if self._all_slew else np.where(self._slew_rows, slewed, u)
+            if self._any_lag:
+                lagged = prev + self.lag_alpha * (u - prev)
+                u = lagged if self._all_lag else np.where(self._lag_rows, lagged, u)
+            u = np.maximum(u, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
+            np.minimum(u, 1.0, out=u)
         self._applied = u
-        if self._any_jitter:
-            late = self.jitter_frac * self._jitter_draw(step)
-            u = np.where(self._jitter_rows, self._held + (1.0 - late) * (u - self._held), u)
-            self._held = u
+        inputs: dict[str, np.ndarray] = {}
+        if self._any_switch:
+            # the previous period's command acts until the new one arrives: f of the period for an
+            # actuator delay of (m + f) periods, plus the jitter's late arrival, at most the whole period
+            switch = self.act_frac
+            if self._any_jitter:
+                late = np.minimum(self.act_frac + self.jitter_frac * self._jitter_draw(step), 1.0)
+                switch = np.where(self._jitter_rows, late, switch)
+            inputs.update(earlier=prev, switch=switch)
+        if self._any_gain:
+            inputs["gain"] = self.gain
+        self._inputs = inputs
         return u
+
+    def plant_inputs(self) -> dict[str, np.ndarray]:
+        """Keyword arguments of ``Physics.transition`` for the step just actuated (empty when nominal).
+
+        ``earlier`` and ``switch``: the previous command acts over the first
+        ``switch`` (N, 1) of the period; ``gain``: multiplier on the physical
+        actuator output.
+        """
+        return self._inputs
 
     def _jitter_draw(self, step: int) -> np.ndarray:
         # the lane after the plant's noise lanes of the plant stream: no other draw changes
@@ -368,13 +539,14 @@ class Loop:
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
         for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
-                     "act_delay", "obs_delay", "start_scale", "_applied", "_sensor_rows", "_dead_rows", "_slew_rows",
-                     "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows", "_held"):
+                     "act_delay", "act_frac", "obs_delay", "obs_frac", "start_scale", "_applied", "_sensor_rows",
+                     "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows"):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]
         if self._act_buf is not None:
             self._act_buf = self._act_buf[:, rows]
+        self._inputs = {k: v[rows] for k, v in self._inputs.items()}
         self.n = len(rows)
         self._rows = np.arange(self.n)
         self._batch_flags()
