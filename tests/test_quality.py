@@ -102,8 +102,11 @@ def test_slow_divergence_fails_as_growing_where_survival_passed(lqr):
     alive = _episodes(lqr, 80, {"actuator_gain": 0.98 * gm}, quality=None)
     assert alive.success.mean() > 0.9  # a 10 s horizon is too short for the divergence to reach a limit
     counts = below.failure_counts()
-    assert counts.get("growing", 0) >= 0.5 * below.success.size
-    above = _episodes(lqr, 80, {"actuator_gain": 1.02 * gm})
+    assert counts.get("growing", 0) + counts.get("not_settled", 0) >= 0.8 * below.success.size
+    # the growth test alone (no settling asked) does the work: most of them fail as growing
+    alone = _episodes(lqr, 80, {"actuator_gain": 0.98 * gm}, quality=QualityLimits(settled=False))
+    assert alone.failure_counts().get("growing", 0) >= 0.5 * alone.success.size
+    above = _episodes(lqr, 80, {"actuator_gain": 1.02 * gm}, quality=QualityLimits(settled=False))
     assert "growing" not in above.failure_counts()
 
 

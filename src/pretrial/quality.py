@@ -52,7 +52,7 @@ import numpy as np
 from pretrial_envs.core import SATURATION_LEVEL, EpisodeMetric, Physics
 
 #: failure words for quality, in the order they are named when several apply
-QUALITY_WORDS = ("chatter", "saturated", "growing", "not_settled", "offset")
+QUALITY_WORDS = ("chatter", "saturated", "not_settled", "growing", "offset")
 
 #: defaults (our choices, documented in the README; common practice for a first hardware trial)
 DEFAULT_SATURATED_FRACTION = 0.2
@@ -287,8 +287,10 @@ class QualityTracker:
                 ratio = np.where(f["noisy"], lim.noisy_growth_ratio, lim.growth_ratio)
                 floor = np.where(f["noisy"], lim.noisy_growth_floor, lim.growth_floor)
                 growing = (pk[:, 1] > ratio * pk[:, 0]) & (pk[:, 1] >= floor)
-            checks.append(growing if lim.growth else None)
             checks.append(~settled if lim.settled else None)
+            # after not_settled: a limit cycle slower than the growth span's parts can look like growth, and
+            # "not settled" names it truly; growth is the word for a divergence still inside its band
+            checks.append(growing if lim.growth else None)
             checks.append(offset)
         else:
             checks += [None, None, None]

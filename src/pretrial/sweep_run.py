@@ -34,6 +34,14 @@ from .plan import Plan, load_plan
 LQR = "lqr"
 SCHEMA = "pretrial.sweep"
 SCHEMA_VERSION = 1
+#: exit status of ``pretrial sweep`` by verdict, so a pipeline can gate on it
+EXIT_PASS = 0
+EXIT_FAIL = 1
+EPILOG = """exit status:
+  0  verdict PASS (every requirement of the plan met)
+  1  verdict FAIL (the sweep directory is written all the same)
+  2  bad input (one-line error; nothing written)
+  130  interrupted (Ctrl-C; no partial sweep directory)"""
 
 
 @dataclass
@@ -169,17 +177,52 @@ def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str,
     }
 
 
+@dataclass
+class Prepared:
+    """What a sweep runs, checked before its first episode: the controller under test and the baseline."""
+
+    ctl: Controlled
+    baseline: Any | None  # the LQR baseline designed on the plan's model, when asked for
+
+
+def prepare(policy_arg: str, plan_path: str, baseline: bool = False) -> Prepared:
+    """Check that POLICY, the plan and the baseline fit together, before any work starts.
+
+    Raises
+    ------
+    InputError
+        A policy or plan that does not fit (see :func:`controlled`); ``--baseline lqr`` on the LQR
+        baseline itself; a baseline the plant cannot have (the LQR design needs the full state
+        observed and a plant linearizable at its target).
+    """
+    ctl = controlled(policy_arg, plan_path)
+    if ctl.plan is None:  # pragma: no cover - plan_path is required
+        raise InputError("--plan: a sweep needs a plan")
+    lqr = None
+    if baseline:
+        if ctl.policy_kind == LQR:
+            raise InputError("--baseline lqr: the controller under test is already the LQR baseline")
+        try:
+            lqr = baseline_lqr(ctl.physics, ctl.base_params, ctl.plan)
+        except InputError as exc:
+            # named with the plan: its scenario (options, params) is what the design could not use
+            raise InputError(f"--baseline lqr: {plan_path}: {exc.message.removeprefix('lqr: ')}") from None
+    return Prepared(ctl, lqr)
+
+
 def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = False,
-          log: Any = None, progress: bool = True) -> tuple[dict[str, Any], dict[str, Any] | None]:
+          log: Any = None, progress: bool = True, prepared: Prepared | None = None
+          ) -> tuple[dict[str, Any], dict[str, Any] | None]:
     """Run a plan on a controller (and on the LQR baseline when asked).
 
+    ``prepared`` is :func:`prepare`'s result when the caller checked the inputs already.
     Returns the results document (with its content hash) and the Monte Carlo samples.
     """
     from .sweep import Campaign, planned_episodes, run_analyses
 
-    ctl = controlled(policy_arg, plan_path)
-    plan = ctl.plan
-    assert plan is not None
+    prep = prepared or prepare(policy_arg, plan_path, baseline)
+    ctl, plan, lqr = prep.ctl, prep.ctl.plan, prep.baseline
+    assert plan is not None and (lqr is not None) == baseline
     say = log or (lambda _line: None)
     total = planned_episodes(plan, ctl.physics) * (2 if baseline else 1)
     bar = Progress(total, "episodes") if progress else None
@@ -190,11 +233,8 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
         part, samples = run_analyses(camp, say)
         results = _results_skeleton(ctl, plan, policy_arg) | part
         results["baseline"] = None
-        if baseline:
-            if ctl.policy_kind == LQR:
-                raise InputError("--baseline lqr: the controller under test is already the LQR baseline")
+        if lqr is not None:
             say("baseline: the same plan on the LQR baseline")
-            lqr = baseline_lqr(ctl.physics, ctl.base_params, plan)
             base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
             base_part, _ = run_analyses(base_camp, say)
             results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
@@ -228,6 +268,7 @@ def write_outputs(out: Path, results: dict[str, Any], samples: dict[str, Any] | 
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
     try:
+        tmp.chmod(0o777 & ~_umask())  # mkdtemp makes it 0700; the sweep directory follows the umask like mkdir
         write_json(tmp / "results.json", results)
         if samples is not None:
             units = {v["name"]: v["unit"] for v in results["montecarlo"]["varied"]}
@@ -241,6 +282,13 @@ def write_outputs(out: Path, results: dict[str, Any], samples: dict[str, Any] | 
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return sorted(out.iterdir())
+
+
+def _umask() -> int:
+    """The process umask (read by setting it, then restoring it at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _check_out(out: Path) -> None:
@@ -257,6 +305,8 @@ def configure_cli(p: argparse.ArgumentParser) -> None:
     """Arguments of ``pretrial sweep``."""
     from .cli import _workers_arg
 
+    p.epilog = EPILOG
+    p.formatter_class = argparse.RawDescriptionHelpFormatter  # keep the exit-status lines as written
     p.add_argument("policy", metavar="POLICY", help="policy file, run directory (its champion.json), or 'lqr'")
     p.add_argument("--plan", required=True, metavar="PLAN.toml", help="sweep plan, e.g. configs/sweeps/cartpole.toml")
     p.add_argument("--out", metavar="DIR", help="sweep directory (default sweeps/<plan>-<policy>-<UTC time>/)")
@@ -272,12 +322,14 @@ def run_cli(args: argparse.Namespace) -> int:
 
     out = Path(args.out) if args.out else _default_out(args.plan, args.policy)
     _check_out(out)
+    baseline = args.baseline == LQR
+    prepared = prepare(args.policy, args.plan, baseline)  # refused now, not after the policy's sweep
     quiet = args.json
     log = (lambda _l: None) if quiet else (lambda line: print(line, flush=True))
     started = time.time()
     with make_executor(args.workers, args.dask) as executor:
-        results, samples = sweep(args.policy, args.plan, executor, baseline=args.baseline == LQR, log=log,
-                                 progress=not quiet and sys.stderr.isatty())
+        results, samples = sweep(args.policy, args.plan, executor, baseline=baseline, log=log,
+                                 progress=not quiet and sys.stderr.isatty(), prepared=prepared)
         ex = executor.describe()
     manifest = {
         "pretrial": __version__, "python": platform.python_version(), "platform": platform.platform(),
@@ -288,9 +340,14 @@ def run_cli(args: argparse.Namespace) -> int:
     files = write_outputs(out, results, samples, manifest)
     if args.json:
         emit_json({**results, "directory": str(out), "files": [str(f) for f in files]})
-        return 0
-    print_results(results, out)
-    return 0
+    else:
+        print_results(results, out)
+    return exit_code(results)
+
+
+def exit_code(results: dict[str, Any]) -> int:
+    """The verdict as an exit status: 0 pass, 1 fail (bad input is 2 and Ctrl-C 130, from the CLI)."""
+    return EXIT_PASS if results.get("verdict") == "pass" else EXIT_FAIL
 
 
 def _versions() -> dict[str, str]:
@@ -305,13 +362,20 @@ def _versions() -> dict[str, str]:
     return out
 
 
+def _with_interval(req: dict[str, Any]) -> str:
+    """A requirement's measured value, with its Wilson 95% interval where it is a rate."""
+    text = fmt_number(req["measured"])
+    ci = req.get("interval")
+    return f"{text} (95% {fmt_number(ci[0])} to {fmt_number(ci[1])})" if ci else text
+
+
 def print_results(results: dict[str, Any], out: Path) -> None:
     """The text summary: verdict first, then requirements and the main evidence."""
     v = results["verdict"].upper()
-    failed = [r["name"] for r in results["requirements"] if not r["pass"]]
+    failed = [r["name"] for r in results["requirements"] if r["pass"] is False]
     print(f"\nverdict: {v}" + (f"  (failing: {'; '.join(failed)})" if failed else ""))
     table(["requirement", "required", "measured", "pass"],
-          [[r["name"], fmt_number(r["required"]), fmt_number(r["measured"]), "yes" if r["pass"] else "NO"]
+          [[r["name"], fmt_number(r["required"]), _with_interval(r), {True: "yes", False: "NO"}.get(r["pass"], "n/a")]
            for r in results["requirements"]])
     if results.get("margins"):
         print("\nmargins (one at a time; edge = last value meeting the required rate)")
@@ -334,7 +398,8 @@ def print_results(results: dict[str, Any], out: Path) -> None:
     if wc:
         vals = ", ".join(f"{k}={fmt_number(x)}" for k, x in wc["values"].items())
         print(f"\nworst case found: score {fmt_number(wc['score'])} at {vals} "
-              f"(success {wc['success_rate']:.0%}, {wc['failure'] or 'no failure'})\n  {wc['replay']}")
+              f"(success {_rate_text(wc['success_rate'], wc['episodes'])}, {wc['failure'] or 'no failure'})"
+              f"\n  {wc['replay']}")
     for key, title in (("linear", "linear (continuous)"), ("linear_sampled", "linear (sampled)")):
         if results.get(key) is None:
             continue
@@ -354,9 +419,19 @@ def print_results(results: dict[str, Any], out: Path) -> None:
         print(f"\nLQR baseline, same plan: verdict {base['verdict'].upper()}")
         bmc = base.get("montecarlo")
         if bmc and mc:
-            print(f"  Monte Carlo success: policy {mc['success_rate']:.2%}, LQR {bmc['success_rate']:.2%}")
+            print(f"  Monte Carlo success: policy {_rate_text(mc['success_rate'], mc['samples'])}, "
+                  f"LQR {_rate_text(bmc['success_rate'], bmc['samples'])}")
     print(f"\nsweep directory: {out}  (report.html, report.md, results.json)")
     print_cautions()
+
+
+def _rate_text(rate: float, n: int) -> str:
+    """``"97.50% (39 of 40; 95% interval 87.12% to 99.56%)"``: a rate with its Wilson interval."""
+    from .sweep import wilson_interval
+
+    k = round(rate * n)  # the rates stored are k / n exactly
+    lo, hi = wilson_interval(k, n)
+    return f"{rate:.2%} ({k} of {n}; 95% interval {float(lo):.2%} to {float(hi):.2%})"
 
 
 def _no_constant(text: str) -> Any:
