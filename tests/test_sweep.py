@@ -84,10 +84,12 @@ def run_sweep(capsys, tmp_path: Path, name: str, policy: str, plan_text: str, *e
     plan = tmp_path / f"{name}.toml"
     plan.write_text(plan_text, encoding="utf-8")
     out = tmp_path / f"{name}-out"
-    # exit 0 (PASS) or 1 (FAIL): the tests using this look at the results themselves
-    assert main(["sweep", policy, "--plan", str(plan), "--out", str(out), "--workers", "1", "--json", *extra]) in (0, 1)
+    # exit 0 (PASS) or 1 (FAIL), as the results' verdict says; the tests using this look at the rest
+    code = main(["sweep", policy, "--plan", str(plan), "--out", str(out), "--workers", "1", "--json", *extra])
     capsys.readouterr()
-    return json.loads((out / "results.json").read_text(encoding="utf-8")), out
+    res = json.loads((out / "results.json").read_text(encoding="utf-8"))
+    assert code == {"pass": 0, "fail": 1}[res["verdict"]], (code, res["verdict"])
+    return res, out
 
 
 @pytest.fixture(scope="module")

@@ -136,6 +136,22 @@ def interval(ci: Sequence[Any] | None) -> str:
     return f"{rate(ci[0])} – {rate(ci[1])}"
 
 
+def evidence(successes: Any, n: Any, ci: Sequence[Any] | None = None) -> str:
+    """``"19 of 20: 95 % [76.39 % – 99.11 %]"``: a count, its rate and its Wilson 95 % interval.
+
+    ``ci`` gives the bounds when the results hold them; otherwise they are computed
+    (:func:`pretrial.sweep.wilson_interval`).
+    """
+    if successes is None or not n:
+        return DASH
+    if ci is None or len(ci) != 2 or None in ci:
+        from .sweep import wilson_interval
+
+        lo, hi = wilson_interval(int(successes), int(n))
+        ci = [float(lo), float(hi)]
+    return f"{cell(successes)} of {cell(n)}: {rate(successes / n)} [{interval(ci)}]"
+
+
 def _units(results: Mapping[str, Any]) -> dict[str, str]:
     """Unit of every varied name mentioned anywhere in the results."""
     units: dict[str, str] = {}
@@ -187,9 +203,18 @@ def _requirements(reqs: Sequence[Mapping[str, Any]] | None) -> list[Block]:
     out: list[Block] = [Heading(2, "Requirements")]
     if not reqs:
         return [*out, Para("No requirements were set.")]
-    rows = [[str(r.get("name")), cell(r.get("required")), cell(r.get("measured")), passed(r.get("pass"))]
-            for r in reqs]
+    rows = [[str(r.get("name")), cell(r.get("required")), _measured(r), passed(r.get("pass"))] for r in reqs]
     return [*out, Table(["requirement", "required", "measured", "pass"], rows)]
+
+
+def _measured(r: Mapping[str, Any]) -> str:
+    """A requirement's measured value; a rate requirement that carries its interval shows it too."""
+    text = cell(r.get("measured"))
+    ci = r.get("interval")
+    if isinstance(ci, (list, tuple)) and len(ci) == 2:
+        point = f"rate {rate(r['point'])}, " if r.get("point") is not None else ""
+        text += f" ({point}Wilson 95 % interval {interval(ci)})"
+    return text
 
 
 def _setup(results: Mapping[str, Any]) -> list[Block]:
@@ -207,9 +232,34 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
         f"seed {cell(results.get('seed'))}, {cell(results.get('episodes_per_point'))} episodes per point, "
         f"required success rate {rate(results.get('required_success_rate'))}",
     ]
+    quality = ((plan.get("resolved") or {}).get("require") or {}).get("quality")
+    if quality:
+        items.append(_quality_line(quality))
     if results.get("content_sha256"):
         items.append(f"results content sha256 {results['content_sha256']}")
+    from .perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated)
+
+    varied = [v.get("name") for v in ((plan.get("resolved") or {}).get("vary") or [])]
+    items += [f"simulated: {note}" for note in simulation_notes(varied)]
     return [Heading(2, "What was tested"), Items(items)]
+
+
+def _quality_line(q: Mapping[str, Any]) -> str:
+    """What 'success' meant: the plan's loop-quality limits, in words."""
+    parts = []
+    if q.get("chatter_hz") is not None:
+        parts.append(f"at most {cell(q['chatter_hz'])} command reversals per second (swings past "
+                     f"{cell(q.get('chatter_level'))} of full scale)")
+    if q.get("saturated_fraction") is not None:
+        parts.append(f"a command at its limit in at most {rate(q['saturated_fraction'])} of the periods")
+    if q.get("settled"):
+        parts.append(f"regulated quantities inside their bands over the last {rate(q.get('settle_window'))} of the "
+                     "horizon (reach tasks: the goal hold)" + (f", bands {cell(q['band'])}" if q.get("band") else ""))
+    parts.append("mean error over that window within " + (cell(q["offset"]) if q.get("offset") else "half the band"))
+    if q.get("growth"):
+        parts.append("no error still growing at the horizon")
+    return ("success: no failure limit broken and the loop behaved: " + "; ".join(parts)
+            + " (failure words chatter, saturated, not_settled, growing, offset)")
 
 
 def _margins(margins: Sequence[Mapping[str, Any]] | None, images: Mapping[str, str]) -> list[Block]:
@@ -239,9 +289,51 @@ def _margins(margins: Sequence[Mapping[str, Any]] | None, images: Mapping[str, s
         Table(["parameter", "nominal", "low edge", "high edge", "low ratio", "high ratio", "failure past low",
                "failure past high", "searched range"], rows),
     ]
+    edges = _edge_evidence(margins)
+    if edges is not None:
+        out += [Para("The evidence at each edge: successes of the episodes, success rate and its Wilson 95 % "
+                     "interval, at the last passing value and at the first failing value past it (a point passes "
+                     "when the interval's lower bound reaches the required rate)."), edges]
     out += [Image(f, c) for f, c in images.items()
             if f == "margins.png" or (f.startswith("success_") and f != "success_map.png")]
     return out
+
+
+def _point_evidence(p: Mapping[str, Any] | None) -> str:
+    if not p:
+        return DASH
+    return evidence(p.get("successes"), p.get("episodes"), [p.get("lower_bound"), p.get("upper_bound")])
+
+
+def _edge_points(m: Mapping[str, Any], side: str) -> tuple[Mapping[str, Any] | None, Mapping[str, Any] | None]:
+    """The margin search's point at the ``side`` edge and the first failing point past it (None if none)."""
+    pts = [p for p in m.get("points") or [] if p.get("value") is not None]
+    edge = m.get(side)
+    at = next((p for p in pts if edge is not None and math.isclose(p["value"], edge, rel_tol=1e-12, abs_tol=0.0)),
+              None)
+    if m.get("fails_at_nominal"):
+        return None, at  # no passing value on either side: the start itself failed
+    outward = [p for p in pts if edge is not None and (p["value"] < edge if side == "low" else p["value"] > edge)]
+    failing = [p for p in outward if p.get("pass") is False]
+    past = (max if side == "low" else min)(failing, key=lambda p: p["value"]) if failing else None
+    return at, past
+
+
+def _edge_evidence(margins: Sequence[Mapping[str, Any]]) -> Table | None:
+    rows = []
+    for m in margins:
+        if not m.get("points"):
+            continue
+        u = m.get("unit")
+        for side in ("low", "high"):
+            at, past = _edge_points(m, side)
+            first = num(at.get("value"), u) if at else "none (fails at nominal)" if m.get("fails_at_nominal") else DASH
+            rows.append([m["name"], side, first, _point_evidence(at),
+                         num(past.get("value"), u) if past else DASH, _point_evidence(past)])
+    if not rows:
+        return None
+    return Table(["parameter", "side", "last passing value", "there: successes, rate [Wilson 95 %]",
+                  "first failing value", "there: successes, rate [Wilson 95 %]"], rows)
 
 
 def _montecarlo(mc: Mapping[str, Any] | None, required: Any, units: Mapping[str, str],
@@ -282,13 +374,25 @@ def _montecarlo(mc: Mapping[str, Any] | None, required: Any, units: Mapping[str,
 def _worstcase(wc: Mapping[str, Any] | None, units: Mapping[str, str]) -> list[Block]:
     if not wc:
         return []
-    return [Heading(2, "Worst case"), Items([
+    n = wc.get("episodes")
+    wins = round(wc["success_rate"] * n) if wc.get("success_rate") is not None and n else None
+    items = [
         f"search: {word(wc.get('method'))}, {cell(wc.get('evaluations'))} evaluations of "
-        f"{cell(wc.get('episodes'))} episodes each",
-        f"lowest score {num(wc.get('score'))}, success rate there {rate(wc.get('success_rate'))}, "
+        f"{cell(n)} episodes each",
+        f"lowest score {num(wc.get('score'))}, successes there {evidence(wins, n)}, "
         f"failure {word(wc.get('failure'))}, seed {cell(wc.get('seed'))}",
-        f"values: {_values(wc.get('values'), units)}",
-    ])]
+    ]
+    confirm = wc.get("confirm")
+    if confirm:
+        items.append(f"confirmed on fresh episodes (seed {cell(confirm.get('seed'))}): "
+                     f"{evidence(confirm.get('successes'), confirm.get('episodes'), confirm.get('ci95'))}")
+    # the values in a table, 4 significant digits (the replay command below holds them exactly)
+    values = wc.get("values") or {}
+    out: list[Block] = [Heading(2, "Worst case"), Items(items)]
+    if values:
+        out.append(Table(["parameter", "value at the worst case"],
+                         [[k, num(v, units.get(k))] for k, v in values.items()]))
+    return out
 
 
 def _sensitivity(sens: Mapping[str, Any] | None) -> list[Block]:
@@ -308,10 +412,31 @@ def _success_map(sm: Mapping[str, Any] | None, images: Mapping[str, str]) -> lis
         return []
     out: list[Block] = [Heading(2, "Success map"), Para(
         f"Success rate over {word(sm.get('x'))} and {word(sm.get('y'))} together, "
-        f"{cell(sm.get('episodes'))} episodes per cell, every other parameter at nominal.")]
+        f"{cell(sm.get('episodes'))} episodes per cell, every other parameter at nominal, over each "
+        "parameter's margin search range.")]
     if "success_map.png" in images:
         out.append(Image("success_map.png", images["success_map.png"]))
+    grid = _map_table(sm)
+    if grid is not None:
+        out += [Para("Each cell: successes of the episodes, success rate [Wilson 95 % interval]."), grid]
     return out
+
+
+def _map_table(sm: Mapping[str, Any]) -> Table | None:
+    """The map's cells as a table: rows the y values, columns the x values (None without counts)."""
+    xs, ys, wins = sm.get("x_values") or [], sm.get("y_values") or [], sm.get("successes")
+    if not wins or len(wins) != len(ys):
+        return None
+    lo, hi = sm.get("lower_bound") or [], sm.get("upper_bound") or []
+    n = sm.get("episodes")
+
+    def ci(i: int, j: int) -> list[Any] | None:
+        return [lo[i][j], hi[i][j]] if i < len(lo) and i < len(hi) else None
+
+    xu, yu = sm.get("x_unit"), sm.get("y_unit")
+    head = [f"{sm.get('y')} (rows) / {sm.get('x')} (columns)", *(num(x, xu) for x in xs)]
+    rows = [[num(y, yu), *(evidence(wins[i][j], n, ci(i, j)) for j in range(len(xs)))] for i, y in enumerate(ys)]
+    return Table(head, rows)
 
 
 def _unbounded(value: Any) -> str:
@@ -372,11 +497,19 @@ def _integrator(ic: Mapping[str, Any] | None) -> list[Block]:
     if not ic:
         return []
     runs = [("nominal", ic.get("nominal") or {})] + [("variant", v) for v in ic.get("variants") or []]
-    rows = [[kind, word(r.get("integrator")), cell(r.get("substeps")), rate(r.get("success_rate")),
+    n = ic.get("episodes")
+
+    def success(r: Mapping[str, Any]) -> str:
+        if not n or r.get("success_rate") is None:
+            return rate(r.get("success_rate"))
+        return evidence(round(r["success_rate"] * n), n)
+
+    rows = [[kind, word(r.get("integrator")), cell(r.get("substeps")), success(r),
              num(r.get("mean_score"))] for kind, r in runs]
     verdict = "Results change with the integrator: FLAGGED" if ic.get("flagged") else "No material change"
     out: list[Block] = [Heading(2, "Integrator check"),
-                        Table(["run", "integrator", "substeps", "success rate", "mean score"], rows),
+                        Table(["run", "integrator", "substeps", "successes, rate [Wilson 95 %]", "mean score"],
+                              rows),
                         Para(f"{verdict}." + (f" {ic['note']}" if ic.get("note") else ""))]
     return out
 
@@ -612,7 +745,13 @@ def to_html(blocks: Sequence[Block], images: Mapping[str, bytes] | None = None, 
 # --------------------------------------------------------------------------- #
 # CSV files
 # --------------------------------------------------------------------------- #
-def _csv_value(v: Any) -> str:
+#: significant digits of the numbers in margins.csv: a bisection edge like 0.1 * 0.1 prints as 0.01,
+#: not 0.010000000000000002 (the exact values are in results.json and the replay commands)
+MARGIN_DIGITS = 12
+
+
+def _csv_value(v: Any, digits: int | None = None) -> str:
+    """One CSV cell: floats exactly (``repr``) or to ``digits`` significant digits; None empty."""
     if hasattr(v, "item"):
         v = v.item()
     if v is None:
@@ -620,23 +759,26 @@ def _csv_value(v: Any) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, float):
-        return repr(v) if math.isfinite(v) else ("" if math.isnan(v) else ("inf" if v > 0 else "-inf"))
+        if not math.isfinite(v):
+            return "" if math.isnan(v) else ("inf" if v > 0 else "-inf")
+        return repr(v) if digits is None else f"{v:.{digits}g}"
     return str(v)
 
 
-def _csv_text(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
+def _csv_text(headers: Sequence[str], rows: Sequence[Sequence[Any]], digits: int | None = None) -> str:
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(headers)
-    writer.writerows([_csv_value(v) for v in row] for row in rows)
+    writer.writerows([_csv_value(v, digits) for v in row] for row in rows)
     return buf.getvalue()
 
 
 def write_margins_csv(path: str | Path, results: Mapping[str, Any]) -> bool:
     """``margins.csv``: one row per margin entry (a ``controller`` column first when there is a baseline).
 
-    Empty cells are nulls (no ratio for a zero nominal, no failure found). Returns False (nothing
-    written) when the results have no margins.
+    Empty cells are nulls (no ratio for a zero nominal, no failure found); numbers have
+    :data:`MARGIN_DIGITS` significant digits. Returns False (nothing written) when the results have
+    no margins.
     """
     base = results.get("baseline")
     sets = [("policy", results.get("margins") or [])]
@@ -646,7 +788,7 @@ def write_margins_csv(path: str | Path, results: Mapping[str, Any]) -> bool:
         return False
     headers = (["controller"] if base else []) + list(MARGIN_COLUMNS)
     rows = [([label] if base else []) + [m.get(k) for k in MARGIN_COLUMNS] for label, entries in sets for m in entries]
-    atomic_write_text(path, _csv_text(headers, rows))
+    atomic_write_text(path, _csv_text(headers, rows, MARGIN_DIGITS))
     return True
 
 
@@ -735,7 +877,9 @@ def write_plots(results: Mapping[str, Any], out_dir: Path, samples: Mapping[str,
             if part.get("success_map")]
     if maps:
         sweep_plots.plot_success_map(maps, required, out_dir / "success_map.png")
-        written["success_map.png"] = "Success rate over two parameters (white: the required rate)"
+        written["success_map.png"] = ("Success rate over two parameters (white line: the required rate; each cell: "
+                                      "successes of the episodes and the Wilson 95 % interval; boxed: its lower "
+                                      "bound meets the required rate)")
     loops = _loops(results)
     if loops:
         sweep_plots.plot_nyquist(loops, out_dir / "nyquist.png")

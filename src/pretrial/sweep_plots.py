@@ -45,17 +45,27 @@ def plain_text(draw: Callable[..., None]) -> Callable[..., None]:
     return wrapper
 
 
-def log_x(ax: Any) -> None:
-    """Logarithmic x axis labelled with plain numbers (0.1, 1, 10; minor ticks 2 and 5 too)."""
+def log_x(ax: Any, axis: str = "x") -> None:
+    """Logarithmic x (or y) axis labelled with plain numbers (0.1, 1, 10; minor ticks 2 and 5 too).
+
+    matplotlib's own log labels are mathtext (``$\\mathdefault{10^{1}}$``), which shows raw under
+    :func:`plain_text`; these are plain text. Minor labels are left out over more than two decades,
+    where they would crowd into the major ones.
+    """
     from matplotlib.ticker import FuncFormatter
 
+    getattr(ax, f"set_{axis}scale")("log")
+    which = ax.xaxis if axis == "x" else ax.yaxis
+
     def minor(v: float, _pos: int) -> str:
+        lo, hi = sorted(which.get_view_interval())
+        if lo <= 0 or hi / lo > 100.0:
+            return ""
         lead = round(v / 10.0 ** math.floor(math.log10(v))) if v > 0 else 0
         return f"{v:g}" if lead in (2, 5) else ""
 
-    ax.set_xscale("log")
-    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
-    ax.xaxis.set_minor_formatter(FuncFormatter(minor))
+    which.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+    which.set_minor_formatter(FuncFormatter(minor))
 
 
 # --------------------------------------------------------------------------- #
@@ -194,21 +204,83 @@ def plot_success_curve(curves: Sequence[tuple[str, Mapping[str, Any]]], required
 @plain_text
 def plot_success_map(maps: Sequence[tuple[str, Mapping[str, Any]]], required: float | None,
                      path: str | Path) -> None:
-    """Success rate over two varied names (one panel per controller) with the required-rate contour."""
+    """Success rate over two varied names (one panel per controller) with the required-rate contour.
+
+    Each cell is labelled with its successes of the episodes and its Wilson 95 % interval (in per
+    cent) when the map carries them; a cell whose lower bound meets the required rate is boxed.
+    Axes whose grid is geometric are drawn logarithmic.
+    """
     fig = _figure(6.0 * len(maps), 4.6)
     for k, (label, m) in enumerate(maps):
         ax = fig.add_subplot(1, len(maps), k + 1)
         x, y = floats(m.get("x_values")), floats(m.get("y_values"))
-        z = np.array([floats(row) for row in m.get("success_rate") or []], dtype=float).reshape(len(y), len(x))
-        mesh = ax.pcolormesh(x, y, z, shading="nearest", vmin=0.0, vmax=1.0, cmap="viridis")
+        z = _grid(m.get("success_rate"), len(y), len(x))
+        # cells centred on the grid values, geometric midpoints on a geometric grid (as the boxes below)
+        mesh = ax.pcolormesh(_cell_edges(x), _cell_edges(y), z, shading="flat", vmin=0.0, vmax=1.0, cmap="viridis")
         fig.colorbar(mesh, ax=ax, label="success rate")
         if required is not None and len(x) > 1 and len(y) > 1 and np.nanmin(z) < required < np.nanmax(z):
             cs = ax.contour(x, y, z, levels=[required], colors="white", linewidths=1.5)
-            ax.clabel(cs, fmt={required: f"required {required:g}"}, fontsize=7)
+            if not _label_cells(ax, m, x, y, z, required):  # the cell labels leave no room for the contour's
+                ax.clabel(cs, fmt={required: f"required {required:g}"}, fontsize=7)
+        else:
+            _label_cells(ax, m, x, y, z, required)
+        for axis, v in (("x", x), ("y", y)):
+            if _geometric(v):
+                log_x(ax, axis)
         ax.set_xlabel(f"{m.get('x')}{_unit(m.get('x_unit'))}")
         ax.set_ylabel(f"{m.get('y')}{_unit(m.get('y_unit'))}")
         ax.set_title(f"{label}: {m.get('episodes')} episodes per cell", fontsize=9)
     save_figure(fig, path)
+
+
+def _grid(rows: Sequence[Sequence[Any]] | None, ny: int, nx: int) -> Array:
+    return np.array([floats(row) for row in rows or []], dtype=float).reshape(ny, nx)
+
+
+def _geometric(v: Array) -> bool:
+    """A grid of at least 3 positive values with equal ratios (the map's geomspace)."""
+    if len(v) < 3 or not np.all(v > 0):
+        return False
+    r = v[1:] / v[:-1]
+    return bool(np.ptp(r) < 1e-6 * r[0] and abs(r[0] - 1.0) > 1e-6)
+
+
+def _label_cells(ax: Any, m: Mapping[str, Any], x: Array, y: Array, z: Array, required: float | None) -> bool:
+    """Write ``k/n`` and ``lo-hi %`` (Wilson 95 %) in each cell; box the cells whose lower bound passes.
+
+    Returns whether it labelled them (not for results without counts, nor for cells too small to read).
+    """
+    if "successes" not in m or len(x) * len(y) > 144:
+        return False
+    from matplotlib.patches import Rectangle
+
+    wins = _grid(m.get("successes"), len(y), len(x))
+    lo, hi = _grid(m.get("lower_bound"), len(y), len(x)), _grid(m.get("upper_bound"), len(y), len(x))
+    n = m.get("episodes")
+    xe, ye = _cell_edges(x), _cell_edges(y)
+    size = 6 if max(len(x), len(y)) <= 8 else 5
+    for i in range(len(y)):
+        for j in range(len(x)):
+            if not math.isfinite(wins[i, j]):
+                continue
+            ink = "black" if z[i, j] > 0.6 else "white"  # readable on viridis' yellow and its blue
+            ax.text(x[j], y[i], f"{int(wins[i, j])}/{n}\n{100 * lo[i, j]:.0f}–{100 * hi[i, j]:.0f} %",
+                    ha="center", va="center", fontsize=size, color=ink)
+            if required is not None and lo[i, j] >= required:
+                ax.add_patch(Rectangle((xe[j], ye[i]), xe[j + 1] - xe[j], ye[i + 1] - ye[i], fill=False,
+                                       edgecolor=ink, lw=1.0))
+    return True
+
+
+def _cell_edges(v: Array) -> Array:
+    """Edges of cells centred on the grid values (midpoints; geometric midpoints on a geometric grid)."""
+    geometric = _geometric(v)
+    if len(v) == 1:
+        return np.array([v[0] - 0.5, v[0] + 0.5]) if v[0] <= 0 else np.array([v[0] / 1.5, v[0] * 1.5])
+    w = np.log(v) if geometric else v
+    mid = (w[1:] + w[:-1]) / 2
+    e = np.concatenate([[w[0] - (mid[0] - w[0])], mid, [w[-1] + (w[-1] - mid[-1])]])
+    return np.exp(e) if geometric else e
 
 
 # --------------------------------------------------------------------------- #
@@ -326,8 +398,8 @@ def plot_bode(loops: Sequence[tuple[str, Mapping[str, Any], Sequence[Mapping[str
             with np.errstate(divide="ignore", invalid="ignore"):
                 db = 20 * np.log10(np.abs(curve))
             phase = np.degrees(np.unwrap(np.where(np.isfinite(curve), np.angle(curve), 0.0)))
-            ax_m.semilogx(w, db, color=c, label=label)
-            ax_p.semilogx(w, phase, color=c)
+            ax_m.plot(w, db, color=c, label=label)
+            ax_p.plot(w, phase, color=c)
             entry = next((e for e in entries if e.get("channel") == name), None)
             wc = None if entry is None else entry.get("crossover_rad_s")
             if wc is not None and wc > 0:
@@ -336,6 +408,7 @@ def plot_bode(loops: Sequence[tuple[str, Mapping[str, Any], Sequence[Mapping[str
                 ax_m.plot([wc], [0.0], "o", color=c, ms=5, label=f"{label}: crossover {wc:.3g} rad/s")
             if details.get("dt"):
                 ax_m.axvline(math.pi / details["dt"], color=c, ls="--", lw=0.6, alpha=0.6)
+        log_x(ax_p)  # shared with ax_m: plain-text tick labels on both
         ax_m.axhline(0, color="k", lw=0.8)
         ax_p.axhline(-180, color="0.6", lw=0.8, ls="--")
         ax_m.set_title(f"loop broken at {name}", fontsize=9)

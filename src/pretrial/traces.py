@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import csv
 import io
+import re
+import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -25,6 +27,19 @@ PLOT_FORMATS = {".png": "png", ".pdf": "pdf", ".svg": "svg"}
 
 #: at most this many episodes are drawn on one plot (the first in full colour, the rest faint)
 MAX_PLOTTED_EPISODES = 20
+#: a plot title wraps at this many characters (a worst-case replay sets several parameters at once)
+TITLE_WIDTH = 100
+#: significant digits of a number in a title (the reproducing command holds the exact values)
+TITLE_DIGITS = 4
+_SETTING_NUMBER = re.compile(r"(?<==)[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?(?=\s|$)")
+
+
+def plot_title(title: str) -> str:
+    """``title`` with the numbers of its ``name=value`` words to 4 significant digits, wrapped to lines."""
+    from .console import fmt_number
+
+    short = _SETTING_NUMBER.sub(lambda m: fmt_number(float(m[0]), TITLE_DIGITS), title)
+    return "\n".join(textwrap.wrap(short, TITLE_WIDTH, break_on_hyphens=False)) or short
 
 
 def physical_inputs(physics: Physics, actions: np.ndarray, params: np.ndarray) -> np.ndarray | None:
@@ -97,10 +112,13 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     """States (one subplot per unit) and actions against time, with the task's limits drawn.
 
     Limits come from ``physics.trace_limits`` for the first episode's
-    parameters: failure limits as dashed red lines, tolerances as green bands;
-    the actions carry their range [-1, 1]. The first episode is drawn in full
-    colour, up to :data:`MAX_PLOTTED_EPISODES` others faintly. The format
-    follows the suffix (PNG, PDF or SVG); the file is written atomically.
+    parameters: failure limits as dashed red lines, tolerances (kind
+    ``"band"``) as green bands; each state's target (``physics.target_state``)
+    is a dotted line in the state's colour; the actions carry their range
+    [-1, 1]. The first episode is drawn in full colour, up to
+    :data:`MAX_PLOTTED_EPISODES` others faintly. The title's numbers are
+    shortened and it wraps (:func:`plot_title`). The format follows the suffix
+    (PNG, PDF or SVG); the file is written atomically.
     """
     fmt = plot_format(path)
     states, actions = trace["state"], trace["action"]
@@ -111,6 +129,7 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     fig.set_layout_engine("constrained")  # keeps the title close to the first subplot
     axes = fig.subplots(rows, 1, sharex=True, squeeze=False)[:, 0]
     limits = physics.trace_limits(params[0])
+    target = physics.target_state(params[:1])[0]
     dt = physics.dt
     shown = range(min(len(steps), MAX_PLOTTED_EPISODES))
     for ax, (unit, idx) in zip(axes, groups):
@@ -121,6 +140,7 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
                 ax.plot(np.arange(n + 1) * dt, states[: n + 1, e, j], color=f"C{c % 10}", lw=1.2 if e == 0 else 0.6,
                         alpha=1.0 if e == 0 else 0.35, label=label)
         _draw_limits(ax, [lim for j in idx for lim in limits.get(physics.state_names[j], [])])
+        _draw_targets(ax, [(target[j], f"C{c % 10}", physics.state_names[j]) for c, j in enumerate(idx)])
         ax.set_ylabel(f"[{unit}]")
         ax.grid(alpha=0.3)
         ax.legend(loc="upper right", fontsize=7, ncol=min(len(idx), 4))
@@ -136,7 +156,7 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     ax.grid(alpha=0.3)
     ax.legend(loc="upper right", fontsize=7, ncol=min(physics.action_dim, 4))
     if title:
-        fig.suptitle(title, fontsize=9)
+        fig.suptitle(plot_title(title), fontsize=9)
     buf = io.BytesIO()
     fig.savefig(buf, format=fmt, bbox_inches="tight")
     atomic_write_bytes(path, buf.getvalue())
@@ -153,3 +173,14 @@ def _draw_limits(ax, limits: Sequence[TraceLimit]) -> None:
         else:
             ax.axhline(lim.low, color="tab:red", ls="--", lw=0.8, label=lim.label)
             ax.axhline(lim.high, color="tab:red", ls="--", lw=0.8)
+
+
+def _draw_targets(ax, targets: Sequence[tuple[float, str, str]]) -> None:
+    """A dotted line at each state's target: in the state's colour, or black where states share it."""
+    by_value: dict[float, list[tuple[str, str]]] = {}
+    for value, color, name in targets:
+        if np.isfinite(value):
+            by_value.setdefault(float(value), []).append((color, name))
+    for value, owners in by_value.items():
+        color, name = owners[0] if len(owners) == 1 else ("black", "")
+        ax.axhline(value, color=color, ls=":", lw=1.0, alpha=0.9, label=f"{name} target".strip())
