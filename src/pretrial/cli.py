@@ -98,6 +98,9 @@ def _run_envs(args: argparse.Namespace) -> int:
     except (TypeError, ValueError) as exc:
         raise InputError(f"{env_id}: {exc}") from None
     info = physics.describe()
+    from .perturb import perturbation_specs
+
+    info["perturbations"] = [s.as_dict() for s in perturbation_specs(physics)]
     if args.json:
         emit_json(info)
         return 0
@@ -115,6 +118,10 @@ def _run_envs(args: argparse.Namespace) -> int:
         table(["#", "name", "unit"], [[i, d["name"], d["unit"]] for i, d in enumerate(info[key])])
     print(f"\nAction ({len(info['action'])}, each in [-1, 1])")
     table(["#", "name", "physical unit"], [[i, d["name"], d["unit"]] for i, d in enumerate(info["action"])])
+    print("\nGeneric perturbations (NAME.CHANNEL sets one channel, in its unit; plain NAME is every channel)")
+    table(["name", "unit", "nominal", "valid range", "meaning"],
+          [[s["name"], s["unit"], s["nominal"], f"[{s['low']:g}, {s['high']:g}]", s["doc"]]
+           for s in info["perturbations"]])
     print(f"\nSuccess: {info['success_rule']}")
     print(f"Failure words: {', '.join(info['failure_modes'])}")
     print(f"Reward: {info['reward']}")

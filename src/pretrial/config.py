@@ -285,7 +285,7 @@ def load_config(path: str | Path) -> Config:
             raise InputError(f"{path}: task.params.{name}: {exc}") from None
     params = {k: float(v) for k, v in params.items()}
 
-    from .perturb import spec_of
+    from .perturb import plant_refusal, spec_of
 
     randomize: dict[str, tuple[float, float]] = {}
     for name, rng in _channel_items(randomize_t):
@@ -308,6 +308,8 @@ def load_config(path: str | Path) -> Config:
                 f"{path}: {key}: range [{lo:g}, {hi:g}] leaves the valid range "
                 f"[{spec.low:g}, {spec.high:g}] {spec.unit}"
             )
+        if plant_refusal(physics, name):
+            raise InputError(f"{path}: {key}: {plant_refusal(physics, name)}")
         randomize[name] = (lo, hi)
     if ramp and not randomize:
         raise InputError(f"{path}: task.randomize_ramp: {ramp} needs ranges to widen: add [task.randomize]")

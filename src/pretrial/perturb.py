@@ -62,7 +62,7 @@ that the integration step never grows.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -149,13 +149,23 @@ def _channel_spec(physics: Physics, base: str, column: int) -> ParamSpec:
     """The table row of one channel: the plain form's range, the channel's own unit."""
     spec = PERTURBATIONS[base]
     names, units = _channels(physics, base)
-    if base == "actuator_gain":
-        doc = f"multiplier on the physical output of actuator {names[column]}"
-        unit = "-"
-    else:
-        doc = f"{spec.doc.split(',')[0].split(';')[0]} (observation {names[column]} only)"
-        unit = units[column]
-    return ParamSpec(f"{base}.{names[column]}", unit, spec.nominal, spec.low, spec.high, doc, spec.role)
+    name, unit = names[column], units[column]
+    if base == "actuator_gain":  # a multiplier: no unit of its own
+        output = f" ({unit})" if unit not in ("-", "1", "") else ""
+        return ParamSpec(f"{base}.{name}", "-", spec.nominal, spec.low, spec.high,
+                         f"multiplier on the physical output{output} of actuator {name}", spec.role)
+    doc = _CHANNEL_DOCS[base].format(name=name)
+    return ParamSpec(f"{base}.{name}", unit, spec.nominal, spec.low, spec.high, doc, spec.role)
+
+
+_CHANNEL_DOCS = {"sensor_noise_std": "white noise std added to observation {name}",
+                 "sensor_bias": "constant offset added to observation {name}",
+                 "sensor_quantization": "resolution of observation {name} (0 = exact)"}
+
+
+def perturbation_specs(physics: Physics) -> list[ParamSpec]:
+    """Every generic perturbation valid on ``physics``: the plain forms, then the channel forms (their units)."""
+    return [*PERTURBATIONS, *(spec_of(physics, name) for name in channel_names(physics))]
 
 
 def is_perturbation(physics: Physics, name: str) -> bool:
@@ -270,6 +280,9 @@ def apply_settings(physics: Physics, base_params: Mapping[str, float] | None,
         if not is_perturbation(physics, name):  # an unknown channel has raised already, naming the channels
             raise ValueError(unknown_name_message("parameter or perturbation", name, setting_names(physics)))
         perturb[name] = given[name] = ParamTable([spec_of(physics, name)]).check_value(name, value)
+        refused = plant_refusal(physics, name, given[name])
+        if refused:
+            raise ValueError(refused)
     physics.param_table.resolve(params)  # the combination must be valid too
     return Setup(physics, params, perturb, given)
 
@@ -317,6 +330,72 @@ def diverged_warning(count: int, where: str, total: int | None = None, context: 
     ctx = f"{context}: " if context else ""
     return (f"pretrial: warning: {ctx}{count}{of} episodes diverged (the simulation blew up; counted as "
             f"failures) at {where}")
+
+
+#: how each perturbation is simulated: every rounding and approximation, for reports (keyed by plain name)
+SIMULATION_NOTES = {
+    "actuator_delay_s": "exact at any fraction of a control period: the plant integrates each period in two "
+                        "phases, the older command then the newer (delays within 1e-9 periods of a whole "
+                        "number of periods count as whole)",
+    "sensor_delay_s": "whole control periods exact; a fraction of a period is linearly interpolated between "
+                      "the two observations sampled around t - delay (an approximation of order dt^2)",
+    "control_jitter_s": "each command arrives U(0, min(value, dt)) s late, simulated exactly (two phases per "
+                        "period); with a fractional actuator delay too, an arrival past the period's end is "
+                        "held at the end",
+    "actuator_lag_s": "the first-order lag's exact response at each period's end, held over that period (a "
+                      "staircase of the continuous response)",
+    "actuator_rate_limit": "applied once per control period: the command moves at most rate x dt per period "
+                           "and is held (a staircase, not a continuous ramp)",
+    "actuator_gain": "multiplies the physical actuator output (force, thrust), not the command; the command "
+                     "is clipped to [-1, 1] before the plant",
+    "sensor_noise_std": "the plain form is one number for every observation, each in its own unit; "
+                        "NAME.OBS is one observation in its unit (as tabled)",
+    "sensor_bias": "the plain form is one number for every observation, each in its own unit; NAME.OBS is "
+                   "one observation in its unit (as tabled)",
+    "sensor_quantization": "the plain form is one resolution for every observation, each in its own unit; "
+                           "NAME.OBS is one observation in its unit (as tabled)",
+    CONTROL_PERIOD: "the plant is rebuilt with that control period, its integration step no longer than before",
+}
+
+
+def simulation_notes(names: Iterable[str]) -> list[str]:
+    """``name: how it is simulated`` for each varied name that has a rounding or approximation to state."""
+    out: dict[str, str] = {}
+    for name in names:
+        base = str(name).split(".")[0]
+        if base in SIMULATION_NOTES and base not in out:
+            out[base] = f"{base}: {SIMULATION_NOTES[base]}"
+    return list(out.values())
+
+
+#: what needs the physics core's two-phase transition and physical actuator map
+_WITHIN_PERIOD = ("actuator_gain", "control_jitter_s", "actuator_delay_s")
+
+
+def within_period_ok(physics: Physics) -> bool:
+    """Whether the plant's ``transition`` takes within-period inputs (a plain gymnasium env steps itself)."""
+    import inspect
+
+    return "switch" in inspect.signature(physics.transition).parameters
+
+
+def plant_refusal(physics: Physics, name: str, value: float | None = None) -> str | None:
+    """Why ``name`` (at ``value``, or varied over a range when None) cannot act on ``physics``; None if it can.
+
+    A plant without the physics core's transition (a plain gymnasium env)
+    steps whole control periods and maps its own actuators: it takes no
+    actuator gain, no jitter and only whole-period actuator delays.
+    """
+    base = str(name).split(".")[0]
+    if base not in _WITHIN_PERIOD or within_period_ok(physics):
+        return None
+    if value is not None:
+        nominal = PERTURBATIONS[base].nominal
+        if value == nominal or (base == "actuator_delay_s" and split_delay(np.array(value), physics.dt)[1] == 0):
+            return None
+    whole = " (whole periods only)" if base == "actuator_delay_s" else ""
+    return (f"{name}: {physics.env_id} steps whole control periods of {physics.dt:g} s and maps its own "
+            f"actuators, so {base} cannot act on it{whole}")
 
 
 def split_delay(seconds: np.ndarray, dt: float) -> tuple[np.ndarray, np.ndarray]:
@@ -414,17 +493,10 @@ class Loop:
 
     def _check_plant(self) -> None:
         # the within-period inputs need the physics core's transition (a gymnasium env steps itself)
-        import inspect
-
-        if not (self._any_switch or self._any_gain):
-            return
-        if "switch" in inspect.signature(self.physics.transition).parameters:
-            return
-        what = ("actuator_gain" if self._any_gain else "control_jitter_s" if self._any_jitter
-                else "actuator_delay_s (a fraction of a period)")
-        raise ValueError(f"{what}: {self.physics.env_id} steps whole control periods of "
-                         f"{self.physics.dt:g} s and maps its own actuators, so this cannot act on it "
-                         "(only whole-period delays, sensor perturbations and the actuator shaping apply)")
+        if (self._any_switch or self._any_gain) and not within_period_ok(self.physics):
+            name = ("actuator_gain" if self._any_gain else "control_jitter_s" if self._any_jitter
+                    else "actuator_delay_s")
+            raise ValueError(plant_refusal(self.physics, name))
 
     def _batch_flags(self) -> None:
         # Which elements act on some row (the others are skipped: nominal passes values through) and

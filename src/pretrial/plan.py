@@ -26,7 +26,7 @@ from typing import Any
 from .config import _kind, _Reader, dump_toml, read_toml
 from .errors import InputError
 from .files import sha256_hex
-from .perturb import CONTROL_PERIOD, PERTURBATIONS, setting_names, spec_of, with_control_period
+from .perturb import CONTROL_PERIOD, PERTURBATIONS, plant_refusal, setting_names, spec_of, with_control_period
 from .quality import QualityLimits
 
 ANALYSES = ("margins", "montecarlo", "worstcase", "sensitivity", "map", "linear", "linear_sampled",
@@ -420,6 +420,8 @@ def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: 
             raise InputError(f"{path}: {key}.name: {exc}".split("; valid:")[0] + f"; valid: {valid}") from None
         unit, low_ok, high_ok = spec.unit, spec.low, spec.high
         nominal = params.get(name, spec.nominal) if name in physics.param_table else spec.nominal
+        if plant_refusal(physics, name):
+            raise InputError(f"{path}: {key}.name: {plant_refusal(physics, name)}")
         if name in PERTURBATIONS and not math.isfinite(nominal):
             nominal = math.inf
     if len(rng) != 2 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in rng):
