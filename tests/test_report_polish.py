@@ -193,3 +193,19 @@ def test_replay_plot_draws_targets_and_bands(monkeypatch, tmp_path):
     ys = band.get_patch_transform().transform(band.get_path().vertices)[:, 1]  # data y (Rectangle or Polygon)
     tol = p[col("sway_tolerance")]
     assert np.isclose(ys.min(), -tol) and np.isclose(ys.max(), tol)
+
+
+def test_replay_plot_bands_the_regulated_states(monkeypatch, tmp_path):
+    figures = []
+    real = traces._figure
+    monkeypatch.setattr(traces, "_figure", lambda *a, **k: figures.append(real(*a, **k)) or figures[-1])
+    physics = make_physics("pretrial/CartPole-v0")
+    setup = apply_settings(physics, base_params={}, settings={})
+    rep = run_replay(lqr_policy(setup), setup, episodes=1, seed=0, max_steps=50)
+    traces.plot_traces(tmp_path / "c.png", rep.physics, rep.outcome.trace, rep.scenarios.params, rep.outcome.steps[0])
+    (fig,) = figures
+    bands = {p.get_label(): p for ax in fig.axes for p in ax.patches}
+    half = dict(zip(physics.regulated(), physics.regulation_band(rep.scenarios.params[:1])[0], strict=True))
+    for name in ("x", "theta"):  # the plant's regulated states, banded about their target 0
+        ys = bands[f"{name} band"].get_patch_transform().transform(bands[f"{name} band"].get_path().vertices)[:, 1]
+        assert np.isclose(ys.min(), -half[name]) and np.isclose(ys.max(), half[name])

@@ -111,10 +111,10 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
                 steps: np.ndarray, title: str = "") -> None:
     """States (one subplot per unit) and actions against time, with the task's limits drawn.
 
-    Limits come from ``physics.trace_limits`` for the first episode's
-    parameters: failure limits as dashed red lines, tolerances (kind
-    ``"band"``) as green bands; each state's target (``physics.target_state``)
-    is a dotted line in the state's colour; the actions carry their range
+    Limits come from :func:`task_limits` for the first episode's parameters:
+    failure limits as dashed red lines, tolerances (kind ``"band"``, and the
+    bands of the regulated states) as green bands; each state's target
+    (``physics.target_state``) is a dotted line in the state's colour; the actions carry their range
     [-1, 1]. The first episode is drawn in full colour, up to
     :data:`MAX_PLOTTED_EPISODES` others faintly. The title's numbers are
     shortened and it wraps (:func:`plot_title`). The format follows the suffix
@@ -128,8 +128,8 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     fig = _figure(8.0, 1.9 * rows + 0.6)
     fig.set_layout_engine("constrained")  # keeps the title close to the first subplot
     axes = fig.subplots(rows, 1, sharex=True, squeeze=False)[:, 0]
-    limits = physics.trace_limits(params[0])
     target = physics.target_state(params[:1])[0]
+    limits = task_limits(physics, params[0], target)
     dt = physics.dt
     shown = range(min(len(steps), MAX_PLOTTED_EPISODES))
     for ax, (unit, idx) in zip(axes, groups):
@@ -162,12 +162,31 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     atomic_write_bytes(path, buf.getvalue())
 
 
+def task_limits(physics: Physics, params: np.ndarray, target: np.ndarray) -> dict[str, list[TraceLimit]]:
+    """``physics.trace_limits`` plus a tolerance band about the target of each regulated state.
+
+    The bands are the plant's own (``regulated`` / ``regulation_band``): what the loop-quality
+    checks hold a regulated state to at the end of an episode. ``params`` is one row (P,).
+    """
+    limits = {k: list(v) for k, v in physics.trace_limits(params).items()}
+    names = list(physics.regulated())
+    if names:
+        half = physics.regulation_band(params[None, :])[0]
+        for name, h in zip(names, half, strict=True):
+            if name in physics.state_names:
+                t = float(target[physics.state_names.index(name)])
+                limits.setdefault(name, []).append(TraceLimit(t - float(h), t + float(h), f"{name} band", "band"))
+    return limits
+
+
 def _draw_limits(ax, limits: Sequence[TraceLimit]) -> None:
     seen = set()
     for lim in limits:
-        if lim in seen:
+        # a band the plant declares twice (a trace limit and a regulation band) is drawn once
+        key = (round(lim.low, 12), round(lim.high, 12), lim.kind) if lim.kind == "band" else lim
+        if key in seen:
             continue
-        seen.add(lim)
+        seen.add(key)
         if lim.kind == "band":
             ax.axhspan(lim.low, lim.high, color="tab:green", alpha=0.12, label=lim.label)
         else:
