@@ -531,3 +531,14 @@ def test_plain_gymnasium_env_refuses_within_period_values():
 
 def test_every_plain_perturbation_still_listed(cart):
     assert set(PERTURBATIONS.names) <= set(setting_names(cart))
+
+
+def test_physical_inputs_carry_the_gain(cart):
+    # what constraint checks see (e.g. the gantry's rope tension) is the force the plant received
+    n = 3
+    p = np.tile(cart.param_table.resolve({}), (n, 1))
+    loop = Loop(cart, {"actuator_gain": np.array([1.0, 0.0, 2.5])}, streams.scenario_keys(0, n))
+    loop.reset(np.zeros((n, 4)))
+    a = loop.actuate(np.full((n, 1), 0.4), 0)
+    np.testing.assert_allclose(loop.physical(a, p)[:, 0], 0.4 * p[:, cart.param_table.index("max_force")]
+                               * np.array([1.0, 0.0, 2.5]), rtol=1e-15)

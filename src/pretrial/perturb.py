@@ -29,8 +29,10 @@ scenario, possibly repeated for many genomes):
 * actuator path: the policy's command is clipped to [-1, 1], delayed by the
   whole periods of ``actuator_delay_s``, passed through a deadband,
   slew-limited by ``actuator_rate_limit`` (full scale per second), lagged by a
-  first-order ``actuator_lag_s`` (exact for a command held over a period) and
-  clipped to [-1, 1] again; this normalized command is what the plant's
+  first-order ``actuator_lag_s`` and clipped to [-1, 1] again. The slew limit
+  and the lag act once per period: the lag's exact response to the held
+  command at the period's end, and the slewed value, are held over the period
+  (a staircase of the continuous element, stated in reports); this normalized command is what the plant's
   actuator map (``Physics.actuate``) turns into physical inputs, and
   ``actuator_gain`` multiplies those physical inputs (force, thrust, speed),
   not the command: a gain of 0 means no force or thrust at all, and saturation
@@ -41,7 +43,9 @@ scenario, possibly repeated for many genomes):
   ``earlier``/``switch``). An actuator delay ``(m + f) dt`` gives
   ``s = f``: the plant sees exactly the command sequence shifted by the
   delay, as a continuous transport delay would give it (the
-  modified-z-transform loop of sampled-data control);
+  modified-z-transform loop of sampled-data control). A batch that holds
+  such a row integrates twice per period (the first phase is masked out on
+  the other rows);
 * timing: with ``control_jitter_s`` each new command reaches the plant
   ``tau ~ U(0, min(jitter, dt))`` seconds late, the previous one acting until
   then: the same two-phase switch, ``s = min(f + tau / dt, 1)`` (a command
@@ -53,6 +57,11 @@ of periods counts as that whole number (float noise in ``d / dt``), and rows
 whose delays are whole periods integrate the period in one piece, bit for bit
 as before. Rows are independent: a row's results never depend on what the
 other rows of the batch carry (a sweep sample replays alone bit for bit).
+
+A plant without the physics core's ``transition`` (a plain gymnasium env)
+steps whole periods and maps its own actuators: it refuses ``actuator_gain``,
+``control_jitter_s`` and fractional actuator delays (:func:`plant_refusal`).
+:data:`SIMULATION_NOTES` words every rounding and approximation for reports.
 
 ``control_period_s`` (see :func:`apply_settings`) is the control period
 itself: the plant is rebuilt with that ``dt`` and enough integration substeps
@@ -602,6 +611,12 @@ class Loop:
         actuator output.
         """
         return self._inputs
+
+    def physical(self, action: np.ndarray, params: np.ndarray) -> np.ndarray:
+        """The plant's physical inputs for ``action`` this step: ``Physics.actuate`` times the actuator gain."""
+        force = self.physics.actuate(action, params)
+        gain = self._inputs.get("gain")
+        return force if gain is None else force * gain
 
     def _jitter_draw(self, step: int) -> np.ndarray:
         # the lane after the plant's noise lanes of the plant stream: no other draw changes
