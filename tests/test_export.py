@@ -35,7 +35,7 @@ from pretrial.cli import main
 from pretrial.console import CAUTIONS
 from pretrial.export import export_policy, step_cost
 from pretrial.export_code import build_program
-from pretrial.export_golden import golden_actions, read_golden, write_golden
+from pretrial.export_golden import FAULT_VALUES, golden_actions, golden_steps, read_golden, write_golden
 from pretrial.export_python import PythonSyntax
 from pretrial.export_python import render as render_python
 from pretrial.generic import make_plant
@@ -110,9 +110,10 @@ def _python_worst(module, prefix: str, golden: Path) -> float:
     g = read_golden(golden)
     step, reset = getattr(module, f"{prefix}_step"), getattr(module, f"{prefix}_reset")
     state, worst = module.new_state(), 0.0
-    for obs, want in zip(g.observations, g.actions, strict=True):
+    for obs, want, codes in zip(g.observations, g.actions, g.codes, strict=True):
         reset(state)
-        got = np.array([step(state, row.tolist()) for row in obs])
+        got = np.zeros_like(want)
+        assert [step(state, row.tolist(), action) for row, action in zip(obs, got)] == codes.tolist()
         assert np.array_equal(np.isnan(got), np.isnan(want))
         worst = max(worst, float(np.nanmax(np.abs(got - want), initial=0.0)))
     return worst
@@ -218,7 +219,7 @@ def test_every_activation_and_aggregation_at_its_edges(tmp_path, cfgs, feed_forw
     out = tmp_path / "probe"
     files = export_policy(policy, "c", out, sequences=1, steps=1)
     golden = out / "pretrial_policy_golden.txt"
-    write_golden(golden, obs, golden_actions(policy, obs), ["probe"])  # our own edge-case observations
+    write_golden(golden, obs, *golden_steps(policy, obs), ["probe"])  # our own edge-case observations
     code, worst, text = _check(_compile(out), golden)
     assert code == 0 and worst <= 1e-12, text
     files = export_policy(policy, "python", out / "py", sequences=1, steps=1)
@@ -234,12 +235,13 @@ def test_golden_actions_are_neat_pythons(tmp_path, cfgs):
             policy = _policy(cfg, 10 + seed, hoist=True)
             files = export_policy(policy, "python", tmp_path / f"{ff}{seed}", sequences=6, steps=7, seed=seed)
             g = read_golden(files[-1])
-            obs = np.stack(g.observations, axis=1)  # (steps, sequences, obs)
+            assert not np.any(g.codes[:6]) and len(g.codes) == 6 + len(FAULT_VALUES)  # 6 finite, then faults
+            obs = np.stack(g.observations[:6], axis=1)  # (steps, sequences, obs)
             io = policy.io
             net_in = (obs - np.array(io.obs_offset)) * np.array(io.obs_scale)
             raw = library_outputs(random_genome(cfg, 10 + seed, 40), cfg, net_in)
             expected = np.clip(raw * np.array(io.action_scale) + np.array(io.action_offset), -1.0, 1.0)
-            np.testing.assert_allclose(np.stack(g.actions, axis=1), expected, rtol=1e-12, atol=1e-12)
+            np.testing.assert_allclose(np.stack(g.actions[:6], axis=1), expected, rtol=1e-12, atol=1e-12)
 
 
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow,
@@ -283,10 +285,12 @@ def test_operation_count_and_memory_worked_example(cfgs):
         assert (ops["multiplies"], ops["adds"], ops["divisions"]) == (3 + 2 + 1 + 1 + 1, 1 + 1 + 1, 0)
         assert (ops["comparisons"], ops["math_calls"], ops["activations"]) == (1 + 2, 1, 1)
         assert ops["activation_kinds"] == {"tanh": 1}
-        # distinct literals: 0.5 2.0 4.0 | 0.7 -1.1 1.5 0.2 2.5 60.0 | 1.0 -1.0 (2.0 again): 11 doubles
-        assert cost.memory_bytes["constants"] == 11 * 8
+        # distinct literals: 0.5 2.0 4.0 | 0.7 -1.1 1.5 0.2 2.5 60.0 | 1.0 -1.0 (2.0 again): 11 doubles,
+        # plus the safe-action table (1 action): 12
+        assert cost.memory_bytes["constants"] == 12 * 8
+        assert ops["finite_checks"] == 4 + 1  # the fault guard: each observation, each network output
         assert cost.memory_bytes["state"] == (1 if ff else 8)  # placeholder / one node value
-    assert step_cost(_tiny_policy(cfgs, True), precision="float").memory_bytes["constants"] == 11 * 4
+    assert step_cost(_tiny_policy(cfgs, True), precision="float").memory_bytes["constants"] == 12 * 4
 
 
 @needs_cc
@@ -314,7 +318,7 @@ def test_header_states_what_the_numbers_mean(tmp_path, cfgs):
     top = header[: header.index("*/")]
     assert "pretrial/CartPole-v0" in top and policy.content_hash in top and '"poles": 1' in top
     # observation order with names and units, as the env lists them
-    rows = re.findall(r"^ \*\s+(\d)\s+(\S+)\s+(\S+)\s+0\s", top, re.M)
+    rows = re.findall(r"^ \*\s+(\d)\s+(\S+)\s+(\S+)\s+0\s", top.split("Action action[")[0], re.M)
     assert rows == [("0", "x", "m"), ("1", "x_dot", "m/s"), ("2", "theta", "rad"), ("3", "theta_dot", "rad/s")]
     # cart-pole force = action * max_force, with the max_force it was trained with
     assert re.search(r"0\s+force\s+N\s+2\s+-1\s+-7\.5 / 0 / 7\.5 N \(linear\)", top)
@@ -328,7 +332,7 @@ def test_header_states_what_the_numbers_mean(tmp_path, cfgs):
     assert re.search(r"^#define PRETRIAL_POLICY_INPUTS 4\b", header, re.M)
     assert re.search(r"^#define PRETRIAL_POLICY_OUTPUTS 1\b", header, re.M)
     assert "void pretrial_policy_reset(pretrial_policy_state *s);" in header
-    assert "void pretrial_policy_step(pretrial_policy_state *s, const double *obs, double *action);" in header
+    assert "int pretrial_policy_step(pretrial_policy_state *s, const double *obs, double *action);" in header
     source = files[1].read_text()
     assert re.findall(r"#include\s*(\S+)", source) == ["<math.h>", '"pretrial_policy.h"']
     assert re.findall(r"#include\s*(\S+)", files[2].read_text()) == ["<math.h>", "<stdio.h>", "<stdlib.h>",
@@ -361,7 +365,7 @@ def test_python_module_imports_math_only(tmp_path, cfgs):
     module = _import(files[0])
     assert (module.INPUTS, module.OUTPUTS) == (6, 2)
     worst, rows = module.check_golden(str(files[-1]))
-    assert worst <= 1e-12 and rows == 6
+    assert worst <= 1e-12 and rows == 6 + 3 * (2 * 6 + 3)  # 2 x 3 finite steps, 3 fault sequences of 2 n + 3
     with pytest.raises(ValueError, match="expected 6 observation values"):
         module.pretrial_policy_step(module.new_state(), [0.0] * 5)
     r = subprocess.run([sys.executable, files[0].name, files[-1].name], cwd=tmp_path, capture_output=True, text=True)
@@ -377,9 +381,9 @@ def test_check_programs_fail_on_a_damaged_golden_file(tmp_path, cfgs):
     golden = out / "pretrial_policy_golden.txt"
     assert _check(exe, golden)[0] == 0
     lines = golden.read_text().splitlines()
-    row = next(i for i, line in enumerate(lines) if line.count(" ") == 4 and not line.startswith("#"))
-    values = lines[row].split()
-    values[-1] = repr(float(values[-1]) + 1e-9)  # one action off by 1e-9
+    row = next(i for i, line in enumerate(lines) if line.count(" ") == 5 and not line.startswith("#"))
+    values = lines[row].split()  # 4 observations, 1 action, the fault code
+    values[-2] = repr(float(values[-2]) + 1e-9)  # one action off by 1e-9
     bad = out / "bad.txt"
     bad.write_text("\n".join([*lines[:row], " ".join(values), *lines[row + 1 :]]) + "\n")
     code, worst, text = _check(exe, bad)
@@ -406,7 +410,7 @@ def test_prefix_renames_everything(tmp_path, cfgs):
     header = files[0].read_text()
     for decl in ("#define CRANE_CTL_INPUTS 6", "#define CRANE_CTL_OUTPUTS 2", "} crane_ctl_state;",
                  "void crane_ctl_reset(crane_ctl_state *s);",
-                 "void crane_ctl_step(crane_ctl_state *s, const float *obs, float *action);"):
+                 "int crane_ctl_step(crane_ctl_state *s, const float *obs, float *action);"):
         assert decl in header
     rc, worst, text = _check(_compile(out, "crane_ctl"), files[-1])
     assert rc == 0 and worst <= 1e-5, text
@@ -434,7 +438,8 @@ def test_cli_text_and_json(tmp_path, policy_file, capsys):
     # a run directory works as well as its champion file
     assert main(["export", str(policy_file.parent), "--to", "python", "--out", str(tmp_path / "p"), "--json"]) == 0
     data = json.loads(capsys.readouterr().out)
-    assert set(data) == {"files", "operations", "memory_bytes", "content_sha256", "cautions"}
+    assert set(data) == {"files", "operations", "memory_bytes", "content_sha256", "safe_action", "cautions"}
+    assert data["safe_action"] == [0.0]  # cart-pole: zero force
     assert [Path(f).name for f in data["files"]] == ["pretrial_policy.py", "pretrial_policy_golden.txt"]
     assert data["cautions"] == list(CAUTIONS) and data["operations"]["activations"] == 1
     assert data["memory_bytes"]["state"] == 1
@@ -464,3 +469,281 @@ def test_cli_refuses_out_file_and_missing_policy(tmp_path, policy_file, capsys):
     err = capsys.readouterr().err.strip()
     assert "\n" not in err and "nope.json" in err and "no such file" in err
 
+
+
+# --------------------------------------------------------------------------- #
+# bad input: NaN / inf observations, non-finite network outputs, the safe action
+# --------------------------------------------------------------------------- #
+_DRIVER = r"""/* test driver: each line of the input file is 'reset' or one observation; prints code and actions */
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include "pretrial_policy.h"
+
+int main(int argc, char **argv)
+{
+    char word[64];
+    pretrial_policy_state s;
+    pretrial_policy_real obs[PRETRIAL_POLICY_INPUTS], action[PRETRIAL_POLICY_OUTPUTS];
+    int i, code;
+    FILE *f = argc > 1 ? fopen(argv[1], "r") : NULL;
+    if (f == NULL)
+        return 2;
+    pretrial_policy_reset(&s);
+    while (fscanf(f, "%63s", word) == 1) {
+        if (strcmp(word, "reset") == 0) {
+            pretrial_policy_reset(&s);
+            continue;
+        }
+        obs[0] = (pretrial_policy_real)strtod(word, NULL);
+        for (i = 1; i < PRETRIAL_POLICY_INPUTS; i++) {
+            if (fscanf(f, "%63s", word) != 1)
+                return 2;
+            obs[i] = (pretrial_policy_real)strtod(word, NULL);
+        }
+        for (i = 0; i < PRETRIAL_POLICY_OUTPUTS; i++)
+            action[i] = (pretrial_policy_real)12345.0; /* the step must write every action, fault or not */
+        code = pretrial_policy_step(&s, obs, action);
+        printf("%d", code);
+        for (i = 0; i < PRETRIAL_POLICY_OUTPUTS; i++)
+            printf(" %.17g", (double)action[i]);
+        printf("\n");
+    }
+    fclose(f);
+    return 0;
+}
+"""
+
+
+def _run_c(out: Path, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Codes (T,) and actions (T, A) of the C export in ``out`` stepping through ``rows`` from a reset."""
+    (out / "driver.c").write_text(_DRIVER)
+    (out / "rows.txt").write_text("\n".join(" ".join(repr(float(v)) for v in row) for row in rows) + "\n")
+    exe = out / "driver"
+    r = subprocess.run([CC, *FLAGS, "-O2", "-o", str(exe), str(out / "driver.c"), str(out / "pretrial_policy.c"),
+                        "-lm"], capture_output=True, text=True)
+    assert r.returncode == 0 and not r.stderr, r.stderr
+    lines = subprocess.run([str(exe), str(out / "rows.txt")], capture_output=True, text=True, check=True).stdout
+    table = np.array([line.split() for line in lines.splitlines()], dtype=float)
+    return table[:, 0].astype(int), table[:, 1:]
+
+
+def _run_python(module, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Codes and actions of the Python export (the C-like form), checking the list form agrees."""
+    state, twin = module.new_state(), module.new_state()
+    codes, actions = [], []
+    for row in rows:
+        action = [12345.0] * module.OUTPUTS
+        codes.append(module.pretrial_policy_step(state, row.tolist(), action))
+        assert module.pretrial_policy_step(twin, row.tolist()) == action  # the earlier form: same action
+        actions.append(action)
+    return np.array(codes), np.array(actions)
+
+
+def _numpy_reference(policy, rows: np.ndarray, bad: np.ndarray, safe) -> tuple[np.ndarray, np.ndarray]:
+    """What the brief asks for, from Policy.act alone: the good rows stepped in order, as if the bad ones never
+    happened (state kept), the bad rows the safe action."""
+    good = ~bad
+    fresh = type(policy).from_dict(policy.to_dict())
+    fresh.reset(1)
+    actions = np.tile(np.asarray(safe, dtype=float), (len(rows), 1))
+    actions[good] = np.array([fresh.act(row[None])[0] for row in rows[good]]).reshape(-1, policy.io.action_dim)
+    return bad.astype(int), actions
+
+
+def _fault_rows(n_obs: int, seed: int) -> np.ndarray:
+    """Finite rows, each followed by NaN, +inf or -inf in one element (every element in turn) or in all of them,
+    and a last finite row."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for value in (np.nan, np.inf, -np.inf):
+        for i in [*range(n_obs), None]:
+            rows.append(rng.normal(0.0, 1.0, n_obs))
+            bad = rng.normal(0.0, 1.0, n_obs)
+            bad[slice(None) if i is None else i] = value
+            rows.append(bad)
+    rows.append(rng.normal(0.0, 1.0, n_obs))
+    return np.array(rows)
+
+
+@needs_cc
+@pytest.mark.parametrize("feed_forward", [True, False], ids=["feed_forward", "recurrent"])
+@pytest.mark.parametrize("precision", ["double", "float"])
+def test_nan_and_inf_observations_give_the_safe_action_and_code_1(tmp_path, cfgs, feed_forward, precision):
+    # the contract of the brief, checked against pretrial's numpy policy (tied to neat-python above)
+    cfg = cfgs(feed_forward, 6, 2, BOUNDED)
+    safe = (0.25, -0.5)  # not zero, so a skipped write or a wrong table shows
+    tol = 1e-12 if precision == "double" else 1e-5
+    for seed in (1, 2):
+        policy = _policy(cfg, seed, hoist=True)
+        rows = _fault_rows(6, seed)
+        if precision == "float":
+            rows = rows.astype(np.float32).astype(float)  # the float build sees float observations
+        bad = ~np.isfinite(rows).all(axis=1)
+        want_codes, want = _numpy_reference(policy, rows, bad, safe)
+        out = tmp_path / f"{precision}{seed}"
+        export_policy(policy, "c", out, precision, sequences=4, steps=5, safe_action=safe)
+        codes, got = _run_c(out, rows)
+        assert codes.tolist() == want_codes.tolist() and 0 < want_codes.sum() == bad.sum() < len(rows)
+        assert np.array_equal(got[bad], np.tile(safe, (bad.sum(), 1)))  # exactly the safe action
+        np.testing.assert_allclose(got[~bad], want[~bad], rtol=0, atol=tol)  # the state was kept
+        assert _check(_compile(out), out / "pretrial_policy_golden.txt")[0] == 0  # its own golden file too
+        if precision == "double":
+            files = export_policy(policy, "python", out / "py", sequences=4, steps=5, safe_action=safe)
+            module = _import(files[0])
+            assert module.SAFE_ACTION == safe and (module.OK, module.FAULT_OBSERVATION) == (0, 1)
+            py_codes, py = _run_python(module, rows)
+            assert py_codes.tolist() == codes.tolist() and np.array_equal(py, got)  # C and Python agree
+
+
+def _overflow_policy(cfgs, feed_forward: bool):
+    """Gantry (6 inputs, 2 actions): output 0 = identity(2 x0) overflows for huge x0; output 1 =
+    tanh(x0 (+ 0.5 times its own previous value if recurrent)) stays finite, so a state that was not
+    restored after the overflow would show in the next step."""
+    cfg = cfgs(feed_forward, 6, 2)
+    g = _probe_genome(cfg, [("identity", "sum", [2.0]), ("tanh", "sum", [0.3])])
+    if not feed_forward:
+        loop = neat.genes.DefaultConnectionGene((1, 1), innovation=99)
+        loop.weight, loop.enabled = 0.5, True
+        g.connections[loop.key] = loop
+    return policy_from_genome(g, cfg, env_id=GANTRY, env_options={"hoist": True}, io=IOMap(6, 2))
+
+
+@needs_cc
+@pytest.mark.parametrize("feed_forward", [True, False], ids=["feed_forward", "recurrent"])
+@pytest.mark.parametrize("precision", ["double", "float"])
+def test_an_overflowing_network_output_gives_the_safe_action_and_code_2(tmp_path, cfgs, feed_forward, precision):
+    # IEEE 754 overflow (a finite product beyond the largest double 1.8e308 / float 3.4e38 is inf)
+    policy = _overflow_policy(cfgs, feed_forward)
+    huge = 1e308 if precision == "double" else 3e38  # finite in the real type; times 2 is not
+    rows = np.array([[0.5, 0, 0, 0, 0, 0], [-0.2, 0, 0, 0, 0, 0], [huge, 0, 0, 0, 0, 0], [0.7, 0, 0, 0, 0, 0]])
+    out = tmp_path / "e"
+    export_policy(policy, "c", out, precision, sequences=2, steps=3)
+    codes, got = _run_c(out, rows)
+    assert codes.tolist() == [0, 0, 2, 0]
+    assert got[2].tolist() == [0.0, 0.0]  # the gantry's safe action: zero force, zero hoist speed
+    skip = np.array([False, False, True, False])
+    _, want = _numpy_reference(policy, rows, skip, (0.0, 0.0))  # as if the overflow step had not happened
+    np.testing.assert_allclose(got[~skip], want[~skip], rtol=0, atol=1e-12 if precision == "double" else 1e-5)
+    if not feed_forward:  # the kept state matters: with the overflow step's state the last action would differ
+        poisoned = type(policy).from_dict(policy.to_dict())
+        poisoned.reset(1)
+        last = [poisoned.act(row[None].astype(float))[0] for row in rows][-1]
+        assert abs(last[1] - got[3][1]) > 1e-3
+    if precision == "double":
+        files = export_policy(policy, "python", out / "py", sequences=2, steps=3)
+        py_codes, py = _run_python(_import(files[0]), rows)
+        assert py_codes.tolist() == codes.tolist() and np.array_equal(py, got)
+        # golden_steps (what the golden file holds) agrees with the C code on the same rows
+        golden = out / "overflow_golden.txt"
+        write_golden(golden, rows[None], *golden_steps(policy, rows[None]), ["overflow"])
+        assert read_golden(golden).codes[0].tolist() == [0, 0, 2, 0]
+        code, worst, text = _check(_compile(out), golden)
+        assert code == 0 and worst <= 1e-12, text
+        assert _python_worst(_import(files[0]), "pretrial_policy", golden) <= 1e-12
+
+
+@needs_cc
+def test_check_program_fails_on_a_wrong_fault_code(tmp_path, cfgs):
+    out = tmp_path / "e"
+    files = export_policy(_tiny_policy(cfgs, False), "c", out, sequences=2, steps=3)
+    py = export_policy(_tiny_policy(cfgs, False), "python", out / "py", sequences=2, steps=3)
+    lines = files[-1].read_text().splitlines()
+    row = next(i for i, line in enumerate(lines) if line.startswith("nan ") and line.endswith(" 1"))
+    bad = out / "bad.txt"
+    bad.write_text("\n".join([*lines[:row], lines[row][:-1] + "0", *lines[row + 1 :]]) + "\n")  # code 1 -> 0
+    code, worst, text = _check(_compile(out), bad)
+    assert code == 1 and worst == np.inf and "fault code differs on 1 steps" in text and "FAILED" in text
+    r = subprocess.run([sys.executable, py[0].name, str(bad)], cwd=py[0].parent, capture_output=True, text=True)
+    assert r.returncode == 1 and "difference inf" in r.stdout
+
+
+def test_golden_file_covers_nan_and_both_infinities(tmp_path, cfgs):
+    policy = _policy(cfgs(False, 12, 2), 3, DRONES, blocks=2)
+    files = export_policy(policy, "python", tmp_path, sequences=2, steps=4)
+    g = read_golden(files[-1])
+    assert len(g.observations) == 2 + 3
+    for obs, codes, value in zip(g.observations[2:], g.codes[2:], FAULT_VALUES, strict=True):
+        hit = ~np.isfinite(obs)
+        assert np.all(np.isnan(obs[hit])) if np.isnan(value) else np.all(obs[hit] == value)
+        assert hit.any(axis=0).all()  # every observation element is hit at least once
+        assert hit.all(axis=1).any()  # and once all of them
+        assert codes.tolist() == hit.any(axis=1).astype(int).tolist()
+    safe = np.array(_import(files[0]).SAFE_ACTION)
+    for acts, codes in zip(g.actions, g.codes, strict=True):
+        assert np.array_equal(acts[codes == 1], np.tile(safe, ((codes == 1).sum(), 1)))
+
+
+def test_drone_safe_action_is_hover_thrust(tmp_path, cfgs):
+    # Statics (Newton's first law): a level drone at rest hovers when its rotors' thrusts sum to its weight m g.
+    cfg = cfgs(False, 12, 2)
+    io = IOMap(12, 2, 2)
+    params = {"mass": 1.1, "max_thrust": 9.5, "gravity": 9.81}
+    policy = policy_from_genome(random_genome(cfg, 3, 40), cfg, env_id=DRONES, env_params=params, io=io)
+    files = export_policy(policy, "python", tmp_path, sequences=1, steps=2)
+    module = _import(files[0])
+    safe = np.array(module.SAFE_ACTION)
+    plant = make_plant(DRONES)
+    values = plant.param_table.resolve(params)
+    thrust = plant.actuate(safe[None], values[None])[0]  # the plant's own actuator map, per rotor (N)
+    weight = params["mass"] * params["gravity"]
+    assert thrust[:2].sum() == pytest.approx(weight, rel=1e-12) and thrust[2:].sum() == pytest.approx(weight, rel=1e-12)
+    assert np.allclose(thrust, weight / 2, rtol=1e-12)  # shared equally: no pitch torque
+    # and the plant's equations agree: level, at rest, no wind or gust, rotors at that thrust -> no acceleration
+    state = plant.target_state(values[None])
+    state[:, 12:16] = thrust
+    d = plant.derivatives(state, thrust[None], values[None])[0]
+    np.testing.assert_allclose(d[[3, 4, 5, 9, 10, 11]], 0.0, atol=1e-12)
+    doc = ast.get_docstring(ast.parse(files[0].read_text()))
+    assert "DronePairPhysics.safe_action" in doc and "m g / max_thrust - 1" in " ".join(doc.split())
+    # a drone too heavy for its rotors cannot hover: the command saturates at full thrust
+    assert plant.safe_action(plant.param_table.resolve({"mass": 10.0, "max_thrust": 8.0})).tolist() == [1.0] * 4
+
+
+@needs_cc
+def test_header_states_the_fault_behaviour(tmp_path, cfgs):
+    out = tmp_path / "e"
+    files = export_policy(_tiny_policy(cfgs, True), "c", out, sequences=1, steps=2)
+    header = files[0].read_text()
+    top = " ".join(" ".join(line.lstrip(" *") for line in header[: header.index("*/")].splitlines()).split())
+    assert "returns 0 (PRETRIAL_POLICY_OK)" in top and "1 (PRETRIAL_POLICY_FAULT_OBSERVATION)" in top
+    assert "2 (PRETRIAL_POLICY_FAULT_OUTPUT)" in top and "leaves the recurrent state as it was" in top
+    assert "from Physics.safe_action, the default: the zero command" in top
+    assert re.search(r"0 force 0 0 N", top)  # the safe action and its physical meaning (zero force)
+    assert "not certified" in top and "restrained" in top and "open-loop fallback" in top
+    assert "#define PRETRIAL_POLICY_FAULT_OBSERVATION 1 " in header
+    assert "extern const double pretrial_policy_safe_action[PRETRIAL_POLICY_OUTPUTS];" in header
+    # a caller written for the earlier void step still compiles clean (it ignores the code)
+    (out / "old.c").write_text('#include "pretrial_policy.h"\nint main(void) { pretrial_policy_state s; '
+                               "double obs[4] = {0}, a[1]; pretrial_policy_reset(&s); "
+                               "pretrial_policy_step(&s, obs, a); return a[0] == 0.0 ? 1 : 0; }\n")
+    r = subprocess.run([CC, *FLAGS, "-o", str(out / "old"), str(out / "old.c"), str(out / "pretrial_policy.c"),
+                        "-lm"], capture_output=True, text=True)
+    assert r.returncode == 0 and not r.stderr, r.stderr
+    # an env that cannot be built here gives zeros and says so
+    probe = policy_from_genome(_probe_genome(cfgs(True, 4, 1), [("tanh", "sum", [1.0])]), cfgs(True, 4, 1),
+                               env_id="probe/Nothing-v0")
+    files = export_policy(probe, "python", tmp_path / "p", sequences=1, steps=1)
+    assert "could not be built here to say what is safe" in " ".join(files[0].read_text().split())
+
+
+def test_cli_safe_action(tmp_path, policy_file, capsys):
+    out = tmp_path / "p"
+    assert main(["export", str(policy_file), "--to", "python", "--out", str(out), "--safe-action=-0.5"]) == 0
+    assert "given by --safe-action" in capsys.readouterr().out
+    assert _import(out / "pretrial_policy.py").SAFE_ACTION == (-0.5,)
+
+
+@pytest.mark.parametrize("value, words", [
+    ("0,0", ["2 values", "1 action "]),
+    ("1.5", ["1.5", "outside [-1, 1]"]),
+    ("-1.01", ["-1.01", "outside [-1, 1]"]),
+    ("nan", ["nan", "outside [-1, 1]"]),
+    ("half", ["'half'", "numbers"]),
+    ("", ["''", "numbers"]),
+])
+def test_cli_refuses_bad_safe_action(tmp_path, policy_file, capsys, value, words):
+    assert main(["export", str(policy_file), "--to", "c", "--out", str(tmp_path / "o"), f"--safe-action={value}"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "\n" not in err and err.startswith("pretrial: error: --safe-action") and all(w in err for w in words), err
+    assert not (tmp_path / "o").exists()

@@ -334,11 +334,11 @@ class DronePairPhysics(Physics):
         return self.param(params, "mass") * self.param(params, "gravity") / self.param(params, "max_thrust") - 1.0
 
     def safe_action(self, params: Array) -> Array:
-        """Hover thrust on all 4 rotors: each drone's weight m g shared by its 2 rotors, m g / 2 per rotor.
+        """Hover thrust on all 4 rotors: each drone's weight m g shared by its 2 rotors, m g / 2 per rotor,
+        which ``actuate`` (thrust = (a + 1) max_thrust / 2) gives at a = m g / max_thrust - 1.
 
-        Through ``actuate`` (thrust = (a + 1) max_thrust / 2) that is the command
-        a = m g / max_thrust - 1, clipped to [-1, 1] (+1 where m g > 2 max_thrust:
-        no hover then). Open loop it holds no attitude or position: a fallback only.
+        Clipped to [-1, 1] (+1 where m g > 2 max_thrust: no hover then). Open
+        loop it holds no attitude or position: a fallback only.
         """
         hover = np.clip(self.hover_action(np.asarray(params, dtype=float)[None]), -1.0, 1.0)
         return np.repeat(hover, self.action_dim)

@@ -4,19 +4,25 @@
 
 * ``--to c``: ``PREFIX.h`` and ``PREFIX.c`` (C99, ``<math.h>`` only, no dynamic
   allocation; ``PREFIX_INPUTS``/``PREFIX_OUTPUTS``, ``PREFIX_state``,
-  ``PREFIX_reset`` and ``PREFIX_step``), and ``PREFIX_check.c``, which replays
-  the golden file on the target's own toolchain;
+  ``PREFIX_reset``, ``int PREFIX_step`` and ``PREFIX_safe_action``), and
+  ``PREFIX_check.c``, which replays the golden file on the target's own toolchain;
 * ``--to python``: ``PREFIX.py`` (imports :mod:`math` only; ``INPUTS``,
-  ``OUTPUTS``, ``new_state``, ``PREFIX_reset``, ``PREFIX_step``,
-  ``check_golden``);
-* ``PREFIX_golden.txt``: seeded observation sequences and the actions
-  :meth:`pretrial.policy.Policy.act` gives for them (:mod:`pretrial.export_golden`).
+  ``OUTPUTS``, ``SAFE_ACTION``, the fault codes, ``new_state``,
+  ``PREFIX_reset``, ``PREFIX_step``, ``check_golden``);
+* ``PREFIX_golden.txt``: seeded observation sequences, the actions
+  :meth:`pretrial.policy.Policy.act` gives for them, and fault sequences
+  (NaN, +inf, -inf) with the safe action and code (:mod:`pretrial.export_golden`).
 
 The exported step computes what ``Policy.act`` computes (input scaling,
 network, output mapping with the final clip, each shared block with its own
-recurrent state), operation by operation (:mod:`pretrial.export_code`); the
-header comment says what the numbers mean on the plant. :func:`step_cost`
-gives the operation count and memory as data.
+recurrent state), operation by operation (:mod:`pretrial.export_code`), and
+returns 0. On bad input it returns a fault code instead and writes the safe
+action: 1 if an observation value is NaN or infinite, 2 if a network output
+is (overflow); the recurrent state stays as it was before the call. The safe
+action is the env's (:meth:`pretrial_envs.core.Physics.safe_action`: zero
+command, hover thrust for the drones) unless the caller gives one. The header
+comment says what the numbers mean on the plant. :func:`step_cost` gives the
+operation count and memory as data.
 """
 
 from __future__ import annotations
@@ -27,6 +33,7 @@ import json
 import keyword
 import os
 import re
+import sys
 import textwrap
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,7 +44,7 @@ import numpy as np
 from . import __version__
 from .console import CAUTIONS, emit_json, print_cautions, table
 from .errors import InputError
-from .export_code import Program, Syntax, build_program
+from .export_code import FAULTS, Program, Syntax, build_program
 from .files import atomic_write_text, check_creatable
 from .policy import Policy
 
@@ -170,6 +177,9 @@ class EnvFacts:
     linear: tuple[bool, ...]
     #: (name, value, unit, trained) of every env parameter
     params: tuple[tuple[str, float, str, bool], ...]
+    #: the env's safe action on these parameters (None: the env could not be built here) and where it came from
+    safe_action: tuple[float, ...] | None = None
+    safe_source: str = ""
 
 
 def env_facts(policy: Policy) -> EnvFacts:
@@ -192,8 +202,9 @@ def env_facts(policy: Policy) -> EnvFacts:
         plant = make_plant(policy.env_id, **policy.env_options)
     except (InputError, ValueError, TypeError, ImportError) as exc:
         msg = exc.message if isinstance(exc, InputError) else str(exc)
-        return EnvFacts(False, f"the env could not be built here ({' '.join(msg.split())}): names, units and "
-                        "physical scaling are unknown", None, *generic, (None,) * n_act, (False,) * n_act, ())
+        return EnvFacts(False, f"the env could not be built here ({' '.join(msg.split())}): names, units, "
+                        "physical scaling and safe action are unknown", None, *generic, (None,) * n_act,
+                        (False,) * n_act, ())
     if (plant.obs_dim, plant.action_dim) != (n_obs, n_act):
         raise InputError(f"{policy.env_id}: the env has {plant.obs_dim} observations and {plant.action_dim} actions, "
                          f"the policy maps {n_obs} and {n_act}; it was not trained on this env configuration")
@@ -219,8 +230,56 @@ def env_facts(policy: Policy) -> EnvFacts:
     linear = tuple(bool(np.isclose(force[1, k], (force[0, k] + force[2, k]) / 2, rtol=1e-12, atol=1e-12)
                         and np.isclose(force[3, k], (force[1, k] + force[2, k]) / 2, rtol=1e-12, atol=1e-12))
                    for k in range(n_act))
+    safe, source = _env_safe_action(plant, values, policy.env_id)
     return EnvFacts(True, note, float(plant.dt), tuple(plant.obs_names), tuple(plant.obs_units),
-                    tuple(plant.action_names), tuple(plant.action_units), physical, linear, params)
+                    tuple(plant.action_names), tuple(plant.action_units), physical, linear, params, safe, source)
+
+
+def _env_safe_action(plant: Any, values: np.ndarray, env_id: str) -> tuple[tuple[float, ...], str]:
+    """The plant's ``safe_action`` on ``values``, checked, and a sentence saying where it came from."""
+    from pretrial_envs.core import Physics
+
+    from .generic import GymnasiumPlant
+
+    try:
+        safe = np.asarray(plant.safe_action(values), dtype=float)
+    except ValueError as exc:
+        raise InputError(f"{env_id}: safe_action: {exc}") from None
+    if safe.shape != (plant.action_dim,) or not np.all(np.abs(safe) <= 1.0):  # also refuses NaN
+        raise InputError(f"{env_id}: safe_action gave {safe.tolist()!r}; expected {plant.action_dim} values in "
+                         "[-1, 1] (or give --safe-action)")
+    method = type(plant).safe_action
+    if method is Physics.safe_action:
+        doc = "the zero command (the env declares no safe action of its own"
+        doc += "; for a plain gymnasium env, the middle of its action Box: check it)" \
+            if isinstance(plant, GymnasiumPlant) else ")"
+        return tuple(safe.tolist()), f"from Physics.safe_action, the default: {doc}."
+    summary = " ".join((method.__doc__ or "").strip().split("\n\n")[0].replace("``", "").split())
+    return tuple(safe.tolist()), f"from {method.__qualname__} with the policy's env parameters. {summary}"
+
+
+def check_safe_action(values: Any, n_actions: int, flag: str = "safe_action") -> tuple[float, ...]:
+    """``values`` as one finite number in [-1, 1] per action; InputError naming ``flag`` else."""
+    try:
+        out = tuple(float(v) for v in values)
+    except (TypeError, ValueError):
+        raise InputError(f"{flag} {values!r}: expected {n_actions} numbers in [-1, 1]") from None
+    if len(out) != n_actions:
+        raise InputError(f"{flag} {', '.join(map(repr, out))}: {_count(len(out), 'value')}, the policy has "
+                         f"{_count(n_actions, 'action')} (give one per action, in action order)")
+    bad = [v for v in out if not -1.0 <= v <= 1.0]  # also NaN
+    if bad:
+        raise InputError(f"{flag} {', '.join(map(repr, out))}: {bad[0]!r} is outside [-1, 1] (actions are "
+                         "normalized)")
+    return out
+
+
+def parse_safe_action(text: str, flag: str = "--safe-action") -> tuple[float, ...]:
+    """``V[,V...]`` as numbers (the count and range are checked against the policy by :func:`check_safe_action`)."""
+    try:
+        return tuple(float(v) for v in text.split(","))
+    except ValueError:
+        raise InputError(f"{flag} {text!r}: expected numbers separated by commas, e.g. 0,-0.2") from None
 
 
 def _count(n: int, word: str, plural: str = "") -> str:
@@ -243,7 +302,7 @@ def describe_ops(prog: Program) -> str:
     return (f"{_count(o.multiplies, 'multiply', 'multiplies')}, {_count(o.divisions, 'division')}, "
             f"{_count(o.adds, 'add/subtract', 'adds/subtracts')}, {_count(o.comparisons, 'comparison')}, "
             f"{_count(o.activations, 'activation function call')} ({kinds or 'none'}), "
-            f"{_count(o.math_calls, 'math library call')}")
+            f"{_count(o.math_calls, 'math library call')}, {_count(o.finite_checks, 'NaN/infinity test')}")
 
 
 def describe_memory(prog: Program, real_bytes: int) -> str:
@@ -253,9 +312,36 @@ def describe_memory(prog: Program, real_bytes: int) -> str:
             f"{real_bytes} bytes), {state}, about {m['stack']} bytes of stack locals")
 
 
+def _fault_lines(prog: Program, facts: EnvFacts, target: str, prefix: str, safe_source: str) -> list[str]:
+    """The header's fault section: the codes, what a fault does, the safe action and its source, the caution."""
+    up = prefix.upper()
+    name = (lambda n: f"{up}_{n}") if target == "c" else (lambda n: n)
+    codes = "; ".join(f"{value} ({name(n)}) when {meaning}" for n, value, meaning in FAULTS)
+    lines = [
+        "",
+        f"Faults: {prefix}_step returns {codes}. On a fault it writes the safe action and leaves the recurrent "
+        "state as it was before the call (the step is skipped: NaN never enters the state, and the next good "
+        "step goes on from the last good one). A caller that ignores the return value still gets the safe "
+        "action; act on the code: log it, and stop the machine when faults persist.",
+        f"Safe action, {safe_source}",
+    ]
+    rows = []
+    for k, value in enumerate(prog.safe_action):
+        phys, unit = facts.physical[k], facts.action_units[k]
+        shown = "unknown"
+        if phys is not None and facts.linear[k]:
+            shown = _num(phys[1] + value * (phys[2] - phys[0]) / 2) + ("" if unit in ("-", "?") else f" {unit}")
+        rows.append([str(k), facts.action_names[k], _num(value), shown])
+    lines += _table_lines(["#", "name", "action", "physical"], rows)
+    lines.append("CAUTION: the safe action is an open-loop fallback for a bad step, not a recovery: it holds no "
+                 "position or attitude, so on persistent faults the plant drifts (a drone can tip and fall, a "
+                 "crane load keeps swinging). Pair it with a tested emergency stop or landing procedure.")
+    return lines
+
+
 def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, precision: str,
-                 prefix: str) -> list[str]:
-    """The comment at the top of the generated code: provenance, plant meaning, cost, cautions."""
+                 prefix: str, safe_source: str = "") -> list[str]:
+    """The comment at the top of the generated code: provenance, plant meaning, faults, cost, cautions."""
     io, spec = policy.io, policy.network.spec
     up = prefix.upper()
     sizes = (f"{up}_INPUTS", f"{up}_OUTPUTS") if target == "c" else ("INPUTS", "OUTPUTS")
@@ -305,6 +391,7 @@ def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, pr
                 + (" (linear)" if facts.linear[k] else " (not linear)")
         rows.append([str(k), facts.action_names[k], unit, _num(io.action_scale[k]), _num(io.action_offset[k]), shown])
     lines += _table_lines(["#", "name", "unit", "scale", "offset", "physical at -1 / 0 / +1"], rows)
+    lines += _fault_lines(prog, facts, target, prefix, safe_source or facts.safe_source)
     lines += [
         "",
         f"Per step (worst case over branches): {describe_ops(prog)}.",
@@ -318,7 +405,7 @@ def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, pr
             "Use:",
             f"  {prefix}_state s;",
             f"  {prefix}_reset(&s);              before the first step of every episode",
-            f"  {prefix}_step(&s, obs, action);  once per control period",
+            f"  code = {prefix}_step(&s, obs, action);  once per control period; 0 or a fault code",
             "Build as plain C99 with <math.h> (link -lm). For last-bit agreement with pretrial keep floating-point",
             "contraction off (-std=c99 does in GCC; or -ffp-contract=off) and no -ffast-math.",
             f"{prefix}_check.c replays {prefix}_golden.txt through this code on the target's toolchain.",
@@ -366,7 +453,7 @@ def step_cost(policy: Policy, to: str = "c", precision: str = "double") -> StepC
 
 def export_policy(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision: str = "double",
                   prefix: str = DEFAULT_PREFIX, *, sequences: int = GOLDEN_SEQUENCES, steps: int = GOLDEN_STEPS,
-                  seed: int = GOLDEN_SEED) -> list[Path]:
+                  seed: int = GOLDEN_SEED, safe_action: Any = None) -> list[Path]:
     """Write ``policy`` as C99 or Python plus its golden file into ``out_dir``.
 
     Parameters
@@ -380,7 +467,13 @@ def export_policy(policy: Policy, to: str, out_dir: str | os.PathLike[str], prec
     prefix : str
         A C identifier naming the files, macros, struct and functions.
     sequences, steps, seed : int
-        Golden file: observation sequences, steps per sequence, random seed.
+        Golden file: observation sequences, steps per sequence, random seed
+        (the three fault sequences come on top).
+    safe_action : sequence of float, optional
+        What the step gives on a fault: one value in [-1, 1] per action, in
+        action order. Default: the env's ``Physics.safe_action`` on the
+        policy's env parameters (zero command; hover thrust for the drones),
+        zeros if the env cannot be built here.
 
     Returns
     -------
@@ -390,21 +483,36 @@ def export_policy(policy: Policy, to: str, out_dir: str | os.PathLike[str], prec
     Raises
     ------
     InputError
-        Bad ``to``/``precision``/``prefix``/``out_dir``, a constant out of the
-        float range, or an env that does not fit the policy.
+        Bad ``to``/``precision``/``prefix``/``out_dir``/``safe_action``, a
+        constant out of the float range, or an env that does not fit the policy.
     """
-    return _export(policy, to, out_dir, precision, prefix, sequences, steps, seed)[0]
+    return _export(policy, to, out_dir, precision, prefix, sequences, steps, seed, safe_action)[0]
+
+
+def _safe_action(policy: Policy, facts: EnvFacts, given: Any, flag: str) -> tuple[tuple[float, ...], str]:
+    """The safe action to export and where it came from: the caller's, else the env's, else zeros."""
+    if given is not None:
+        return check_safe_action(given, policy.io.action_dim, flag), f"given by {flag} at export."
+    if facts.safe_action is not None:
+        return facts.safe_action, facts.safe_source
+    return (0.0,) * policy.io.action_dim, (f"zeros: {policy.env_id} could not be built here to say what is safe; "
+                                           "check them, or export again with --safe-action.")
 
 
 def _export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision: str, prefix: str, sequences: int,
-            steps: int, seed: int, flag: str = "out_dir") -> tuple[list[Path], Program]:
+            steps: int, seed: int, safe_action: Any = None, flag: str = "out_dir",
+            safe_flag: str = "safe_action") -> tuple[list[Path], Program, str]:
     _checked(to, precision, prefix)
     if min(sequences, steps) < 1:
         raise InputError(f"golden file: sequences {sequences} and steps {steps} must be >= 1")
+    if safe_action is not None:
+        check_safe_action(safe_action, policy.io.action_dim, safe_flag)  # before the env is built: fail fast
     out = prepare_out_dir(out_dir, flag)
     syntax = _syntax(to, precision, prefix)
-    prog = build_program(policy, syntax)
-    facts = header_facts(policy, prog, env_facts(policy), to, precision, prefix)
+    env = env_facts(policy)
+    safe, source = _safe_action(policy, env, safe_action, safe_flag)
+    prog = build_program(policy, syntax, safe)
+    facts = header_facts(policy, prog, env, to, precision, prefix, source)
     tolerance = TOLERANCE[precision]
     if to == "c":
         from .export_c import render
@@ -415,16 +523,25 @@ def _export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision:
         from .export_python import render as render_python
 
         files = render_python(prog, prefix, facts, tolerance)
-    from .export_golden import golden_actions, golden_observations, golden_text
+    from .export_golden import fault_observations, golden_observations, golden_steps, golden_text
 
-    obs = golden_observations(policy, sequences, steps, seed, float32=precision == "float")
+    single = precision == "float"
+    obs = golden_observations(policy, sequences, steps, seed, float32=single)
+    actions, codes = golden_steps(policy, obs, prog.safe_action)
+    obs, actions, codes = list(obs), list(actions), list(codes)
+    for seq in fault_observations(policy, seed, float32=single):
+        a, c = golden_steps(policy, seq[None], prog.safe_action)
+        obs.append(seq)
+        actions.append(a[0])
+        codes.append(c[0])
     about = [f"Policy content sha256: {policy.content_hash} ({policy.env_id}); export {prefix} "
              f"--to {to} --precision {precision}.",
-             f"{sequences} sequences x {steps} steps, numpy default_rng seed {seed}"
-             + ("; observations rounded to float (the export's precision)." if precision == "float" else ".")]
-    files[f"{prefix}_golden.txt"] = golden_text(obs, golden_actions(policy, obs), about)
+             f"Safe action (on a fault): {', '.join(map(repr, prog.safe_action))}.",
+             f"{sequences} sequences x {steps} steps, then 3 fault sequences; numpy default_rng seed {seed}"
+             + ("; observations rounded to float (the export's precision)." if single else ".")]
+    files[f"{prefix}_golden.txt"] = golden_text(obs, actions, codes, about)
     written = _write_export(out, files, flag)
-    return written, prog
+    return written, prog, source
 
 
 def check_command(to: str, prefix: str, out_dir: Path) -> str:
@@ -447,6 +564,10 @@ def configure_cli(parser: argparse.ArgumentParser) -> None:
                         help="C real type (default double; the Python export computes in double)")
     parser.add_argument("--prefix", default=DEFAULT_PREFIX, metavar="NAME",
                         help=f"C identifier naming files, macros, struct and functions (default {DEFAULT_PREFIX})")
+    parser.add_argument("--safe-action", metavar="V[,V...]",
+                        help="action on a fault (NaN/inf observation or network output): one value in [-1, 1] per "
+                        "action, in action order (default the env's: zero command, hover thrust for the drones); "
+                        "write --safe-action=-0.5,0 when the first value is negative")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
@@ -455,13 +576,16 @@ def run_cli(args: argparse.Namespace) -> int:
     from .policy import open_policy
 
     _checked(args.to, args.precision, args.prefix)
+    safe = None if args.safe_action is None else parse_safe_action(args.safe_action)
     policy = open_policy(args.policy)
-    files, prog = _export(policy, args.to, args.out, args.precision, args.prefix, GOLDEN_SEQUENCES, GOLDEN_STEPS,
-                          GOLDEN_SEED, "--out")
+    files, prog, source = _export(policy, args.to, args.out, args.precision, args.prefix, GOLDEN_SEQUENCES,
+                                  GOLDEN_STEPS, GOLDEN_SEED, safe, "--out", "--safe-action")
+    if source.startswith("zeros:"):
+        print(f"pretrial: warning: safe action {source}", file=sys.stderr)
     if args.json:
         emit_json({"files": [str(f) for f in files], "operations": prog.ops.as_dict(),
                    "memory_bytes": dict(prog.memory_bytes), "content_sha256": policy.content_hash,
-                   "cautions": list(CAUTIONS)})
+                   "safe_action": list(prog.safe_action), "cautions": list(CAUTIONS)})
         return 0
     lang = f"C99 ({args.precision})" if args.to == "c" else "Python"
     print(f"exported policy {policy.content_hash[:16]} ({policy.env_id}) as {lang} to {args.out}:")
@@ -469,6 +593,8 @@ def run_cli(args: argparse.Namespace) -> int:
         print(f"  {f}")
     print(f"per step: {describe_ops(prog)}")
     print(f"memory: {describe_memory(prog, 8 if args.precision == 'double' else 4)}")
+    print(f"on a fault (NaN/inf observation or network output): code 1 or 2 and the safe action "
+          f"{', '.join(map(_num, prog.safe_action))}, {source}")
     print("check on the target's toolchain:")
     print(f"  {check_command(args.to, args.prefix, Path(args.out))}")
     print_cautions()

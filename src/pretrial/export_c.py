@@ -12,7 +12,7 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError
-from .export_code import NetPiece, Program, Syntax
+from .export_code import FAULTS, NetPiece, Program, Syntax
 from .export_golden import MAGIC, VERSION
 
 _FLOAT_FUNCTIONS = ("exp", "tanh", "sin", "log", "fabs", "fmin", "fmax", "pow")
@@ -94,10 +94,15 @@ def _body(lines: list[str], indent: str = "    ") -> str:
     return "".join(f"{indent}{line}\n" for line in lines)
 
 
+def _fault_macros(up: str) -> str:
+    return "".join(f"#define {up}_{name} {value} /* {meaning} */\n" for name, value, meaning in FAULTS)
+
+
 def render_header(prog: Program, prefix: str, precision: str, facts: list[str]) -> str:
-    """``PREFIX.h``: the facts as a comment block, the size macros, the state struct and the pair."""
+    """``PREFIX.h``: the facts as a comment block, the size macros, the state struct, the safe action and the pair."""
     up = prefix.upper()
     real = precision
+    codes = ", ".join(f"{up}_{name} ({value})" for name, value, _ in FAULTS[1:])
     if prog.net.state:
         state = (f"/* Recurrent state: each block's node values from the previous step ({prog.blocks} block(s) x "
                  f"{prog.net.state} values, evaluation order). */\n"
@@ -116,8 +121,14 @@ def render_header(prog: Program, prefix: str, precision: str, facts: list[str]) 
         + state
         + "\n/* Clear the state: call before the first step of every episode. */\n"
         + f"void {prefix}_reset({prefix}_state *s);\n\n"
-        + f"/* One control period: obs[{up}_INPUTS] in the order above -> action[{up}_OUTPUTS] in [-1, 1]. */\n"
-        + f"void {prefix}_step({prefix}_state *s, const {real} *obs, {real} *action);\n\n"
+        + "/* What the step returns: 0, or a fault code (it then writes the safe action). */\n"
+        + _fault_macros(up)
+        + "\n/* The action every fault gives (the comment at the top says where the values came from). */\n"
+        + f"extern const {real} {prefix}_safe_action[{up}_OUTPUTS];\n\n"
+        + f"/* One control period: obs[{up}_INPUTS] in the order above -> action[{up}_OUTPUTS] in [-1, 1].\n"
+        + f" * Returns {up}_OK (0); or {codes}, having written\n"
+        + f" * {prefix}_safe_action to action and left the state as it was before the call. */\n"
+        + f"int {prefix}_step({prefix}_state *s, const {real} *obs, {real} *action);\n\n"
         + "#ifdef __cplusplus\n}\n#endif\n\n"
         + f"#endif /* {up}_H */\n"
     )
@@ -156,8 +167,41 @@ def _net_function(net: NetPiece, prefix: str, real: str) -> str:
             + _body(net.lines) + "}\n\n")
 
 
+def _fault_function(prog: Program, prefix: str, real: str, syntax: CSyntax) -> str:
+    """The safe-action table and the function every fault exit returns through."""
+    up = prefix.upper()
+    values = ",\n".join(f"    {syntax.literal(v)}" for v in prog.safe_action)
+    return (f"const {real} {prefix}_safe_action[{up}_OUTPUTS] = {{\n{values}\n}};\n\n"
+            "/* A fault: the safe action, and the code for the caller. */\n"
+            f"static int {prefix}_fault({real} *action, int code)\n{{\n"
+            "    int i;\n"
+            f"    for (i = 0; i < {up}_OUTPUTS; i++)\n"
+            f"        action[i] = {prefix}_safe_action[i];\n"
+            "    return code;\n}\n\n")
+
+
+def _guards(prog: Program, prefix: str) -> tuple[list[str], list[str]]:
+    """The step's two fault checks: before the network (observations) and after it (network outputs)."""
+    up = prefix.upper()
+    before = ["/* a NaN or infinite observation: the safe action, the state untouched */",
+              f"for (i = 0; i < {up}_INPUTS; i++)",
+              "    if (!isfinite(obs[i]))",
+              f"        return {prefix}_fault(action, {up}_FAULT_OBSERVATION);"]
+    restore = []
+    if prog.net.state:
+        before.append("kept = *s; /* restored if the network output is not finite: NaN must not enter the state */")
+        restore = ["        *s = kept;"]
+    after = ["/* a NaN or infinite network output (overflow): the safe action, the state as before this step */",
+             f"for (i = 0; i < {up}_OUTPUTS; i++)",
+             "    if (!isfinite(y[i])) {", *restore,
+             f"        return {prefix}_fault(action, {up}_FAULT_OUTPUT);",
+             "    }"]
+    return before, after
+
+
 def render_source(prog: Program, prefix: str, precision: str, syntax: CSyntax, provenance: str) -> str:
-    """``PREFIX.c``: the network function and the reset/step pair."""
+    """``PREFIX.c``: the network function, the safe action and the reset/step pair."""
+    up = prefix.upper()
     real = precision
     zero = syntax.literal(0.0)
     if prog.net.state:
@@ -176,8 +220,12 @@ def render_source(prog: Program, prefix: str, precision: str, syntax: CSyntax, p
         calls.append(f"{prefix}_net({state}{x}, {y});{note}")
     locals_ = [f"{real} x[{prog.inputs}]; /* network inputs */", f"{real} y[{prog.outputs}]; /* network outputs */"]
     locals_ += _declare(real, prog.map_outputs.scalars)
+    if prog.net.state:
+        locals_.append(f"{prefix}_state kept; /* the state before this step */")
+    locals_.append("int i;")
     if not prog.net.state:
         locals_.append("(void)s; /* feed-forward: nothing to keep */")
+    guard_in, guard_out = _guards(prog, prefix)
     return (
         f"/* {prefix}.c: generated by {provenance}; {prefix}.h says what it computes.\n"
         f" * Export again rather than edit: {prefix}_golden.txt checks exactly this arithmetic. */\n"
@@ -189,12 +237,16 @@ def render_source(prog: Program, prefix: str, precision: str, syntax: CSyntax, p
         "#if defined(__clang__)\n#pragma STDC FP_CONTRACT OFF\n#endif\n\n"
         + (_median_helper(prefix, real, syntax) if prog.net.medians else "")
         + _net_function(prog.net, prefix, real)
+        + _fault_function(prog, prefix, real, syntax)
         + f"void {prefix}_reset({prefix}_state *s)\n{{\n{reset}}}\n\n"
-        + f"void {prefix}_step({prefix}_state *s, const {real} *obs, {real} *action)\n{{\n"
+        + f"int {prefix}_step({prefix}_state *s, const {real} *obs, {real} *action)\n{{\n"
         + _body(locals_) + "\n"
+        + _body(guard_in)
         + _body(["/* network input = (obs - offset) * scale */", *prog.scale_inputs.lines])
         + _body(calls)
+        + _body(guard_out)
         + _body(["/* action = clip(output * scale + offset, -1, 1) */", *prog.map_outputs.lines])
+        + f"    return {up}_OK;\n"
         + "}\n"
     )
 
@@ -204,15 +256,16 @@ def render_check(prefix: str, precision: str, tolerance: float) -> str:
     up = prefix.upper()
     golden = f"{prefix}_golden.txt"
     return f"""/* {prefix}_check.c: generated by pretrial {__version__}; replays {golden} through {prefix}_step
- * and compares each action with the one pretrial's numpy policy computed for the same observations.
+ * and compares each action and fault code with the ones pretrial computed for the same observations
+ * (its numpy policy; the safe action and the code where an observation or network output is not finite).
  *
  * Build and run with the target's toolchain (plain C99: stdio, stdlib and math only), e.g.
  *   cc -std=c99 -O2 -o {prefix}_check {prefix}_check.c {prefix}.c -lm
  *   ./{prefix}_check [GOLDEN_FILE [TOLERANCE]]
  * GOLDEN_FILE defaults to {golden}; TOLERANCE, the largest absolute difference allowed, to {tolerance!r}
  * (this export computes in {precision}). Prints the largest absolute difference. Exit status: 0 within
- * the tolerance, 1 above it (a NaN on one side only counts as an infinite difference), 2 if the file
- * cannot be read or does not fit this export.
+ * the tolerance, 1 above it (a NaN on one side only, or a fault code that differs, counts as an infinite
+ * difference), 2 if the file cannot be read or does not fit this export.
  */
 #include <math.h>
 #include <stdio.h>
@@ -235,9 +288,9 @@ int main(int argc, char **argv)
     double value, diff, worst = 0.0;
     {prefix}_real obs[{up}_INPUTS], action[{up}_OUTPUTS];
     {prefix}_state state;
-    int c, version, inputs, outputs, sequences, steps, q, t, i, tail = 0;
-    int worst_q = -1, worst_t = -1, worst_i = -1;
-    long rows = 0;
+    int c, version, inputs, outputs, sequences, steps, q, t, i, code, want, tail = 0;
+    int worst_q = -1, worst_t = -1, worst_i = -1, code_q = -1, code_t = -1, code_got = 0, code_want = 0;
+    long rows = 0, faults = 0, code_diffs = 0;
     char *end;
     FILE *f;
 
@@ -274,7 +327,7 @@ int main(int argc, char **argv)
                     return fail(f, path, "missing or bad observation value (truncated or damaged)");
                 obs[i] = ({prefix}_real)value;
             }}
-            {prefix}_step(&state, obs, action);
+            code = {prefix}_step(&state, obs, action);
             for (i = 0; i < {up}_OUTPUTS; i++) {{
                 if (fscanf(f, "%lf", &value) != 1)
                     return fail(f, path, "missing or bad action value (truncated or damaged)");
@@ -289,17 +342,32 @@ int main(int argc, char **argv)
                     worst_i = i;
                 }}
             }}
+            if (fscanf(f, "%d", &want) != 1)
+                return fail(f, path, "missing or bad fault code (truncated or damaged)");
+            faults += want != 0;
+            if (code != want) {{
+                if (code_diffs++ == 0) {{
+                    code_q = q;
+                    code_t = t;
+                    code_got = code;
+                    code_want = want;
+                }}
+                worst = HUGE_VAL;
+            }}
             rows++;
         }}
     }}
     if (fscanf(f, " end%n", &tail) == EOF || tail == 0)
         return fail(f, path, "missing 'end' line (truncated or damaged)");
     fclose(f);
-    printf("%s: %ld steps in %d sequences, largest absolute difference %.6g (tolerance %.3g)",
-           path, rows, sequences, worst, tolerance);
-    if (worst_q >= 0)
+    printf("%s: %ld steps in %d sequences (%ld with a fault code), largest absolute difference %.6g "
+           "(tolerance %.3g)", path, rows, sequences, faults, worst, tolerance);
+    if (worst_q >= 0 && code_diffs == 0)
         printf(" at sequence %d step %d action %d", worst_q, worst_t, worst_i);
     printf("\\n");
+    if (code_diffs > 0)
+        printf("fault code differs on %ld steps, first at sequence %d step %d: returned %d, golden file %d\\n",
+               code_diffs, code_q, code_t, code_got, code_want);
     if (worst > tolerance) {{
         printf("FAILED: the exported step does not reproduce the golden actions\\n");
         return 1;

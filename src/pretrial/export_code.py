@@ -19,6 +19,12 @@ source is a never-evaluated recurrent node, the aggregate of a node without
 inputs) are folded with the same double arithmetic. Every product that feeds
 an addition is a statement of its own, so a C compiler that contracts within
 expressions only (the C99 rule) cannot fuse it into a multiply-add.
+
+Around the three pieces the renderers put the fault guard (:data:`FAULTS`):
+a NaN or infinite observation, or a network output that is NaN or infinite,
+gives the :attr:`Program.safe_action` and a nonzero code, and leaves the
+recurrent state as it was. The guard's finiteness tests are counted in
+:attr:`Ops.finite_checks`.
 """
 
 from __future__ import annotations
@@ -37,6 +43,12 @@ from .network import _SELU_LAMBDA, _SELU_LAMBDA_ALPHA, ACTIVATIONS, AGGREGATIONS
 _EMPTY = {"sum": 0.0, "product": 1.0}
 #: counted math library functions (fmin/fmax count as comparisons, fabs as nothing: a sign-bit clear)
 MATH_FUNCTIONS = ("exp", "tanh", "sin", "log", "pow")
+#: the step's return codes: (name suffix, value, meaning); 0 is a computed action, the rest give the safe action
+FAULTS = (
+    ("OK", 0, "the action was computed"),
+    ("FAULT_OBSERVATION", 1, "an observation value is NaN or infinite"),
+    ("FAULT_OUTPUT", 2, "a network output is NaN or infinite (e.g. overflow) although the observation is finite"),
+)
 
 
 @dataclass
@@ -47,7 +59,9 @@ class Ops:
     of the clamps, branch conditions and the NaN-aware ordering tests of a
     median sort (at most n(n-1)/2 for n values); ``math_calls`` are the
     :data:`MATH_FUNCTIONS` calls; ``activations`` the node activations
-    evaluated, ``activation_kinds`` the same per function name.
+    evaluated, ``activation_kinds`` the same per function name;
+    ``finite_checks`` the NaN/infinity tests of the fault guard (one per
+    observation and one per network output).
     """
 
     multiplies: int = 0
@@ -57,8 +71,9 @@ class Ops:
     math_calls: int = 0
     activations: int = 0
     activation_kinds: dict[str, int] = field(default_factory=dict)
+    finite_checks: int = 0
 
-    _COUNTS = ("multiplies", "divisions", "adds", "comparisons", "math_calls", "activations")
+    _COUNTS = ("multiplies", "divisions", "adds", "comparisons", "math_calls", "activations", "finite_checks")
 
     def plus(self, other: Ops, times: int = 1) -> Ops:
         """``self + times * other``."""
@@ -430,30 +445,39 @@ class Program:
     map_outputs: Piece
     ops: Ops
     memory_bytes: dict[str, int]
+    #: the action a fault gives, as the target's real type holds it
+    safe_action: tuple[float, ...] = ()
 
 
-def build_program(policy: Any, syntax: Syntax) -> Program:
+def build_program(policy: Any, syntax: Syntax, safe_action: Any = None) -> Program:
     """The statements of ``policy``'s step in ``syntax`` and what one step costs.
+
+    ``safe_action`` (one value per action, checked by the caller; default
+    zeros) is what a fault gives.
 
     Memory: ``constants`` is the distinct numeric literals times the size of
     a real (a compiler may keep fewer as immediates, or repeat some per
-    function); ``state`` the recurrent values of every block (a feed-forward
-    policy's state struct is a 1-byte placeholder); ``stack`` the locals of
-    the step and of one network call.
+    function) plus the safe-action table; ``state`` the recurrent values of
+    every block (a feed-forward policy's state struct is a 1-byte
+    placeholder); ``stack`` the locals of the step (with the copy of the
+    recurrent state a fault restores) and of one network call.
     """
     io = policy.io
     inputs = input_piece(io.obs_offset, io.obs_scale, syntax)
     net = net_piece(policy.network.spec, syntax)
     outputs = output_piece(io.action_scale, io.action_offset, syntax)
     ops = inputs.ops.plus(net.ops, io.blocks).plus(outputs.ops)
+    ops.finite_checks += io.obs_dim + io.action_dim  # the guard: every observation, every network output
+    safe = tuple(syntax.round(v) for v in (np.zeros(io.action_dim) if safe_action is None else safe_action))
     size = syntax.real_bytes
     literals = inputs.literals | net.literals | outputs.literals
+    state = io.blocks * net.state * size
     step_locals = io.obs_dim + io.action_dim + 1  # x, y, a
     net_locals = len(net.scalars) + net.medians
     memory = {
-        "constants": len(literals) * size,
-        "state": io.blocks * net.state * size if net.state else 1,
-        "stack": (step_locals + net_locals) * size,
+        "constants": (len(literals) + len(safe)) * size,
+        "state": state if net.state else 1,
+        "stack": (step_locals + net_locals) * size + state,
     }
     return Program(io.blocks, io.obs_dim, io.action_dim, io.num_inputs, io.num_outputs, inputs, net, outputs,
-                   ops, memory)
+                   ops, memory, safe)

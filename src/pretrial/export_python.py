@@ -1,15 +1,18 @@
 """A policy as one dependency-free Python module (the Python half of ``pretrial export``).
 
 The module imports :mod:`math` only and computes in Python floats (IEEE
-double), mirroring the C pair: ``INPUTS``, ``OUTPUTS``, ``new_state()``,
-``PREFIX_reset(state)``, ``PREFIX_step(state, obs) -> list``, plus
+double), mirroring the C pair: ``INPUTS``, ``OUTPUTS``, ``SAFE_ACTION``, the
+fault codes ``OK``, ``FAULT_OBSERVATION``, ``FAULT_OUTPUT``, ``new_state()``,
+``PREFIX_reset(state)``, ``PREFIX_step(state, obs, action) -> code`` (as C:
+fills ``action``, returns the fault code) or ``PREFIX_step(state, obs) ->
+list`` (the earlier form: the action, the code dropped), plus
 ``check_golden(path)`` and ``python PREFIX.py [GOLDEN [TOLERANCE]]`` to replay
 the golden file.
 """
 
 from __future__ import annotations
 
-from .export_code import Program, Syntax
+from .export_code import FAULTS, Program, Syntax
 from .export_golden import MAGIC, VERSION
 
 _NAMES = {"exp": "math.exp", "tanh": "math.tanh", "sin": "math.sin", "log": "math.log", "fabs": "abs",
@@ -106,10 +109,15 @@ def render(prog: Program, prefix: str, facts: list[str], tolerance: float) -> di
         f"    import {prefix}",
         f"    state = {prefix}.new_state()",
         f"    {prefix}.{prefix}_reset(state)                 # before the first step of every episode",
-        f"    action = {prefix}.{prefix}_step(state, obs)    # once per control period",
+        f"    action = [0.0] * {prefix}.OUTPUTS",
+        f"    code = {prefix}.{prefix}_step(state, obs, action)  # once per control period; 0 or a fault code",
         "",
-        f"``obs`` is a sequence of INPUTS = {prog.inputs} numbers in the observation order above; the result is",
-        f"a list of OUTPUTS = {prog.outputs} actions in [-1, 1]. Computes in Python floats (IEEE double).",
+        f"``obs`` is a sequence of INPUTS = {prog.inputs} numbers in the observation order above; ``action``, a list",
+        f"of OUTPUTS = {prog.outputs} numbers, receives the actions in [-1, 1]; the step returns OK (0), or",
+        "FAULT_OBSERVATION (1) / FAULT_OUTPUT (2) having written SAFE_ACTION and left the state as it was.",
+        f"``action = {prefix}_step(state, obs)`` (no action list) returns a new list instead and drops the code,",
+        "as a C caller ignoring the return value: a fault still gives the safe action. Computes in Python floats",
+        "(IEEE double).",
         f"``check_golden(path)`` or ``python {prefix}.py [{golden} [TOLERANCE]]`` replays the golden file",
         "and reports the largest absolute difference from pretrial's numpy policy.",
     ]
@@ -121,6 +129,13 @@ def render(prog: Program, prefix: str, facts: list[str], tolerance: float) -> di
     else:
         new_state = "[]"
         state_doc = "Feed-forward: the policy keeps no state, so the list stays empty."
+    faults = "".join(f"{name} = {value}  # {meaning}\n" for name, value, meaning in FAULTS)
+    safe = repr(tuple(float(v) for v in prog.safe_action))
+    if prog.net.state:
+        keep = ["kept = [list(values) for values in state]  # restored if the network output is not finite"]
+        restore = ["    for values, old in zip(state, kept):", "        values[:] = old"]
+    else:
+        keep, restore = [], []
     net_args = "v, x" if prog.net.state else "x"
     net_pre = [f"y = [0.0] * {prog.net_outputs}"]
     if prog.net.medians:
@@ -139,7 +154,10 @@ import math
 
 INPUTS = {prog.inputs}
 OUTPUTS = {prog.outputs}
-
+#: the action every fault gives (the docstring above says where the values came from)
+SAFE_ACTION = {safe}
+#: what the step returns: 0, or a fault code (it then writes SAFE_ACTION)
+{faults}
 
 def new_state():
     """A fresh state for {prefix}_step. {state_doc}"""
@@ -158,21 +176,49 @@ def _net({net_args}):
 {_block(net_pre)}{_block(prog.net.lines)}    return y
 
 
-def {prefix}_step(state, obs):
-    """One control period: obs (INPUTS numbers) -> list of OUTPUTS actions in [-1, 1]."""
+def {prefix}_step(state, obs, action=None):
+    """One control period: obs (INPUTS numbers) -> OUTPUTS actions in [-1, 1].
+
+    With ``action`` (a list of OUTPUTS numbers): fills it and returns OK (0), or FAULT_OBSERVATION (1) for a NaN
+    or infinite observation / FAULT_OUTPUT (2) for a NaN or infinite network output, having written SAFE_ACTION
+    and left the state as it was before the call. Without: returns a new list of the actions (the code dropped).
+    """
     if len(obs) != INPUTS:
         raise ValueError(f"expected {{INPUTS}} observation values, got {{len(obs)}}")
-    obs = [float(value) for value in obs]
-    x = [0.0] * INPUTS
+    if action is None:
+        action = [0.0] * OUTPUTS
+        _step(state, [float(value) for value in obs], action)
+        return action
+    if len(action) != OUTPUTS:
+        raise ValueError(f"expected a list of {{OUTPUTS}} action values, got {{len(action)}}")
+    return _step(state, [float(value) for value in obs], action)
+
+
+def _fault(action, code):
+    """A fault: the safe action, and the code for the caller."""
+    action[:] = SAFE_ACTION
+    return code
+
+
+def _step(state, obs, action):
+    # a NaN or infinite observation: the safe action, the state untouched
+    if not all(map(math.isfinite, obs)):
+        return _fault(action, FAULT_OBSERVATION)
+{_block(keep)}    x = [0.0] * INPUTS
     # network input = (obs - offset) * scale
 {_block(prog.scale_inputs.lines)}    y = {" + ".join(calls)}
-    action = [0.0] * OUTPUTS
+    # a NaN or infinite network output (overflow): the safe action, the state as before this step
+    if not all(map(math.isfinite, y)):
+{_block(restore, "    ")}        return _fault(action, FAULT_OUTPUT)
     # action = clip(output * scale + offset, -1, 1)
-{_block(prog.map_outputs.lines)}    return action
+{_block(prog.map_outputs.lines)}    return OK
 
 
 def check_golden(path="{golden}"):
-    """Replay a golden file through {prefix}_step; return (largest absolute difference, steps replayed)."""
+    """Replay a golden file through {prefix}_step; return (largest absolute difference, steps replayed).
+
+    A NaN on one side only, or a fault code that differs from the file's, counts as an infinite difference.
+    """
     with open(path, encoding="utf-8") as f:
         words = [w for line in f if not line.startswith("#") for w in line.split()]
     head = ["{MAGIC}", "{VERSION}", "inputs", str(INPUTS), "outputs", str(OUTPUTS), "sequences"]
@@ -187,10 +233,14 @@ def check_golden(path="{golden}"):
         {prefix}_reset(state)
         for _ in range(steps):
             row = [float(w) for w in words[at : at + INPUTS + OUTPUTS]]
-            if len(row) != INPUTS + OUTPUTS:
+            if len(row) != INPUTS + OUTPUTS or not words[at + INPUTS + OUTPUTS :]:
                 raise ValueError(f"{{path}}: truncated")
-            at += INPUTS + OUTPUTS
-            for got, want in zip({prefix}_step(state, row[:INPUTS]), row[INPUTS:]):
+            want_code = int(words[at + INPUTS + OUTPUTS])
+            at += INPUTS + OUTPUTS + 1
+            action = [0.0] * OUTPUTS
+            if {prefix}_step(state, row[:INPUTS], action) != want_code:
+                worst = math.inf
+            for got, want in zip(action, row[INPUTS:]):
                 if got != got or want != want:
                     diff = 0.0 if (got != got and want != want) else math.inf
                 else:
