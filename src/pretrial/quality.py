@@ -55,7 +55,8 @@ from pretrial_envs.core import SATURATION_LEVEL, EpisodeMetric, Physics
 QUALITY_WORDS = ("chatter", "saturated", "not_settled", "growing", "offset")
 
 #: defaults (our choices, documented in the README; common practice for a first hardware trial)
-DEFAULT_SATURATED_FRACTION = 0.5  # "not saturated most of the time": a point-to-point move saturates while it accelerates
+#: "not saturated most of the time": a point-to-point move saturates while it accelerates
+DEFAULT_SATURATED_FRACTION = 0.5
 DEFAULT_CHATTER_HZ = 5.0
 DEFAULT_CHATTER_LEVEL = 0.5
 DEFAULT_SETTLE_WINDOW = 0.25

@@ -228,7 +228,7 @@ def run_episodes(
             tracker.update(k, tr.state, action, tr.hold, params, None if finished is None else active)
         if slack is not None:
             with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-                now = physics.constraint_slack(tr.state, physics.actuate(action, params), params)
+                now = physics.constraint_slack(tr.state, loop.physical(action, params), params)
             slack = keep_finished(np.fmin(slack, now), slack)
             best_hold = keep_finished(np.maximum(best_hold, tr.hold), best_hold)
         if finished is None:

@@ -619,14 +619,17 @@ def integrator_check(c: Campaign, seed: int) -> dict[str, Any]:
     if "integrator" in base.options():
         other = "euler" if base.integrator == "rk4" else "rk4"
         variants.append(outcome(rebuilt(substeps=base.substeps * 4, integrator=other)))
+    # one borderline episode flipping (e.g. a steady offset right at its limit) is not a policy exploiting
+    # the solver: the rate must move by more than the tolerance and by more than one episode
+    rate_tol = max(INTEGRATOR_RATE_TOLERANCE, 1.5 / k)
     moved = [v for v in variants
-             if abs(v["success_rate"] - nominal["success_rate"]) > INTEGRATOR_RATE_TOLERANCE
+             if abs(v["success_rate"] - nominal["success_rate"]) > rate_tol
              or abs(v["mean_score"] - nominal["mean_score"]) > INTEGRATOR_SCORE_TOLERANCE]
     note = ("success rate and score unchanged with a finer step and the other integrator" if not moved else
             "results move with the integration step or method: the policy may exploit the solver "
             "(check its behaviour with a finer step before trusting other numbers)")
     return {"nominal": nominal, "variants": variants, "flagged": bool(moved), "episodes": k, "seed": seed,
-            "tolerance": {"success_rate": INTEGRATOR_RATE_TOLERANCE, "mean_score": INTEGRATOR_SCORE_TOLERANCE},
+            "tolerance": {"success_rate": rate_tol, "mean_score": INTEGRATOR_SCORE_TOLERANCE},
             "note": note}
 
 
