@@ -67,7 +67,7 @@ class Vary:
     mean: float | None = None
     std: float | None = None
     given_as: str = "physical"
-    #: the box Monte Carlo, worst case, sensitivity and the map draw from (default: the range)
+    #: the box Monte Carlo, worst case and sensitivity draw from (default: the range; the map spans the range)
     box_low: float = math.nan
     box_high: float = math.nan
 
