@@ -685,8 +685,8 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
             for req_name, want in wanted:
                 if want is not None:
                     out.append({"name": f"{req_name} ({title})", "required": want,
-                                "measured": "UNSTABLE: the nominal linearized loop has a pole in the right half "
-                                            "plane (outside the unit circle when sampled)", "pass": False})
+                                "measured": "UNSTABLE (an unstable pole in the nominal linearized loop)",
+                                "pass": False})
             continue
         if not details["linearizable"]:
             reason = f"not linearizable: {details['reason']}"
