@@ -1,0 +1,147 @@
+"""Training for the verdict: a sweep plan as the training distribution, risk-aware fitness.
+
+A plan states what the controller will be judged on: the scenario (env options,
+physics overrides, start ranges, horizon), the dispersions of ``[[vary]]`` and the
+loop-quality limits of ``[require.quality]``. :class:`PlanDistribution` draws
+training scenarios from exactly those dispersions (with each name's own
+distribution), from streams keyed by the *run's* seed, so training never sees the
+samples the sweep will verify on (those come from the plan's own seed).
+
+:func:`objective_fitness` turns a generation's episodes into one number per
+genome:
+
+* ``"mean"``: the mean episode return (the env's shaped reward);
+* ``"cvar:A"``: the mean return of the worst ``A`` share of episodes
+  (conditional value at risk; ``A`` in (0, 1]): a genome is as good as its bad days;
+* ``"success_lower_bound"``: the Wilson 95% lower bound of the success rate (loop
+  quality included), ties broken by the mean episode score (in [-1, 1], scaled by
+  1e-3 so it never outweighs one more success).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from pretrial_envs.core import Physics
+
+from .perturb import CONTROL_PERIOD, nominal_value
+from .plan import Z2, Vary
+from .rollout import Scenarios, keyed_scenarios
+
+OBJECTIVES = ("mean", "cvar:A", "success_lower_bound")
+
+#: weight of the mean episode score in the success-lower-bound objective (a tie-breaker only)
+SCORE_TIEBREAK = 1e-3
+
+
+@dataclass(frozen=True)
+class Objective:
+    """A parsed ``[task] objective``: ``kind`` is "mean", "cvar" or "success_lower_bound"."""
+
+    kind: str
+    alpha: float = 1.0
+
+    @property
+    def text(self) -> str:
+        return f"cvar:{self.alpha:g}" if self.kind == "cvar" else self.kind
+
+    @property
+    def needs_score(self) -> bool:
+        return self.kind == "success_lower_bound"
+
+
+def parse_objective(text: str) -> Objective:
+    """``"mean"``, ``"cvar:0.2"`` or ``"success_lower_bound"`` -> :class:`Objective`.
+
+    Raises ValueError naming the value and the valid forms.
+    """
+    valid = "mean, cvar:A (0 < A <= 1, e.g. cvar:0.2) or success_lower_bound"
+    if not isinstance(text, str):
+        raise ValueError(f"{text!r} is not one of {valid}")
+    if text in ("mean", "success_lower_bound"):
+        return Objective(text)
+    if text.startswith("cvar:"):
+        try:
+            alpha = float(text[5:])
+        except ValueError:
+            raise ValueError(f"{text!r}: the share after cvar: is not a number ({valid})") from None
+        if not (0 < alpha <= 1):
+            raise ValueError(f"{text!r}: the share must be in (0, 1] ({valid})")
+        return Objective("cvar", alpha)
+    raise ValueError(f"{text!r} is not one of {valid}")
+
+
+def wilson_lower(successes: np.ndarray, n: int) -> np.ndarray:
+    """Wilson (1927) 95% lower bound of ``successes`` out of ``n``, elementwise."""
+    p = np.asarray(successes, dtype=float) / n
+    centre = p + Z2 / (2 * n)
+    half = math.sqrt(Z2) * np.sqrt(p * (1 - p) / n + Z2 / (4 * n * n))
+    return np.maximum((centre - half) / (1 + Z2 / n), 0.0)
+
+
+def objective_fitness(objective: Objective, returns: np.ndarray, success: np.ndarray,
+                      score: np.ndarray | None = None) -> np.ndarray:
+    """One fitness per genome from (G, S) episode returns, successes and (for the lower bound) scores."""
+    returns = np.asarray(returns, dtype=float)
+    s = returns.shape[1]
+    if objective.kind == "mean":
+        return returns.mean(axis=1)
+    if objective.kind == "cvar":
+        k = max(1, math.ceil(objective.alpha * s - 1e-9))
+        return np.sort(returns, axis=1)[:, :k].mean(axis=1)
+    if score is None:
+        raise ValueError("success_lower_bound needs the episode scores")
+    lower = wilson_lower(np.asarray(success).sum(axis=1), s)
+    return lower + SCORE_TIEBREAK * np.asarray(score, dtype=float).mean(axis=1)
+
+
+# --------------------------------------------------------------------------- #
+# the plan's dispersions as a training distribution
+# --------------------------------------------------------------------------- #
+def unit_to_value(v: Vary, u: np.ndarray) -> np.ndarray:
+    """Map uniform draws ``u`` in [0, 1) onto ``v``'s dispersion with its distribution (as the sweep draws)."""
+    lo, hi = v.box_low, v.box_high
+    if v.distribution == "loguniform":
+        return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
+    if v.distribution == "normal":
+        from scipy.stats import truncnorm
+
+        a, b = (lo - v.mean) / v.std, (hi - v.mean) / v.std
+        return truncnorm.ppf(u, a, b, loc=v.mean, scale=v.std)
+    return lo + u * (hi - lo)
+
+
+@dataclass(frozen=True)
+class PlanDistribution:
+    """The plan's ``[[vary]]`` dispersions as a training distribution (picklable, small).
+
+    ``control_period_s`` is left out of training: a batch runs at one control
+    period (the sweep still varies it).
+    """
+
+    vary: tuple[Vary, ...]
+    nominal: Mapping[str, float]
+
+    @classmethod
+    def from_plan(cls, vary: Sequence[Vary], physics: Physics, params: Mapping[str, float]) -> PlanDistribution:
+        kept = tuple(v for v in vary if v.name != CONTROL_PERIOD)
+        return cls(kept, {v.name: nominal_value(physics, params, v.name) for v in kept})
+
+    def draw(self, physics: Physics, n: int, seed: int, params: np.ndarray, ramp: float = 1.0) -> Scenarios:
+        """``n`` scenarios drawn from the dispersions, a pure function of ``seed``.
+
+        ``ramp`` in [0, 1] shrinks every draw toward its nominal value (the
+        curriculum of ``randomize_ramp``); 1 is the plan's full distribution.
+        """
+        rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
+        u = rng.random((n, len(self.vary)))  # one column per name, in plan order
+        settings = {}
+        for j, v in enumerate(self.vary):
+            x = unit_to_value(v, u[:, j])
+            c = min(max(self.nominal[v.name], v.box_low), v.box_high)
+            settings[v.name] = c + ramp * (x - c) if ramp < 1.0 else x
+        return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
