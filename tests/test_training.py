@@ -78,3 +78,42 @@ def test_plan_distribution_follows_the_plan_and_its_own_streams():
     i = physics.param_table.index("pole_mass")
     nominal = dist.nominal["pole_mass"]
     np.testing.assert_allclose(half.params[:, i] - nominal, 0.5 * (sc.params[:, i] - nominal), rtol=1e-12)
+
+
+class _Serial:
+    workers = 1
+
+    def map(self, fn, items):
+        return [fn(i) for i in items]
+
+
+class _Scaled:
+    """The LQR command times a factor (below the loop's lower gain margin the loop is unstable)."""
+
+    feed_forward = True
+    n_policies = 1
+
+    def __init__(self, inner, factor):
+        self.inner, self.factor = inner, factor
+
+    def reset(self, batch_size):
+        self.inner.reset(batch_size)
+
+    def act(self, obs):
+        return self.factor * self.inner.act(obs)
+
+
+def test_short_verdict_agrees_with_the_linear_loop():
+    from pretrial.sweep_run import controlled
+    from pretrial.training import short_verdict
+
+    ctl = controlled("lqr", str(ROOT / "configs" / "sweeps" / "cartpole.toml"))
+    good = short_verdict(ctl.plan, ctl.physics, ctl.base_params, ctl.controller, _Serial(), 128, 99)
+    # the LQR meets the plan (tests/test_quality.py, the sweep itself): the short form must say so too
+    assert good["verdict"] == "pass" and good["met"] == good["judged"] >= 5
+    assert good["montecarlo"]["samples"] == 128
+    assert not any(r["name"].startswith("margin ") for r in good["requirements"])
+    # at a tenth of its gain the sampled loop is unstable (lower gain margin 0.24, from pretrial.linear,
+    # checked against python-control in tests/test_linear.py)
+    bad = short_verdict(ctl.plan, ctl.physics, ctl.base_params, _Scaled(ctl.controller, 0.1), _Serial(), 64, 99)
+    assert bad["verdict"] == "fail" and bad["met"] < good["met"]

@@ -145,3 +145,57 @@ class PlanDistribution:
             c = min(max(self.nominal[v.name], v.box_low), v.box_high)
             settings[v.name] = c + ramp * (x - c) if ramp < 1.0 else x
         return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
+
+
+# --------------------------------------------------------------------------- #
+# a short form of the plan, to choose the champion by
+# --------------------------------------------------------------------------- #
+def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], policy, executor, samples: int,
+                  seed: int) -> dict:
+    """The plan's verdict predicted from a short run: Monte Carlo on fresh draws, the linear loops, quality.
+
+    Margins, worst case, sensitivity and the integrator check are left to the
+    sweep (too costly per finalist); their requirement rows are not counted here.
+
+    Returns
+    -------
+    dict
+        ``requirements`` (rows as the sweep writes them), ``met`` and ``judged``
+        (counts of passing and applicable rows), ``verdict`` ("pass"/"fail") and
+        ``montecarlo`` (samples, successes, success_rate, ci95, failure_modes).
+    """
+    from .sweep import Campaign, linear_analysis, requirements, verdict, wilson_interval
+
+    c = Campaign(physics, policy, dict(base_params), plan, executor, "policy")
+    dist = PlanDistribution.from_plan(plan.vary, physics, base_params)
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
+    u = rng.random((samples, len(dist.vary)))
+    values = {v.name: unit_to_value(v, u[:, j]) for j, v in enumerate(dist.vary)}
+    batch = c.evaluate(values, np.full(samples, seed, dtype=np.uint64), np.arange(samples))
+    k = int(batch.success.sum())
+    lo, hi = wilson_interval(k, samples)
+    names, counts = np.unique(batch.failure[batch.failure != ""], return_counts=True)
+    res: dict = {"montecarlo": {"samples": samples, "successes": k, "success_rate": k / samples,
+                                "ci95": [float(lo), float(hi)],
+                                "failure_modes": {str(a): int(b) for a, b in zip(names, counts, strict=True)}},
+                 "linear": None, "linear_sampled": None, "linear_details": {"continuous": None, "sampled": None}}
+    for key, sampled in (("linear", False), ("linear_sampled", True)):
+        if key in plan.analyses:
+            res[key], res["linear_details"]["sampled" if sampled else "continuous"] = linear_analysis(c, sampled)
+    rows = [r for r in requirements(plan, res) if not r["name"].startswith("margin ")]
+    # A short run cannot show a high rate at 95% confidence; predict the plan's own test instead: the
+    # lower bound the sweep's sample count would give at the rate measured here.
+    full = int(plan.budgets.get("montecarlo_samples", samples))
+    predicted = float(wilson_lower(np.array([k / samples * full]), full)[0])
+    for r in rows:
+        if r["name"].startswith("success rate (Monte Carlo"):
+            r.update(name=f"success rate (Monte Carlo, Wilson 95% lower bound predicted at {full} samples from "
+                          f"{samples})", measured=predicted, passed=predicted >= plan.required_success_rate)
+            r["pass"] = r.pop("passed")
+    for r in rows:  # JSON-friendly, as champion.json keeps them
+        for key in ("required", "measured", "point"):
+            if isinstance(r.get(key), (np.floating, np.integer)):
+                r[key] = r[key].item()
+    judged = [r for r in rows if r["pass"] is not None]
+    return {"requirements": rows, "met": sum(bool(r["pass"]) for r in judged), "judged": len(judged),
+            "verdict": verdict(rows), "montecarlo": res["montecarlo"]}
