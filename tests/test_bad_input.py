@@ -8,7 +8,6 @@ another kind of file) are crossed with every argument that names a file.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import shutil
 from collections.abc import Callable
@@ -446,8 +445,8 @@ def test_resume_into_another_out_is_refused(capsys, work):
 
 def test_neat_settings_it_cannot_breed_with(capsys, work):
     # Every genome its own species (a tiny compatibility threshold) needs pop_size >=
-    # species x min_species_size, which neat-python refuses at the first breeding: one line
-    # naming the config and the keys to change, and the run directory left whole.
+    # species x min_species_size, which neat-python refuses at the first breeding: the dry run
+    # of generation 0 finds it, so one line naming the config and the key, and no run directory.
     config = work / "crowded.toml"
     config.write_text(
         '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n'
@@ -455,6 +454,148 @@ def test_neat_settings_it_cannot_breed_with(capsys, work):
     )
     line = refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
     assert "crowded.toml" in line and "compatibility_threshold" in line and "--resume" not in line
-    manifest = json.loads((work / "run" / "manifest.json").read_text())
-    for rel, digest in manifest["checkpoints"].items():
-        assert hashlib.sha256((work / "run" / "checkpoints" / rel).read_bytes()).hexdigest() == digest
+    assert "population size 6 " in line  # neat-python's words about the user's settings
+    assert not (work / "run").exists()
+
+
+# --------------------------------------------------------------------------- #
+# hardening round two: extreme values, odd structures, neat settings, outputs that would replace files
+# --------------------------------------------------------------------------- #
+@pytest.mark.parametrize("argv, needle", [
+    (["envs", "CartPole-v0", "--option", "time_limit=1e308"], "time_limit"),
+    (["envs", "CartPole-v0", "--option", "dt=1e-320"], "dt"),
+    (["envs", "CartPole-v0", "--option", "dt=1e-300"], "dt"),
+    (["envs", "CartPole-v0", "--option", "substeps=1000000"], "substeps"),
+    (["envs", "CartPole-v0", "--option", "time_limit=1e6"], "integration steps per episode"),
+    (["envs", "CartPole-v0", "--option", "start_spread=5"], "start_spread"),
+    (["replay", "lqr", "--env", "CartPole-v0", "--set", "control_period_s=1e-320"], "control_period_s"),
+    (["replay", "lqr", "--env", "CartPole-v0", "--set", "control_period_s=1e-300"], "control_period_s"),
+    (["replay", "lqr", "--env", "CartPole-v0", "--set", "control_period_s=1e308"], "control_period_s"),
+    (["replay", "lqr", "--env", "CartPole-v0", "--seed", "18446744073709551616"], "--seed"),
+    (["evolve", str(CONFIG), "--seed", "18446744073709551616"], "--seed"),
+])
+def test_extreme_but_finite_values(capsys, work, argv, needle):
+    before = snapshot(work)
+    assert needle in refused(capsys, argv)
+    assert snapshot(work) == before
+
+
+def _config_with(tmp: Path, text: str) -> Path:
+    p = tmp / "run.toml"
+    p.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n' + text)
+    return p
+
+
+@pytest.mark.parametrize("text, needle", [
+    ("[task.options]\ndt = 1e-320\n", "dt"),
+    ("[task.options]\ntime_limit = 1e308\n", "time_limit"),
+    ("[task.options]\nstart_spread = 5\n", "start_spread"),
+    ("[run]\nseed = 18446744073709551616\n", "run.seed"),
+    ("[neat]\npop_size = 0\n", "neat.pop_size"),
+    ("[neat]\npop_size = 1\n", "neat.pop_size"),
+    ("[neat]\nelitism = 1000\n", "neat.elitism"),
+    ('[neat]\nactivation_options = ["tanh", "bogus"]\n', "neat.activation_options"),
+    ('[neat]\nactivation_options = "tanh bogus"\nactivation_mutate_rate = 0.5\n', "neat.activation_options"),
+    ('[neat]\naggregation_options = ["sum", "average"]\n', "neat.aggregation_options"),
+    ("[neat]\nnum_hidden = -1\n", "neat.num_hidden"),
+])
+def test_bad_config_values_write_nothing(capsys, work, text, needle):
+    config = _config_with(work, text)
+    before = snapshot(work)
+    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--workers", "1", "--quiet"])
+    assert "run.toml" in line and needle in line, line
+    assert snapshot(work) == before  # no run directory
+
+
+def test_config_horizon_has_the_plans_upper_limit(capsys, work):
+    config = work / "long.toml"
+    config.write_text('[task]\nenv = "pretrial/CartPole-v0"\nhorizon = 1e308\n')
+    assert "task.horizon" in refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    assert not (work / "run").exists()
+
+
+PLAN_EDITS_ROUND_TWO = [
+    ("horizon = 10.0", "horizon = 1e308", "horizon"),
+    ("seed = 1", "seed = 18446744073709551616", "seed"),
+    ('map = ["pole_mass", "actuator_delay_s"]', "map = [[1], [2]]", "analysis.map"),
+    ('map = ["pole_mass", "actuator_delay_s"]', 'map = [{a = 1}, "pole_mass"]', "analysis.map"),
+    ("[scenario.start]", "[scenario.options]\ndt = 1e-320\n\n[scenario.start]", "dt"),
+]
+
+
+@pytest.mark.parametrize("old, new, needle", PLAN_EDITS_ROUND_TWO, ids=[e[1] for e in PLAN_EDITS_ROUND_TWO])
+@pytest.mark.parametrize("command", ["sweep", "replay"])
+def test_bad_plan_values_round_two(capsys, work, policy, command, old, new, needle):
+    plans = work / "plans"
+    plans.mkdir()
+    plan = _plan_with(plans, old, new)
+    before = snapshot(work)
+    if command == "sweep":
+        argv = ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "out"), "--workers", "1"]
+    else:
+        argv = ["replay", str(policy), "--plan", str(plan)]
+    line = refused(capsys, argv)
+    assert "plan.toml" in line and needle in line, line
+    assert snapshot(work) == before
+
+
+def _deep(nesting: str) -> str:
+    # far past CPython's recursion limit; tomllib (3.11) recurses once per level
+    return "a = " + {"array": "[" * 5000 + "]" * 5000, "table": "{b = " * 5000 + "1" + "}" * 5000}[nesting] + "\n"
+
+
+@pytest.mark.parametrize("nesting", ["array", "table"])
+@pytest.mark.parametrize("slot", ["evolve CONFIG", "replay --plan", "sweep --plan", "sweep lqr --plan"])
+def test_deeply_nested_toml(capsys, work, policy, slot, nesting):
+    import tomllib
+
+    bad = work / "deep.toml"
+    bad.write_text(_deep(nesting))
+    with pytest.raises((RecursionError, tomllib.TOMLDecodeError)):  # what the library itself does with it
+        tomllib.loads(bad.read_text())
+    before = snapshot(work)
+    line = refused(capsys, _slots(policy, work / "out")[slot][1](bad))
+    assert "deep.toml" in line, line
+    assert snapshot(work) == before
+
+
+@pytest.mark.parametrize("kind", ["csv", "plot", "gif"])
+def test_replay_never_replaces_its_policy(capsys, work, policy, kind):
+    own = work / f"c.{'png' if kind == 'plot' else kind}"
+    shutil.copy(policy, own)  # a policy file may have any name, even one that looks like an output
+    link = work / f"link.{own.suffix[1:]}"
+    link.symlink_to(own)
+    hard = work / f"hard.{own.suffix[1:]}"
+    hard.hardlink_to(own)
+    before = snapshot(work)
+    for out in (own, link, hard):
+        for force in ([], ["--force"]):
+            line = refused(capsys, ["replay", str(own), f"--{kind}", str(out), *force])
+            assert f"--{kind}" in line and "input" in line, line
+    assert snapshot(work) == before
+
+
+def test_replay_never_replaces_its_plan_or_a_run_directorys_champion(capsys, work, policy):
+    run = work / "run"
+    run.mkdir()
+    shutil.copy(policy, run / "champion.json")
+    plan = work / "plan.csv"
+    shutil.copy(PLAN, plan)
+    before = snapshot(work)
+    assert "input" in refused(capsys, ["replay", str(run), "--csv", str(run / "champion.json"), "--force"])
+    assert "input" in refused(capsys, ["replay", str(policy), "--plan", str(plan), "--csv", str(plan), "--force"])
+    assert snapshot(work) == before
+
+
+def test_replay_refuses_an_existing_output_unless_forced(capsys, work, policy):
+    kept = work / "notes.csv"
+    kept.write_text("measured by hand, keep\n")
+    before = snapshot(work)
+    line = refused(capsys, ["replay", str(policy), "--csv", str(kept)])
+    assert "notes.csv" in line and "--force" in line
+    assert "same file" in refused(capsys, ["replay", str(policy), "--csv", str(work / "t.csv"),
+                                           "--gif", str(work / "t.csv")])
+    assert snapshot(work) == before
+    capsys.readouterr()
+    assert main(["replay", str(policy), "--csv", str(kept), "--force"]) == 0
+    assert kept.read_text().startswith("episode,step,time")  # replaced by the trace, as asked

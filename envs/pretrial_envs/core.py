@@ -43,6 +43,78 @@ DIVERGENCE_BOUND = 1e9
 INTEGRATORS = ("rk4", "euler")
 
 
+@dataclass(frozen=True)
+class Limit:
+    """The accepted range of one quantity, declared once and checked the same wherever it is given.
+
+    Parameters
+    ----------
+    name : str
+        The quantity as messages name it.
+    low, high : float or int
+        The range of accepted values, both ends included (but see ``above``).
+    unit : str
+        SI unit (``""`` for counts).
+    whole : bool
+        A whole number (counts, seeds) rather than a real one.
+    above : bool
+        ``low`` itself is excluded (a duration that only has to be more than 0).
+    """
+
+    name: str
+    low: float
+    high: float
+    unit: str = ""
+    whole: bool = False
+    above: bool = False
+
+    def allowed(self) -> str:
+        """The range in words, e.g. ``a finite number >= 1e-06 and <= 3600 s``."""
+        kind = "a whole number" if self.whole else "a finite number"
+        unit = f" {self.unit}" if self.unit else ""
+        low = f"{'>' if self.above else '>='} {_fmt(self.low, self.whole)}"
+        return f"{kind} {low} and <= {_fmt(self.high, self.whole)}{unit}"
+
+    def check(self, value: Any, label: str | None = None) -> Any:
+        """``value`` as int (whole) or float when inside the range; ValueError naming ``label`` and the range."""
+        v: Any = None
+        if self.whole:
+            if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
+                v = int(value)
+        elif not isinstance(value, bool):
+            try:
+                v = float(value)
+            except (TypeError, ValueError, OverflowError):
+                v = None
+        if (v is None or (not self.whole and not math.isfinite(v)) or not (self.low <= v <= self.high)
+                or (self.above and v == self.low)):
+            raise ValueError(f"{label or self.name}: {value!r} not allowed ({self.allowed()})")
+        return v
+
+
+def _fmt(x: float, whole: bool) -> str:
+    return str(int(x)) if whole else f"{x:g}"
+
+
+#: Limits of the episode quantities (common practice for a fixed-step simulator: a period below a
+#: microsecond, or an episode past the caps, is a typing error, not a plant). Values are the tool's choice.
+DT = Limit("dt", 1e-6, 3600.0, "s")
+SUBSTEPS = Limit("substeps", 1, 10_000, whole=True)
+TIME_LIMIT = Limit("time_limit", 0.0, 1e6, "s", above=True)  # shorter than dt: one control period
+#: half-width of the start distribution of one state (beyond DIVERGENCE_BOUND a start is already diverged)
+START_SPREAD = Limit("start_spread", 0.0, DIVERGENCE_BOUND)
+#: integration steps of one episode: control periods (time_limit / dt) x substeps
+EPISODE_STEPS = Limit("integration steps per episode", 1, 10_000_000, whole=True)
+
+
+def check_episode_steps(periods: int, substeps: int, what: str) -> None:
+    """ValueError when ``periods`` control periods of ``substeps`` integration steps pass :data:`EPISODE_STEPS`."""
+    total = int(periods) * int(substeps)
+    if total > EPISODE_STEPS.high:
+        raise ValueError(f"{what}: {periods} control periods x {substeps} substeps = {total} integration steps "
+                         f"per episode, more than the cap of {EPISODE_STEPS.high}")
+
+
 # --------------------------------------------------------------------------- #
 # Parameter table
 # --------------------------------------------------------------------------- #
@@ -383,25 +455,22 @@ class Physics:
         time_limit: float | None = None,
         start_spread: Mapping[str, float] | None = None,
     ):
-        self.dt = _positive("dt", self.default_dt if dt is None else dt)
-        substeps = self.default_substeps if substeps is None else substeps
-        if isinstance(substeps, bool) or not isinstance(substeps, (int, np.integer)) or substeps < 1:
-            raise ValueError(f"substeps: {substeps!r} must be a whole number >= 1")
-        self.substeps = int(substeps)
+        self.dt = DT.check(self.default_dt if dt is None else dt)
+        self.substeps = SUBSTEPS.check(self.default_substeps if substeps is None else substeps)
         integrator = self.default_integrator if integrator is None else integrator
         if integrator not in INTEGRATORS:
             raise ValueError(f"integrator: {integrator!r} not one of {', '.join(INTEGRATORS)}")
         self.integrator = integrator
-        self.time_limit = _positive("time_limit", self.default_time_limit if time_limit is None else time_limit)
+        self.time_limit = TIME_LIMIT.check(self.default_time_limit if time_limit is None else time_limit)
         self.max_steps = max(1, int(round(self.time_limit / self.dt)))
+        check_episode_steps(self.max_steps, self.substeps, f"time_limit {self.time_limit:g} s / dt {self.dt:g} s")
         spread = dict(self.default_start_spread)
+        if start_spread is not None and not isinstance(start_spread, Mapping):
+            raise ValueError(f"start_spread: expected a table of state name = half-range, got {start_spread!r}")
         for name, value in (start_spread or {}).items():
             if name not in self.state_names:
                 raise ValueError(unknown_name_message("state", name, self.state_names))
-            v = float(value)
-            if not math.isfinite(v) or v < 0:
-                raise ValueError(f"start_spread {name}: {value!r} must be a finite number >= 0")
-            spread[name] = v
+            spread[name] = START_SPREAD.check(value, f"start_spread {name}")
         self.start_spread = np.array([spread.get(n, 0.0) for n in self.state_names], dtype=float)
         self._step = _STEPPERS[self.integrator]
         self.failure_words: tuple[str, ...] = ("",) + tuple(self.failure_modes) + (DIVERGED, TIMEOUT)
@@ -745,16 +814,6 @@ def _diverged_rows(a: Array) -> Array:
     for j in range(1, a.shape[1]):
         np.maximum(m, np.abs(a[:, j]), out=m)
     return ~(m <= DIVERGENCE_BOUND)
-
-
-def _positive(name: str, value: Any) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name}: {value!r} is not a number") from None
-    if not math.isfinite(v) or v <= 0:
-        raise ValueError(f"{name}: {value!r} must be a finite number > 0")
-    return v
 
 
 def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: float = 1e-6) -> tuple[Array, Array]:

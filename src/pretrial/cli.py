@@ -148,14 +148,32 @@ def _workers_arg(text: str) -> int | str:
         raise argparse.ArgumentTypeError(f"{text!r}: expected 'auto' or a whole number >= 1") from None
 
 
-def _positive_int(text: str) -> int:
-    return _whole(text, 0)
+def limit_arg(name: str) -> Callable[[str], Any]:
+    """An argparse ``type`` for the quantity ``name`` of :mod:`pretrial.limits` (the same range as in files).
+
+    The table is looked up when a value is parsed: it imports the env core, which ``--help`` does not need.
+    """
+
+    def parse(text: str) -> Any:
+        from . import limits
+
+        limit = getattr(limits, name)
+        try:
+            value: Any = int(text) if limit.whole else float(text)
+        except ValueError:
+            value = text
+        try:
+            return limit.check(value)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r}: expected {limit.allowed()}") from None
+
+    return parse
 
 
 def _configure_evolve(p: argparse.ArgumentParser) -> None:
     p.add_argument("config", help="run config (TOML), e.g. configs/cartpole.toml")
     p.add_argument("--out", metavar="DIR", help="run directory (default runs/<config>-<UTC time>/)")
-    p.add_argument("--seed", type=_positive_int, help="override [run].seed")
+    p.add_argument("--seed", type=limit_arg("SEED"), help="override [run].seed")
     p.add_argument("--generations", type=lambda t: _whole(t, 1), help="override [run].generations")
     p.add_argument("--workers", type=_workers_arg, help="worker processes: N or auto (default: the config's, auto)")
     p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")

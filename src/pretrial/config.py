@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError
+from .limits import EPISODES, GENERATIONS, HORIZON, NEAT, SEED, Limit, check_horizon, check_total
 
 NETWORK_LAYOUTS = ("whole", "shared")
 
@@ -120,7 +121,9 @@ class _Reader:
     def key(self, name: str) -> str:
         return f"{self.prefix}.{name}" if self.prefix else name
 
-    def take(self, name: str, kind: type | tuple[type, ...], default: Any = ..., check=None, allowed: str = "") -> Any:
+    def take(self, name: str, kind: type | tuple[type, ...], default: Any = ..., check=None, allowed: str = "",
+             limit: Limit | None = None) -> Any:
+        """Pop ``name`` as ``kind``; ``check``/``allowed`` or a ``limit`` row (:mod:`pretrial.limits`) bound it."""
         self.known.append(name)
         if name not in self.table:
             if default is ...:
@@ -142,6 +145,11 @@ class _Reader:
             self.fail(self.key(name), f"{value!r} is not a finite number")
         if check is not None and not check(value):
             self.fail(self.key(name), f"{value!r} not allowed ({allowed})")
+        if limit is not None:
+            try:
+                value = limit.check(value, self.key(name))
+            except ValueError as exc:
+                raise InputError(f"{self.path}: {exc}") from None
         return value
 
     def table_of(self, name: str) -> dict[str, Any]:
@@ -206,6 +214,8 @@ def read_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         return tomllib.loads(text), text
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{p}: malformed TOML: {exc}") from None
+    except RecursionError:  # Python 3.11's tomllib recurses once per nested array or inline table
+        raise InputError(f"{p}: malformed TOML: arrays or inline tables nested too deeply") from None
 
 
 def neat_defaults() -> configparser.ConfigParser:
@@ -251,8 +261,8 @@ def load_config(path: str | Path) -> Config:
 
     t = _Reader(path, "task", task_t)
     env = t.take("env", str, allowed="an environment id, e.g. 'pretrial/CartPole-v0'")
-    episodes = t.take("episodes", int, 8, lambda v: 1 <= v <= 100_000, "a whole number from 1 to 100000")
-    horizon = t.take("horizon", float, None, lambda v: v > 0, "seconds of simulated time, > 0")
+    episodes = t.take("episodes", int, 8, limit=EPISODES)
+    horizon = t.take("horizon", float, None, limit=HORIZON)
     network = t.take("network", str, "whole", lambda v: v in NETWORK_LAYOUTS, " or ".join(NETWORK_LAYOUTS))
     env_options = t.table_of("options")
     params = t.table_of("params")
@@ -265,16 +275,19 @@ def load_config(path: str | Path) -> Config:
     from .generic import make_plant
 
     spread = env_options.get("start_spread", {})
-    if not isinstance(spread, dict):  # the core would fail on .items() with an AttributeError
+    if not isinstance(spread, dict):  # named by its key here; the core's ValueError names the option only
         t.fail("task.options.start_spread", f"expected a table of state name = spread, got {_kind(spread)} {spread!r}")
     try:
         physics = make_plant(env, **env_options)
     except InputError as exc:
         raise InputError(f"{path}: task.env: {exc.message}") from None
-    except TypeError as exc:
+    except (TypeError, ValueError) as exc:
         raise InputError(f"{path}: task.options: {exc}") from None
-    except ValueError as exc:
-        raise InputError(f"{path}: task.options: {exc}") from None
+    if horizon is not None:
+        try:
+            check_horizon(horizon, physics, "task.horizon")
+        except ValueError as exc:
+            raise InputError(f"{path}: {exc}") from None
     for name, value in params.items():
         try:
             physics.param_table.index(name)
@@ -338,11 +351,15 @@ def load_config(path: str | Path) -> Config:
         if any(isinstance(v, str) and ("%" in v or not v.isprintable()) for v in (value if isinstance(value, list)
                                                                                   else [value])):
             raise InputError(f"{path}: {key}: {value!r} must be one line of printable text without '%'")
+        try:
+            _check_neat_value(name, value)
+        except ValueError as exc:
+            raise InputError(f"{path}: {exc}") from None
         neat[name] = value
 
     r = _Reader(path, "run", run_t)
-    generations = r.take("generations", int, 100, lambda v: 1 <= v <= 1_000_000, "a whole number >= 1")
-    seed = r.take("seed", int, 0, lambda v: 0 <= v < 2**63, "a whole number >= 0")
+    generations = r.take("generations", int, 100, limit=GENERATIONS)
+    seed = r.take("seed", int, 0, limit=SEED)
     target = r.take("fitness_target", float, None)
     every = r.take("checkpoint_every", int, 10, lambda v: v >= 1, "a whole number >= 1")
     workers = r.take(
@@ -350,7 +367,7 @@ def load_config(path: str | Path) -> Config:
     )
     dask = r.take("dask", str, None, lambda v: bool(v.strip()), "'local' or a scheduler address like tcp://host:8786")
     finalists = r.take("finalists", int, 5, lambda v: v >= 1, "a whole number >= 1")
-    validation = r.take("validation_episodes", int, 32, lambda v: v >= 1, "a whole number >= 1")
+    validation = r.take("validation_episodes", int, 32, limit=EPISODES)
     r.finish()
 
     cfg = Config(
@@ -367,7 +384,9 @@ def load_config(path: str | Path) -> Config:
             one = _neat_refusal(_neat_text({name: value}, 1, 1))
             if one is not None:
                 hint = _neat_hint(name)
-                raise InputError(f"{path}: neat.{name}: {value!r} refused by neat-python: {one}{hint}")
+                # the whole set's words when they are the same objection (its numbers are the user's)
+                said = reason if reason.split(":")[0] == one.split(":")[0] else one
+                raise InputError(f"{path}: neat.{name}: {value!r} refused by neat-python: {said}{hint}")
         # only a combination fails (e.g. a min above a max): drop every key the refusal does not need
         culprits = dict(neat)
         for name in list(culprits):
@@ -379,8 +398,27 @@ def load_config(path: str | Path) -> Config:
     return cfg
 
 
+def _check_neat_value(name: str, value: Any) -> None:
+    """ValueError for a ``[neat]`` value neat-python would take without a check of its own."""
+    if name in NEAT:
+        NEAT[name].check(value)
+    if name in ("activation_options", "aggregation_options"):
+        from .network import ACTIVATIONS, AGGREGATIONS
+
+        allowed = ACTIVATIONS if name.startswith("activation") else AGGREGATIONS
+        words = " ".join(str(v) for v in (value if isinstance(value, list) else [value])).split()
+        for word in words:
+            if word not in allowed:
+                raise ValueError(f"neat.{name}: {word!r} is not a neat-python built-in {name.split('_')[0]} "
+                                 f"(allowed: {', '.join(allowed)})")
+
+
 def _neat_hint(name: str) -> str:
     """What neat-python allows for ``name`` where its own refusal does not say."""
+    if name in ("pop_size", "elitism", "min_species_size"):
+        # neat.reproduction: each species breeds at least max(min_species_size, elitism) genomes
+        return (" (each species keeps at least max(min_species_size, elitism) genomes, so pop_size must be "
+                "at least that times the number of species)")
     if name != "initial_connection":
         return ""
     from neat.genome import DefaultGenomeConfig
@@ -396,6 +434,29 @@ def build_neat_ini(cfg: Config, num_inputs: int, num_outputs: int) -> str:
     if reason is not None:
         raise InputError(f"{cfg.path}: [neat]: neat-python refuses the merged settings: {reason}")
     return text
+
+
+def check_budget(cfg: Config, task: Any, ini: str) -> int:
+    """Integration steps the run asks for; InputError naming the factors past :data:`~pretrial.limits.COMMAND_STEPS`.
+
+    Parameters
+    ----------
+    cfg : Config
+        With the command line's overrides applied.
+    task : Task
+        From :func:`pretrial.evolution.make_task` (episode length, plant).
+    ini : str
+        The merged neat-python file (its ``pop_size``).
+    """
+    cp = configparser.ConfigParser()
+    cp.read_string(ini)
+    factors = [(cfg.run.generations, "generations"), (cp["NEAT"].getint("pop_size"), "genomes"),
+               (cfg.task.episodes, "episodes"), (task.max_steps, "control periods"),
+               (task.physics().substeps, "substeps")]
+    try:
+        return check_total("evolve", factors)
+    except ValueError as exc:
+        raise InputError(f"{cfg.path}: {exc}") from None
 
 
 def _neat_text(settings: dict[str, Any], num_inputs: int, num_outputs: int) -> str:
@@ -420,24 +481,49 @@ def _neat_text(settings: dict[str, Any], num_inputs: int, num_outputs: int) -> s
 
 
 def _neat_refusal(text: str) -> str | None:
-    """neat-python's objection to a config file text, or None if it accepts it."""
+    """neat-python's objection to a config file text, or None if it accepts it.
+
+    A dry run in a temporary file and in memory: neat-python reads the config,
+    makes a generation-0 population, sorts it into species and breeds it once
+    (every genome at fitness 0), which is where it checks population size against
+    elitism and species minima. The caller's random state is left as it was.
+    """
     import os
+    import random
     import tempfile
 
     import neat
 
     fd, tmp = tempfile.mkstemp(suffix=".ini")
+    state = random.getstate()
     try:
         with os.fdopen(fd, "w") as f:
             f.write(text)
-        neat.Config(
+        config = neat.Config(
             neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet, neat.DefaultStagnation, tmp
         )
+        _breed_once(config)
     except Exception as exc:  # neat-python raises bare Exception/RuntimeError/AssertionError
         return " ".join(str(exc).split()) or type(exc).__name__
     finally:
+        random.setstate(state)
         os.unlink(tmp)
     return None
+
+
+def _breed_once(config: Any) -> None:
+    """Generation 0 of ``config`` and one breeding of it, as a run does them (neat-python raises on a conflict)."""
+    from neat.reporting import ReporterSet
+
+    reporters = ReporterSet()
+    stagnation = config.stagnation_type(config.stagnation_config, reporters)
+    reproduction = config.reproduction_type(config.reproduction_config, reporters, stagnation)
+    population = reproduction.create_new(config.genome_type, config.genome_config, config.pop_size)
+    species = config.species_set_type(config.species_set_config, reporters)
+    species.speciate(config, population, 0)
+    for genome in population.values():
+        genome.fitness = 0.0
+    reproduction.reproduce(config, species, config.pop_size, 0)
 
 
 # --------------------------------------------------------------------------- #

@@ -35,7 +35,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__, checkpoint
-from .config import Config, build_neat_ini, dump_toml
+from .config import Config, build_neat_ini, check_budget, dump_toml
 from .errors import InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
@@ -218,6 +218,9 @@ class Evolution:
         The manifest is first written together with that checkpoint, so a directory with a
         manifest can always be resumed, whenever the process is stopped.
         """
+        # neat-python's objections (a dry run of generation 0) and the budget, before anything is written
+        ini = build_neat_ini(self.cfg, self.task.io.num_inputs, self.task.io.num_outputs)
+        check_budget(self.cfg, self.task, ini)
         check_writable_dir(self.run_dir)
         if self.run_dir.exists() and any(self.run_dir.iterdir()):
             if self.manifest_path.exists():
@@ -231,7 +234,7 @@ class Evolution:
         (self.run_dir / "checkpoints").mkdir(exist_ok=True)
         (self.run_dir / "plots").mkdir(exist_ok=True)
         atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
-        atomic_write_text(self.ini_path, build_neat_ini(self.cfg, self.task.io.num_inputs, self.task.io.num_outputs))
+        atomic_write_text(self.ini_path, ini)
         self.neat_config = _neat_config(self.ini_path)
         self.manifest = {
             "pretrial": __version__,

@@ -79,7 +79,7 @@ import numpy as np
 
 from pretrial_envs.core import ParamSpec, ParamTable, Physics, unknown_name_message
 
-from . import streams
+from . import limits, streams
 
 PERTURBATIONS = ParamTable(
     [
@@ -207,19 +207,23 @@ def setting_names(physics: Physics) -> list[str]:
 def with_control_period(physics: Physics, period: float) -> Physics:
     """``physics`` rebuilt with control period ``period`` s and an integration step no longer than before.
 
-    Raises ValueError for a period that is not a positive finite number or a
-    plant that cannot be rebuilt (a plain gymnasium env has its own period).
+    Raises ValueError for a period outside :data:`pretrial.limits.CONTROL_PERIOD`
+    or longer than the episode, a rebuilt plant past its own limits (substeps,
+    steps per episode), or a plant that cannot be rebuilt (a plain gymnasium env
+    has its own period).
     """
-    if not (isinstance(period, (int, float)) and math.isfinite(period) and period > 0):
-        raise ValueError(f"{CONTROL_PERIOD}: {period!r} must be a finite number > 0")
+    period = limits.CONTROL_PERIOD.check(period)
     if period > physics.time_limit:
         raise ValueError(f"{CONTROL_PERIOD}: {period!r} is longer than the episode ({physics.time_limit:g} s)")
     options = physics.options()
     if "dt" not in options:  # a plain gymnasium env fixes its own period
         raise ValueError(f"{CONTROL_PERIOD}: {physics.env_id} sets its own control period; it cannot be varied")
     h = physics.dt / physics.substeps
-    options.update(dt=float(period), substeps=max(1, math.ceil(period / h - 1e-9)))
-    return type(physics)(**options)
+    options.update(dt=period, substeps=max(1, math.ceil(period / h - 1e-9)))
+    try:
+        return type(physics)(**options)
+    except ValueError as exc:  # e.g. the substeps that keep the integration step, or the steps per episode
+        raise ValueError(f"{CONTROL_PERIOD}: {period!r}: {exc}") from None
 
 
 @dataclass

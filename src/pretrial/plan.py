@@ -26,6 +26,8 @@ from typing import Any
 from .config import _kind, _Reader, dump_toml, read_toml
 from .errors import InputError
 from .files import sha256_hex
+from .limits import CONTROL_PERIOD as PERIOD_LIMIT
+from .limits import EPISODES, HORIZON, SEED, START_SPREAD, check_horizon, check_total
 from .perturb import CONTROL_PERIOD, PERTURBATIONS, plant_refusal, setting_names, spec_of, with_control_period
 from .quality import QualityLimits
 
@@ -171,16 +173,18 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
 
     s = _Reader(path, "scenario", scen_t)
     env = s.take("env", str, None)
-    episodes = s.take("episodes", int, 60, lambda v: 1 <= v <= 1_000_000, "a whole number from 1 to 1000000")
-    horizon = s.take("horizon", float, None, lambda v: v > 0, "seconds of simulated time, > 0")
-    seed = s.take("seed", int, 0, lambda v: 0 <= v < 2**63, "a whole number >= 0")
+    episodes = s.take("episodes", int, 60, limit=EPISODES)
+    horizon = s.take("horizon", float, None, limit=HORIZON)
+    seed = s.take("seed", int, 0, limit=SEED)
     options = s.table_of("options")
     params_t = s.table_of("params")
     start_t = s.table_of("start")
     s.finish()
-    if horizon is not None and horizon > physics.time_limit + 1e-12:
-        raise InputError(f"{path}: scenario.horizon: {horizon:g} s is longer than the env's time limit "
-                         f"({physics.time_limit:g} s)")
+    if horizon is not None:
+        try:
+            check_horizon(horizon, physics, "scenario.horizon")
+        except ValueError as exc:
+            raise InputError(f"{path}: {exc}") from None
     params: dict[str, float] = {}
     for name, value in params_t.items():
         key = f"scenario.params.{name}"
@@ -201,9 +205,10 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
             near = difflib.get_close_matches(name, physics.state_names, n=1)
             hint = f" (did you mean {near[0]!r}?)" if near else ""
             raise InputError(f"{path}: {key}: unknown state{hint}; valid: {', '.join(physics.state_names)}")
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value < 0:
-            raise InputError(f"{path}: {key}: {value!r} must be a half-range >= 0 in {_state_unit(physics, name)}")
-        start[name] = float(value)
+        try:
+            start[name] = START_SPREAD.check(value, key)
+        except ValueError as exc:
+            raise InputError(f"{path}: {exc} ({_state_unit(physics, name)}, a half-range)") from None
 
     if not isinstance(vary_l, list) or not all(isinstance(v, dict) for v in vary_l):
         raise InputError(f"{path}: vary: expected [[vary]] tables, got {_kind(vary_l)}")
@@ -258,7 +263,8 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
             if len(vary) < 2:
                 raise InputError(f"{path}: analysis.run: map needs two [[vary]] entries")
             pair = names[:2]
-        if len(pair) != 2 or len(set(pair)) != 2 or any(p not in names for p in pair):
+        if (len(pair) != 2 or not all(isinstance(p, str) for p in pair) or len(set(pair)) != 2
+                or any(p not in names for p in pair)):
             raise InputError(f"{path}: analysis.map: {pair!r} must name two different [[vary]] names "
                              f"(varied: {', '.join(names)})")
         budgets["map"] = list(pair)
@@ -326,9 +332,32 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         raise InputError(f"{path}: scenario.env: the plan is for {env}, the policy for {policy_env}")
     if worst_rate is None and "worstcase" in run:
         worst_rate = DEFAULT_WORSTCASE_SHARE * rate
-    return Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
+    plan = Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
                 tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text, quality,
                 worst_rate)
+    check_plan_budget(plan, physics)
+    return plan
+
+
+def check_plan_budget(plan: Plan, physics: Any) -> int:
+    """Integration steps the plan asks for (roughly, as the progress bar counts episodes).
+
+    The episodes are counted at the shortest control period the plan varies to.
+    Raises InputError naming the factors when they pass :data:`pretrial.limits.COMMAND_STEPS`.
+    """
+    from .sweep import planned_episodes
+
+    plant = physics
+    for v in plan.vary:
+        if v.name == CONTROL_PERIOD:
+            plant = with_control_period(physics, v.low)
+    periods = plant.max_steps if plan.horizon is None else max(1, round(plan.horizon / plant.dt))
+    factors = [(planned_episodes(plan, physics), "episodes"), (periods, "control periods"),
+               (plant.substeps, "substeps")]
+    try:
+        return check_total("sweep", factors)
+    except ValueError as exc:
+        raise InputError(f"{plan.path}: {exc}") from None
 
 
 def read_quality(path: str, key: str, table: dict[str, Any], physics: Any) -> QualityLimits:
@@ -409,7 +438,8 @@ def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: 
     std = r.take("std", float, None, lambda v: v > 0, "> 0")
     r.finish()
     if name == CONTROL_PERIOD:
-        unit, nominal, low_ok, high_ok = "s", physics.dt, 1e-6, physics.time_limit
+        unit, nominal = "s", physics.dt
+        low_ok, high_ok = PERIOD_LIMIT.low, min(PERIOD_LIMIT.high, physics.time_limit)
     else:
         try:
             spec = spec_of(physics, name)
@@ -441,7 +471,8 @@ def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: 
                          f"[{low_ok:g}, {high_ok:g}]")
     if name == CONTROL_PERIOD:
         try:
-            with_control_period(physics, hi)
+            for end in (lo, hi):  # the plant rebuilt at either end must be within its own limits
+                with_control_period(physics, end)
         except ValueError as exc:
             raise InputError(f"{path}: {key}: {exc}") from None
     blo, bhi = lo, hi

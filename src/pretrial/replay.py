@@ -17,6 +17,7 @@ import argparse
 import os
 import shlex
 import sys
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -27,12 +28,13 @@ from pretrial_envs.core import EpisodeMetric, Physics
 
 from .console import CAUTIONS, emit_json, fmt_number, print_cautions, table
 from .errors import InputError, PretrialError
+from .limits import RECORDED_STEPS, REPLAY_EPISODES, check_total
 from .perturb import Setup, apply_settings, diverged_warning
 from .quality import QualityLimits, quality_metrics
 from .rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
 
 #: replay records every step of every episode; beyond this many, a sweep is the tool
-MAX_EPISODES = 1000
+MAX_EPISODES = REPLAY_EPISODES.high
 
 LQR = "lqr"
 
@@ -248,8 +250,12 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
         Loop-quality limits an episode must also meet to succeed (a plan's, or
         the defaults); None judges survival only.
     """
-    if isinstance(episodes, bool) or not isinstance(episodes, (int, np.integer)) or not 1 <= episodes <= MAX_EPISODES:
-        raise InputError(f"--episodes {episodes!r}: expected a whole number from 1 to {MAX_EPISODES}")
+    try:
+        episodes = REPLAY_EPISODES.check(episodes, "--episodes")
+        periods = setup.physics.max_steps if max_steps is None else int(max_steps)
+        check_total("replay", [(episodes, "episodes"), (periods, "control periods")], RECORDED_STEPS)
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
     physics = setup.physics
     scenarios = draw_scenarios(physics, int(episodes), int(seed), base_params=setup.params, fixed=setup.perturb)
     start_state = None
@@ -383,34 +389,17 @@ def print_summary(rep: Replay, out=None) -> None:
 # --------------------------------------------------------------------------- #
 # command line
 # --------------------------------------------------------------------------- #
-def _episodes_arg(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        n = 0
-    if not 1 <= n <= MAX_EPISODES:
-        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number from 1 to {MAX_EPISODES}")
-    return n
-
-
-def _seed_arg(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        n = -1
-    if n < 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number >= 0")
-    return n
-
-
 def configure_cli(p: argparse.ArgumentParser) -> None:
     """Arguments of ``pretrial replay``."""
+    from .cli import limit_arg
+
     p.add_argument("policy", metavar="POLICY",
                    help="policy file, run directory (its champion.json), or 'lqr' (the LQR baseline; needs --env)")
     p.add_argument("--set", action="append", metavar="NAME=VALUE",
                    help="physics parameter, perturbation or control_period_s, e.g. pole_mass=0.2 (repeatable)")
-    p.add_argument("--episodes", type=_episodes_arg, default=1, help="episodes, run together (default 1)")
-    p.add_argument("--seed", type=_seed_arg, default=0, help="scenario seed, as in sweep reports (default 0)")
+    p.add_argument("--episodes", type=limit_arg("REPLAY_EPISODES"), default=1,
+                   help="episodes, run together (default 1)")
+    p.add_argument("--seed", type=limit_arg("SEED"), default=0, help="scenario seed, as in sweep reports (default 0)")
     p.add_argument("--start", metavar="STATE",
                    help="exact start state: numbers in state order, or name=value pairs (others: start centre)")
     p.add_argument("--gif", metavar="FILE", help="animation of the first episode (GIF)")
@@ -424,13 +413,46 @@ def configure_cli(p: argparse.ArgumentParser) -> None:
     p.add_argument("--plan", metavar="PLAN.toml",
                    help="run under a sweep plan's scenario (env options, params, start ranges, horizon, LQR weights), "
                    "as its replay commands do")
+    p.add_argument("--force", action="store_true",
+                   help="replace existing --csv/--plot/--gif/--mp4 files (an input file is never replaced)")
 
 
-def _check_output(path: str, flag: str) -> None:
-    """Refuse, before any work, an output path that cannot be written."""
+def _same_file(a: Path, b: Path) -> bool:
+    """Whether two paths name one file: the same path once symlinks are resolved, or the same inode (a hard link)."""
+    if a.resolve() == b.resolve():
+        return True
+    try:
+        return a.samefile(b)
+    except OSError:  # one of them does not exist
+        return False
+
+
+def _inputs(args: argparse.Namespace) -> list[Path]:
+    """The files this replay reads: the policy (a run directory's champion) and the plan."""
+    from .policy import CHAMPION_FILE
+
+    found = []
+    if args.policy != LQR:
+        policy = Path(args.policy)
+        found.append(policy / CHAMPION_FILE if policy.is_dir() else policy)
+    if getattr(args, "plan", None):
+        found.append(Path(args.plan))
+    return found
+
+
+def _check_output(path: str, flag: str, inputs: Sequence[Path] = (), force: bool = False) -> None:
+    """Refuse, before any work, an output path that cannot be written or would replace a file.
+
+    An input (the policy, the plan) is never replaced; another existing file only with ``force``.
+    """
     p = Path(path)
+    for source in inputs:
+        if _same_file(p, source):
+            raise InputError(f"{flag} {path}: is an input of this replay ({source}); write the output elsewhere")
     if p.is_dir():
         raise InputError(f"{flag} {path}: is a directory")
+    if (p.exists() or p.is_symlink()) and not force:
+        raise InputError(f"{flag} {path}: already exists; pick another name or add --force to replace it")
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise InputError(f"{flag} {path}: directory {parent} does not exist")
@@ -444,9 +466,13 @@ def run_cli(args: argparse.Namespace) -> int:
     from .cli import parse_assignments
 
     outputs = {"gif": args.gif, "mp4": args.mp4, "csv": args.csv, "plot": args.plot}
+    inputs, written = _inputs(args), []
     for kind, path in outputs.items():
         if path is not None:
-            _check_output(path, f"--{kind}")
+            _check_output(path, f"--{kind}", inputs, getattr(args, "force", False))
+            if any(_same_file(Path(path), other) for other in written):
+                raise InputError(f"--{kind} {path}: names the same file as another output")
+            written.append(Path(path))
     if args.plot is not None:
         traces.plot_format(args.plot)
     if args.mp4 is not None:
