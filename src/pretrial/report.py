@@ -18,7 +18,9 @@ import csv
 import html
 import io
 import math
+import queue
 import re
+import threading
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,9 +30,10 @@ import numpy as np
 
 from . import sweep_plots
 from .console import CAUTIONS, fmt_number
-from .errors import FileFormatError, InputError
+from .errors import FileFormatError, InputError, PretrialError
 from .files import atomic_write_bytes, atomic_write_text
 from .margins import GAIN_SCAN_LIMIT
+from .samples import SampleHistograms, sample_histograms
 
 #: keys of the Monte Carlo samples that are not varied names, in their CSV order
 SAMPLE_COLUMNS = ("seed", "success", "failure", "score")
@@ -765,10 +768,12 @@ def _csv_value(v: Any, digits: int | None = None) -> str:
     return str(v)
 
 
-def _csv_text(headers: Sequence[str], rows: Sequence[Sequence[Any]], digits: int | None = None) -> str:
+def _csv_text(headers: Sequence[str] | None, rows: Sequence[Sequence[Any]], digits: int | None = None) -> str:
+    """CSV lines: the headers (None: no header line), then the rows."""
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(headers)
+    if headers is not None:
+        writer.writerow(headers)
     writer.writerows([_csv_value(v, digits) for v in row] for row in rows)
     return buf.getvalue()
 
@@ -808,18 +813,101 @@ def check_samples(samples: Mapping[str, Any]) -> int:
     return next(iter(lengths.values()), 0)
 
 
+def _sample_headers(names: Sequence[str], units: Mapping[str, str] | None) -> list[str]:
+    units = units or {}
+    return [f"{n} [{units[n]}]" if units.get(n) else n for n in names] + list(SAMPLE_COLUMNS)
+
+
+def _sample_rows(samples: Mapping[str, Any], names: Sequence[str]) -> list[tuple[Any, ...]]:
+    columns = [np.atleast_1d(np.asarray(samples[k])).tolist() for k in [*names, *SAMPLE_COLUMNS]]
+    return list(zip(*columns))
+
+
 def write_samples_csv(path: str | Path, samples: Mapping[str, Any], units: Mapping[str, str] | None = None) -> None:
     """The Monte Carlo samples as CSV: one column per varied name, then seed, success, failure, score.
 
     A varied column is headed ``name [unit]`` when ``units`` gives it a unit (plain ``name`` otherwise);
-    success is ``true``/``false``.
+    success is ``true``/``false``; floats are written exactly (``repr``). Written atomically;
+    :class:`SamplesCSV` writes the same bytes a block of rows at a time.
     """
     check_samples(samples)
-    units = units or {}
     names = _sample_names(samples)
-    headers = [f"{n} [{units[n]}]" if units.get(n) else n for n in names] + list(SAMPLE_COLUMNS)
-    columns = [np.atleast_1d(np.asarray(samples[k])).tolist() for k in [*names, *SAMPLE_COLUMNS]]
-    atomic_write_text(path, _csv_text(headers, list(zip(*columns))))
+    atomic_write_text(path, _csv_text(_sample_headers(names, units), _sample_rows(samples, names)))
+
+
+class SamplesCSV:
+    """``montecarlo.csv`` written a block of samples at a time, as the blocks finish.
+
+    The bytes equal :func:`write_samples_csv` of all blocks joined. A background thread formats
+    and writes each block while the caller runs the next (formatting 10^7 rows takes about a
+    minute); at most one block waits for it. The file is written in place (not atomically): write
+    it into a directory that is renamed into place when complete.
+
+    Parameters
+    ----------
+    path : Path
+    names : sequence of str
+        The varied names, in column order.
+    units : mapping, optional
+        Unit of each varied name, for its header.
+    """
+
+    #: rows formatted at a time (bounds the text held in memory)
+    ROWS = 8192
+
+    def __init__(self, path: str | Path, names: Sequence[str], units: Mapping[str, str] | None = None):
+        self.path = Path(path)
+        self.columns = [*names, *SAMPLE_COLUMNS]
+        self._names = list(names)
+        try:
+            self._file = open(self.path, "w", encoding="utf-8", newline="")
+        except OSError as exc:
+            raise PretrialError(f"{self.path}: cannot write ({exc.strerror})") from None
+        self._error: BaseException | None = None
+        self._put(_csv_text(_sample_headers(self._names, units), []))
+        self._queue: queue.Queue[dict[str, np.ndarray] | None] = queue.Queue(maxsize=1)
+        self._thread = threading.Thread(target=self._drain, name="montecarlo.csv", daemon=True)
+        self._thread.start()
+
+    def __enter__(self) -> SamplesCSV:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, *exc: object) -> None:
+        self.close(report=exc_type is None)  # an error already on its way wins over the writer's
+
+    def close(self, report: bool = True) -> None:
+        """Write what is queued, close the file; raise the writer's error (a full disk) if ``report``."""
+        if self._thread.is_alive():
+            self._queue.put(None)
+            self._thread.join()
+        self._file.close()
+        if report and self._error is not None:
+            raise self._error
+
+    def write(self, block: Mapping[str, Any]) -> None:
+        """Queue a block's rows: one array per varied name plus "seed", "success", "failure", "score"."""
+        if self._error is not None:
+            raise self._error
+        part = {k: np.atleast_1d(np.asarray(block[k])) for k in self.columns}
+        check_samples(part)
+        self._queue.put(part)
+
+    def _drain(self) -> None:
+        while (block := self._queue.get()) is not None:
+            if self._error is not None:
+                continue  # keep taking blocks, so the caller never waits on a dead writer
+            try:
+                for lo in range(0, len(block["score"]), self.ROWS):
+                    part = {k: v[lo:lo + self.ROWS] for k, v in block.items()}
+                    self._put(_csv_text(None, _sample_rows(part, self._names)))
+            except BaseException as exc:  # handed to the caller's thread
+                self._error = exc
+
+    def _put(self, text: str) -> None:
+        try:
+            self._file.write(text)
+        except OSError as exc:
+            raise PretrialError(f"{self.path}: write failed ({exc.strerror})") from None
 
 
 # --------------------------------------------------------------------------- #
@@ -847,9 +935,20 @@ def _loops(results: Mapping[str, Any]) -> list[tuple[str, Mapping[str, Any], Seq
     return loops
 
 
-def write_plots(results: Mapping[str, Any], out_dir: Path, samples: Mapping[str, Any] | None = None
-                ) -> dict[str, str]:
-    """Draw every plot that has data into ``out_dir``; returns written file name -> caption, in report order."""
+def _histograms(samples: Mapping[str, Any] | SampleHistograms | None) -> SampleHistograms | None:
+    """The Monte Carlo histograms, from per-sample arrays (checked) or as the sweep computed them."""
+    if samples is None or isinstance(samples, SampleHistograms):
+        return samples
+    check_samples(samples)
+    return sample_histograms(lambda: [samples], ["score", *_sample_names(samples)])
+
+
+def write_plots(results: Mapping[str, Any], out_dir: Path,
+                samples: Mapping[str, Any] | SampleHistograms | None = None) -> dict[str, str]:
+    """Draw every plot that has data into ``out_dir``; returns written file name -> caption, in report order.
+
+    ``samples``: the Monte Carlo samples as arrays, or their histograms (:class:`~pretrial.samples.SampleHistograms`).
+    """
     base = results.get("baseline") or {}
     required = results.get("required_success_rate")
     sets = [(label, part.get("margins") or []) for label, part in (("policy", results), ("LQR baseline", base))]
@@ -869,9 +968,10 @@ def write_plots(results: Mapping[str, Any], out_dir: Path, samples: Mapping[str,
             sweep_plots.plot_success_curve(curves, required, out_dir / file)
             written[file] = f"Success rate against {name} with the Wilson 95 % interval"
     mc = results.get("montecarlo")
-    if mc and samples is not None and check_samples(samples) > 0:
-        varied = mc.get("varied") or [{"name": n, "unit": ""} for n in _sample_names(samples)]
-        sweep_plots.plot_montecarlo(samples, varied, out_dir / "montecarlo.png")
+    hist = _histograms(samples) if mc else None
+    if hist is not None and hist.samples > 0:
+        varied = mc.get("varied") or [{"name": n, "unit": ""} for n in hist.columns if n != "score"]
+        sweep_plots.plot_montecarlo(hist, varied, out_dir / "montecarlo.png")
         written["montecarlo.png"] = "Monte Carlo: score and varied values, successes vs failures"
     maps = [(label, part["success_map"]) for label, part in (("policy", results), ("LQR baseline", base))
             if part.get("success_map")]
@@ -897,7 +997,8 @@ def _check_results(results: Any) -> None:
                               f"{results.get('schema_version')!r} is not pretrial.sweep version 1")
 
 
-def write_report(results: dict, out_dir: Path, samples: dict[str, np.ndarray] | None = None) -> list[Path]:
+def write_report(results: dict, out_dir: Path, samples: Mapping[str, Any] | SampleHistograms | None = None
+                 ) -> list[Path]:
     """Write ``margins.csv``, the plots, ``report.md`` and a self-contained ``report.html`` into ``out_dir``.
 
     Parameters
@@ -906,9 +1007,10 @@ def write_report(results: dict, out_dir: Path, samples: dict[str, np.ndarray] | 
         The sweep results (``results.json``, schema "pretrial.sweep" version 1); analyses not run are None.
     out_dir : Path
         Output directory (created if missing).
-    samples : dict of arrays, optional
+    samples : dict of arrays or SampleHistograms, optional
         The Monte Carlo samples (one array per varied name plus "seed", "success", "failure",
-        "score") for the histograms; without them the Monte Carlo plot is left out.
+        "score"), or their histograms as :func:`pretrial.sweep.montecarlo` returns them; without
+        them the Monte Carlo plot is left out.
 
     Returns
     -------

@@ -16,8 +16,11 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
+from contextlib import ExitStack
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -30,6 +33,7 @@ from .execution import Executor
 from .perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
 from .plan import Z2, Plan, Vary
 from .rollout import keyed_scenarios, run_episodes
+from .samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
 
 #: rows per work item: fixed, so results never depend on the number of workers
 CHUNK = 4096
@@ -146,23 +150,20 @@ class Campaign:
         failure = np.empty(n, dtype=object)
         score = np.zeros(n)
         steps = np.zeros(n, dtype=np.int64)
-        items, where = [], []
+        chunks = []
         for dt in np.unique(period):
             rows = np.flatnonzero(period == dt)
             physics = self.plant(float(dt))
             base = physics.param_table.resolve_batch(self.base_params, 1)
-            for lo in range(0, len(rows), CHUNK):
-                r = rows[lo:lo + CHUNK]
-                params = np.repeat(base, len(r), axis=0)
-                settings = {k: v[r] for k, v in vals.items()}
-                items.append((physics, self.policy, params, settings, seeds[r], episodes[r], self.max_steps(physics),
-                              self.plan.quality))
-                where.append(r)
-        # map in groups so progress can be shown between them
+            chunks += [(physics, base, rows[lo:lo + CHUNK]) for lo in range(0, len(rows), CHUNK)]
+        # map in groups so progress can be shown between them; a group's work items are built when it
+        # runs (all the parameter rows of a big batch at once would cost more than its results)
         group = max(1, getattr(self.executor, "workers", 1))
-        for g in range(0, len(items), group):
-            for r, (s, f, sc, st) in zip(where[g:g + group], self.executor.map(_run_chunk, items[g:g + group]),
-                                         strict=True):
+        for g in range(0, len(chunks), group):
+            part = chunks[g:g + group]
+            items = [(physics, self.policy, np.repeat(base, len(r), axis=0), {k: v[r] for k, v in vals.items()},
+                      seeds[r], episodes[r], self.max_steps(physics), self.plan.quality) for physics, base, r in part]
+            for (_, _, r), (s, f, sc, st) in zip(part, self.executor.map(_run_chunk, items), strict=True):
                 success[r], failure[r], score[r], steps[r] = s, f, sc, st
                 if self.progress is not None:
                     self.progress(len(r))
@@ -212,8 +213,12 @@ def _quote(text: str) -> str:
 def _modes(words: np.ndarray) -> dict[str, int]:
     failed = words[words != ""]
     names, counts = np.unique(failed, return_counts=True)
-    order = np.lexsort((names, -counts))
-    return {str(names[i]): int(counts[i]) for i in order}
+    return _ordered_modes(dict(zip(names.tolist(), counts.tolist(), strict=True)))
+
+
+def _ordered_modes(counts: Mapping[str, int]) -> dict[str, int]:
+    """Failure words by count, commonest first (ties in name order)."""
+    return {str(k): int(n) for k, n in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))}
 
 
 def _commonest(words: np.ndarray) -> str | None:
@@ -377,16 +382,12 @@ def _commonest_modes(modes: dict[str, int]) -> str | None:
 # --------------------------------------------------------------------------- #
 # Monte Carlo
 # --------------------------------------------------------------------------- #
-def _unit_samples(n: int, d: int, seed: int, sampler: str) -> np.ndarray:
-    from scipy.stats import qmc
-
-    rng = np.random.default_rng(seed)
-    if sampler == "random":
-        return rng.random((n, d))
-    engine = qmc.Sobol(d, scramble=True, seed=rng) if sampler == "sobol" else qmc.LatinHypercube(d, seed=rng)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # Sobol balance warnings for n not a power of two
-        return engine.random(n)
+#: Monte Carlo samples drawn, run and written per block, so memory stays flat in their number. A whole
+#: number of chunks and a constant (not the number of workers): the chunks, hence the results, are the
+#: same on every executor, and with no control period varied they are the chunks of one batch of all rows
+MC_BLOCK = 32 * CHUNK
+#: score quantiles in the Monte Carlo summary
+SCORE_QUANTILES = (0.01, 0.05, 0.5)
 
 
 def _from_unit(v: Vary, u: np.ndarray) -> np.ndarray:
@@ -401,39 +402,98 @@ def _from_unit(v: Vary, u: np.ndarray) -> np.ndarray:
     return lo + u * (hi - lo)
 
 
-def montecarlo(c: Campaign, seed: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+@dataclass
+class _Lowest:
+    """The K lowest-scoring samples so far, in ``numpy.lexsort((index, score))`` order (NaN scores last)."""
+
+    k: int
+    rows: list[tuple[tuple[bool, float, int], dict[str, Any]]] = field(default_factory=list)
+
+    def add(self, index: np.ndarray, score: np.ndarray, block: Mapping[str, np.ndarray]) -> None:
+        """Offer a block's samples (global sample numbers ``index``, columns ``block``)."""
+        for i in np.lexsort((index, score))[: self.k]:
+            nan = bool(np.isnan(score[i]))
+            key = (nan, 0.0 if nan else float(score[i]), int(index[i]))
+            self.rows.append((key, {name: col[i] for name, col in block.items()}))
+        self.rows = sorted(self.rows, key=lambda r: r[0])[: self.k]
+
+
+def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Path | None = None
+               ) -> tuple[dict[str, Any], SampleHistograms]:
     """Joint samples of every varied name, one episode each with its own seed.
 
-    Returns the summary (schema ``montecarlo``) and the per-sample arrays.
+    The samples are drawn, run and written :data:`MC_BLOCK` at a time, so memory does not grow
+    with their number: each block's rows go to ``csv_path`` as it finishes, and only aggregates
+    stay (counts of successes and of each failure mode, the :data:`WORST_LISTED` lowest scores,
+    and a scratch copy of the numeric columns in an anonymous file in ``scratch``). The score
+    quantiles are exact, found by a second pass over that copy
+    (:func:`pretrial.samples.exact_quantiles`): the very numbers ``numpy.quantile`` gave when
+    every sample was in memory, so results.json did not change with streaming; a fixed-bin
+    histogram would have approximated them. The report's histograms come from the same copy.
+
+    Parameters
+    ----------
+    c : Campaign
+    seed : int
+        The analysis seed (unit samples and per-sample episode seeds derive from it).
+    csv_path : Path, optional
+        ``montecarlo.csv`` to write (streamed; the caller makes it atomic, e.g. in a directory
+        renamed at the end); None writes no CSV.
+    scratch : Path, optional
+        Directory of the scratch file (default: the system's temporary directory).
+
+    Returns
+    -------
+    summary : dict
+        Schema ``montecarlo`` of results.json.
+    histograms : SampleHistograms
+        Score and varied values per outcome, for the report's plot.
     """
+    from .report import SamplesCSV
+
     n = c.plan.budgets["montecarlo_samples"]
     vary = c.plan.vary
-    u = _unit_samples(n, len(vary), seed, c.plan.budgets["montecarlo_sampler"])
-    values = {v.name: _from_unit(v, u[:, i]) for i, v in enumerate(vary)}
-    if CONTROL_PERIOD in values:  # each distinct period is its own plant: keep them few
-        values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
-    seeds = streams.episode_keys(np.uint64(seed), np.arange(n))
-    batch = c.evaluate(values, seeds, np.zeros(n, dtype=np.int64))
-    successes = int(batch.success.sum())
+    names = [v.name for v in vary]
+    successes, modes, lowest, has_nan = 0, Counter[str](), _Lowest(WORST_LISTED), False
+    with ExitStack() as stack:
+        store = stack.enter_context(ColumnStore([*names, "score", "success"], n, scratch))
+        csv = stack.enter_context(SamplesCSV(csv_path, names, {v.name: v.unit for v in vary})) if csv_path else None
+        start = 0
+        for u in unit_blocks(n, len(vary), seed, c.plan.budgets["montecarlo_sampler"], MC_BLOCK):
+            index = np.arange(start, start + len(u))
+            start += len(u)
+            values = {v.name: _from_unit(v, u[:, i]) for i, v in enumerate(vary)}
+            if CONTROL_PERIOD in values:  # each distinct period is its own plant: keep them few
+                values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
+            seeds = streams.episode_keys(np.uint64(seed), index)
+            batch = c.evaluate(values, seeds, np.zeros(len(u), dtype=np.int64))
+            block = {**values, "seed": seeds, "success": batch.success, "failure": batch.failure, "score": batch.score}
+            if csv is not None:
+                csv.write(block)
+            store.append(block)
+            successes += int(batch.success.sum())
+            modes.update(_modes(batch.failure))
+            has_nan = has_nan or bool(np.isnan(batch.score).any())
+            lowest.add(index, batch.score, block)
+        quant = exact_quantiles(lambda: (b["score"] for b in store.blocks(["score"])), n, SCORE_QUANTILES, has_nan)
+        hist = sample_histograms(store.blocks, ["score", *names])
     lo, hi = wilson_interval(successes, n)
-    order = np.lexsort((np.arange(n), batch.score))
     worst = []
-    for i in order[:WORST_LISTED]:
-        if batch.success[i]:
+    for _, row in lowest.rows:
+        if row["success"]:
             break
-        vals = {k: float(v[i]) for k, v in values.items()}
-        worst.append({"values": vals, "seed": int(seeds[i]), "score": float(batch.score[i]), "success": False,
-                      "failure": str(batch.failure[i]), "replay": c.replay_command(vals, int(seeds[i]), 1)})
-    quant = {str(q): float(np.quantile(batch.score, q)) for q in (0.01, 0.05, 0.5)}
+        vals = {k: float(row[k]) for k in names}
+        worst.append({"values": vals, "seed": int(row["seed"]), "score": float(row["score"]), "success": False,
+                      "failure": str(row["failure"]), "replay": c.replay_command(vals, int(row["seed"]), 1)})
     summary = {
         "samples": n, "successes": successes, "success_rate": successes / n, "ci95": [float(lo), float(hi)],
-        "failure_modes": _modes(batch.failure), "sampler": c.plan.budgets["montecarlo_sampler"],
+        "failure_modes": _ordered_modes(modes), "sampler": c.plan.budgets["montecarlo_sampler"],
         "varied": [{"name": v.name, "unit": v.unit, "distribution": v.distribution, "low": v.box_low,
                     "high": v.box_high, "mean": v.mean, "std": v.std} for v in vary],
-        "score_quantiles": quant, "worst": worst, "samples_file": "montecarlo.csv", "seed": seed,
+        "score_quantiles": {str(q): float(quant[q]) for q in SCORE_QUANTILES}, "worst": worst,
+        "samples_file": "montecarlo.csv", "seed": seed,
     }
-    samples = {**values, "seed": seeds, "success": batch.success, "failure": batch.failure, "score": batch.score}
-    return summary, samples
+    return summary, hist
 
 
 # --------------------------------------------------------------------------- #
@@ -725,11 +785,12 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 
-def run_analyses(c: Campaign, say: Callable[[str], None] | None = None
-                 ) -> tuple[dict[str, Any], dict[str, np.ndarray] | None]:
-    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo samples).
+def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_csv: Path | None = None,
+                 scratch: Path | None = None) -> tuple[dict[str, Any], SampleHistograms | None]:
+    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo histograms).
 
-    ``say`` receives one line as each analysis starts (progress where no bar can be drawn).
+    ``say`` receives one line as each analysis starts (progress where no bar can be drawn);
+    ``samples_csv`` and ``scratch`` are :func:`montecarlo`'s ``csv_path`` and ``scratch``.
     """
     plan = c.plan
     run = set(plan.analyses)
@@ -763,7 +824,7 @@ def run_analyses(c: Campaign, say: Callable[[str], None] | None = None
         res["margins"] = margins(c, seed("margins"))
     if "montecarlo" in run:
         starting("montecarlo")
-        res["montecarlo"], samples = montecarlo(c, seed("montecarlo"))
+        res["montecarlo"], samples = montecarlo(c, seed("montecarlo"), samples_csv, scratch)
     if "worstcase" in run:
         starting("worstcase")
         res["worstcase"] = worstcase(c, seed("worstcase"))

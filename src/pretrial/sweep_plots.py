@@ -17,6 +17,7 @@ import numpy as np
 
 from .margins import disk_ranges
 from .plots import _figure, save_figure
+from .samples import SampleHistograms
 
 Array = np.ndarray
 #: colours of the compared controllers (policy first, LQR baseline second)
@@ -287,26 +288,30 @@ def _cell_edges(v: Array) -> Array:
 # Monte Carlo
 # --------------------------------------------------------------------------- #
 @plain_text
-def plot_montecarlo(samples: Mapping[str, Array], varied: Sequence[Mapping[str, Any]], path: str | Path) -> None:
-    """Histogram of the score split by success and failure, then one such histogram per varied name."""
-    ok = np.asarray(samples["success"], dtype=bool)
+def plot_montecarlo(hist: SampleHistograms, varied: Sequence[Mapping[str, Any]], path: str | Path) -> None:
+    """Histogram of the score split by success and failure, then one such histogram per varied name.
+
+    ``hist`` holds the counts (:func:`pretrial.samples.sample_histograms`), so the samples themselves
+    need not be in memory.
+    """
     columns = [("score", "episode score")] + [(v["name"], f"{v['name']}{_unit(v.get('unit'))}")
-                                              for v in varied if v["name"] in samples]
+                                              for v in varied if v["name"] in hist.columns]
     cols = min(3, len(columns))
     rows = math.ceil(len(columns) / cols)
     fig = _figure(4.0 * cols, 3.0 * rows)
     for k, (key, label) in enumerate(columns):
         ax = fig.add_subplot(rows, cols, k + 1)
-        v = np.asarray(samples[key], dtype=float)
-        keep = np.isfinite(v)
-        if keep.any():
-            edges = np.histogram_bin_edges(v[keep], bins=30)
-            ax.hist([v[keep & ok], v[keep & ~ok]], bins=edges, stacked=True, color=["tab:green", "tab:red"],
-                    label=[f"success ({int(np.sum(keep & ok))})", f"failure ({int(np.sum(keep & ~ok))})"])
+        counts = hist.columns[key]
+        if counts is not None:
+            edges, ok, failed = counts
+            # one weighted value per bin (its left edge) redraws the counted bars
+            ax.hist([edges[:-1], edges[:-1]], bins=edges, weights=[ok, failed], stacked=True,
+                    color=["tab:green", "tab:red"],
+                    label=[f"success ({int(ok.sum())})", f"failure ({int(failed.sum())})"])
         ax.set_xlabel(label)
         ax.set_ylabel("samples")
         ax.legend(fontsize=7)
-    fig.suptitle(f"Monte Carlo: {len(ok)} samples", fontsize=10)
+    fig.suptitle(f"Monte Carlo: {hist.samples} samples", fontsize=10)
     save_figure(fig, path)
 
 

@@ -4,7 +4,8 @@ The sweep directory holds ``results.json`` (schema "pretrial.sweep" version 1,
 documented in the README; no clock times, so a rerun gives an equal file),
 ``montecarlo.csv``, ``margins.csv``, plots, ``report.md``, ``report.html`` and
 ``manifest.json`` (versions, times, command line, executor). It is written
-into a temporary sibling directory and renamed into place at the end, so an
+into a temporary sibling directory (the Monte Carlo samples stream into its
+``montecarlo.csv`` as they finish) and renamed into place at the end, so an
 error or Ctrl-C never leaves a partial sweep directory behind.
 """
 
@@ -18,9 +19,11 @@ import shutil
 import sys
 import tempfile
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from pretrial_envs.core import Physics
 
@@ -30,6 +33,9 @@ from .errors import InputError
 from .files import canonical_json, check_writable_dir, sha256_hex, write_json
 from .perturb import diverged_warning
 from .plan import Plan, load_plan
+
+if TYPE_CHECKING:
+    from .samples import SampleHistograms
 
 LQR = "lqr"
 SCHEMA = "pretrial.sweep"
@@ -211,12 +217,15 @@ def prepare(policy_arg: str, plan_path: str, baseline: bool = False) -> Prepared
 
 
 def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = False,
-          log: Any = None, progress: bool = True, prepared: Prepared | None = None
-          ) -> tuple[dict[str, Any], dict[str, Any] | None]:
+          log: Any = None, progress: bool = True, prepared: Prepared | None = None, stage: Path | None = None
+          ) -> tuple[dict[str, Any], SampleHistograms | None]:
     """Run a plan on a controller (and on the LQR baseline when asked).
 
     ``prepared`` is :func:`prepare`'s result when the caller checked the inputs already.
-    Returns the results document (with its content hash) and the Monte Carlo samples.
+    ``stage`` is the hidden directory the sweep is written into (:func:`staged`): the Monte Carlo
+    samples stream into its ``montecarlo.csv`` as they finish, and the scratch file that
+    aggregates them lives there (without ``stage`` no CSV is written).
+    Returns the results document (with its content hash) and the Monte Carlo histograms.
     """
     from .sweep import Campaign, planned_episodes, run_analyses
 
@@ -230,13 +239,13 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     try:
         say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
         camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
-        part, samples = run_analyses(camp, say)
+        part, samples = run_analyses(camp, say, stage / "montecarlo.csv" if stage else None, stage)
         results = _results_skeleton(ctl, plan, policy_arg) | part
         results["baseline"] = None
         if lqr is not None:
             say("baseline: the same plan on the LQR baseline")
             base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
-            base_part, _ = run_analyses(base_camp, say)
+            base_part, _ = run_analyses(base_camp, say, None, stage)
             results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
     finally:
         if bar is not None:
@@ -260,27 +269,41 @@ def _default_out(plan: str, policy_arg: str) -> Path:
     return Path("sweeps") / f"{Path(plan).stem}-{who}-{stamp}"
 
 
-def write_outputs(out: Path, results: dict[str, Any], samples: dict[str, Any] | None, manifest: dict[str, Any]
-                  ) -> list[Path]:
-    """Write the sweep directory: into a temporary sibling first, renamed into place at the end."""
-    from .report import write_report, write_samples_csv
+@contextmanager
+def staged(out: Path) -> Iterator[Path]:
+    """A hidden sibling of ``out`` (``.NAME.partial-*``) to write the sweep into.
 
+    :func:`write_outputs` renames it into place when everything is written; on any error or
+    Ctrl-C before that it is removed, so no partial sweep directory is ever left behind
+    (only ``kill -9`` can leave the hidden one).
+    """
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
     try:
         tmp.chmod(0o777 & ~_umask())  # mkdtemp makes it 0700; the sweep directory follows the umask like mkdir
-        write_json(tmp / "results.json", results)
-        if samples is not None:
-            units = {v["name"]: v["unit"] for v in results["montecarlo"]["varied"]}
-            write_samples_csv(tmp / "montecarlo.csv", samples, units)
-        write_report(results, tmp, samples)
-        write_json(tmp / "manifest.json", manifest)
-        if out.exists():
-            out.rmdir()  # empty (checked before the work started)
-        os.replace(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+        yield tmp
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)  # gone already once renamed into place
+
+
+def write_outputs(out: Path, results: dict[str, Any], samples: Any, manifest: dict[str, Any],
+                  stage: Path | None = None) -> list[Path]:
+    """Write the sweep directory: into the hidden ``stage`` (:func:`staged`; a new one if None), renamed into place.
+
+    ``samples`` are the Monte Carlo histograms (or per-sample arrays) for the report's plot;
+    ``montecarlo.csv`` is already in ``stage``, streamed there by the sweep.
+    """
+    from .report import write_report
+
+    if stage is None:
+        with staged(out) as tmp:
+            return write_outputs(out, results, samples, manifest, tmp)
+    write_json(stage / "results.json", results)
+    write_report(results, stage, samples)
+    write_json(stage / "manifest.json", manifest)
+    if out.exists():
+        out.rmdir()  # empty (checked before the work started)
+    os.replace(stage, out)
     return sorted(out.iterdir())
 
 
@@ -327,17 +350,18 @@ def run_cli(args: argparse.Namespace) -> int:
     quiet = args.json
     log = (lambda _l: None) if quiet else (lambda line: print(line, flush=True))
     started = time.time()
-    with make_executor(args.workers, args.dask) as executor:
-        results, samples = sweep(args.policy, args.plan, executor, baseline=baseline, log=log,
-                                 progress=not quiet and sys.stderr.isatty(), prepared=prepared)
-        ex = executor.describe()
-    manifest = {
-        "pretrial": __version__, "python": platform.python_version(), "platform": platform.platform(),
-        "command": ["pretrial", *getattr(args, "argv", [])], "started_utc": time.strftime(
-            "%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)), "seconds": round(time.time() - started, 3),
-        "executor": ex, "results_sha256": results["content_sha256"], "versions": _versions(),
-    }
-    files = write_outputs(out, results, samples, manifest)
+    with staged(out) as stage:
+        with make_executor(args.workers, args.dask) as executor:
+            results, samples = sweep(args.policy, args.plan, executor, baseline=baseline, log=log,
+                                     progress=not quiet and sys.stderr.isatty(), prepared=prepared, stage=stage)
+            ex = executor.describe()
+        manifest = {
+            "pretrial": __version__, "python": platform.python_version(), "platform": platform.platform(),
+            "command": ["pretrial", *getattr(args, "argv", [])], "started_utc": time.strftime(
+                "%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)), "seconds": round(time.time() - started, 3),
+            "executor": ex, "results_sha256": results["content_sha256"], "versions": _versions(),
+        }
+        files = write_outputs(out, results, samples, manifest, stage)
     if args.json:
         emit_json({**results, "directory": str(out), "files": [str(f) for f in files]})
     else:
