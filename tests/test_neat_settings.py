@@ -14,9 +14,8 @@ import neat
 import pytest
 from neat.activations import ActivationFunctionSet
 from neat.aggregations import AggregationFunctionSet
-from neat.reporting import ReporterSet
 
-from pretrial.config import _neat_text, load_config
+from pretrial.config import _neat_text, load_config, neat_generation_zero
 from pretrial.errors import InputError
 
 BASE = '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n[neat]\n'
@@ -30,12 +29,8 @@ def _neat(tmp_path: Path, settings: dict) -> neat.Config:
 
 
 def _generation_zero(config: neat.Config):
-    reporters = ReporterSet()
-    stagnation = config.stagnation_type(config.stagnation_config, reporters)
-    reproduction = config.reproduction_type(config.reproduction_config, reporters, stagnation)
-    population = reproduction.create_new(config.genome_type, config.genome_config, config.pop_size)
-    species = config.species_set_type(config.species_set_config, reporters)
-    species.speciate(config, population, 0)
+    """neat-python's own calls for a first population (as the library's Population makes it)."""
+    _, population, species, reproduction = neat_generation_zero(config)
     return reproduction, population, species
 
 

@@ -502,7 +502,10 @@ def _neat_refusal(text: str) -> str | None:
         config = neat.Config(
             neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet, neat.DefaultStagnation, tmp
         )
-        _breed_once(config)
+        _, population, species, reproduction = neat_generation_zero(config)
+        for genome in population.values():
+            genome.fitness = 0.0
+        reproduction.reproduce(config, species, config.pop_size, 0)
     except Exception as exc:  # neat-python raises bare Exception/RuntimeError/AssertionError
         return " ".join(str(exc).split()) or type(exc).__name__
     finally:
@@ -511,8 +514,16 @@ def _neat_refusal(text: str) -> str | None:
     return None
 
 
-def _breed_once(config: Any) -> None:
-    """Generation 0 of ``config`` and one breeding of it, as a run does them (neat-python raises on a conflict)."""
+def neat_generation_zero(config: Any) -> tuple[Any, dict[int, Any], Any, Any]:
+    """A first population of a ``neat.Config``, sorted into species, as a run starts it.
+
+    Uses the global ``random`` module as neat-python does (seed it first for a run).
+
+    Returns
+    -------
+    reporters, population, species, reproduction
+        neat-python's ReporterSet, genome key -> genome, DefaultSpeciesSet, DefaultReproduction.
+    """
     from neat.reporting import ReporterSet
 
     reporters = ReporterSet()
@@ -521,9 +532,7 @@ def _breed_once(config: Any) -> None:
     population = reproduction.create_new(config.genome_type, config.genome_config, config.pop_size)
     species = config.species_set_type(config.species_set_config, reporters)
     species.speciate(config, population, 0)
-    for genome in population.values():
-        genome.fitness = 0.0
-    reproduction.reproduce(config, species, config.pop_size, 0)
+    return reporters, population, species, reproduction
 
 
 # --------------------------------------------------------------------------- #

@@ -35,7 +35,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__, checkpoint
-from .config import Config, build_neat_ini, check_budget, dump_toml
+from .config import Config, build_neat_ini, check_budget, dump_toml, neat_generation_zero
 from .errors import InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
@@ -250,14 +250,7 @@ class Evolution:
         }
         cfg = self.neat_config
         random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, 0))
-        from neat.reporting import ReporterSet
-
-        reporters = ReporterSet()
-        stagnation = cfg.stagnation_type(cfg.stagnation_config, reporters)
-        reproduction = cfg.reproduction_type(cfg.reproduction_config, reporters, stagnation)
-        population = reproduction.create_new(cfg.genome_type, cfg.genome_config, cfg.pop_size)
-        species = cfg.species_set_type(cfg.species_set_config, reporters)
-        species.speciate(cfg, population, 0)
+        _, population, species, reproduction = neat_generation_zero(cfg)
         self.state = RunState(0, population, species, reproduction, None, [], [], [], 0)
         self.save_checkpoint()  # also writes the manifest: from here on the directory resumes
 
