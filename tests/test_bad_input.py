@@ -580,3 +580,11 @@ def test_replay_refuses_an_existing_output_unless_forced(capsys, work, policy):
     capsys.readouterr()
     assert main(["replay", str(policy), "--csv", str(kept), "--force"]) == 0
     assert kept.read_text().startswith("episode,step,time")  # replaced by the trace, as asked
+
+
+@pytest.mark.parametrize("argv", [
+    ["replay", "lqr", "--env", "CartPole-v0", "--set", "pole_mass=0.2", "--set", "pole_mass=0.3"],
+    ["envs", "CartPole-v0", "--option", "poles=2", "--option", "poles=1"],
+])
+def test_a_name_given_twice(capsys, work, argv):
+    assert "given twice" in refused(capsys, argv)

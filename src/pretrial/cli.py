@@ -42,6 +42,8 @@ def parse_assignments(items: Sequence[str] | None, flag: str) -> dict[str, Any]:
         name, sep, value = item.partition("=")
         if not sep or not name.strip() or not value.strip():
             raise InputError(f"{flag} {item!r}: expected NAME=VALUE")
+        if name.strip() in out:  # the later one would win without a word
+            raise InputError(f"{flag} {item!r}: {name.strip()} is given twice")
         out[name.strip()] = parse_literal(value.strip())
     return out
 
