@@ -17,6 +17,7 @@ from typing import Any
 from . import __version__
 from .console import emit_json, table
 from .errors import InputError, PretrialError
+from .signals import EXIT_INTERRUPTED, EXIT_TERMINATED, Terminated, stop_on_signals
 
 
 # --------------------------------------------------------------------------- #
@@ -179,6 +180,8 @@ def _configure_evolve(p: argparse.ArgumentParser) -> None:
     p.add_argument("--generations", type=lambda t: _whole(t, 1), help="override [run].generations")
     p.add_argument("--workers", type=_workers_arg, help="worker processes: N or auto (default: the config's, auto)")
     p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")
+    p.add_argument("--trust-config-dask", action="store_true",
+                   help="use the scheduler the config's [run] dask names (it receives and returns pickles)")
     p.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint")
     p.add_argument("--quiet", action="store_true", help="no per-generation lines")
     p.add_argument("--json", action="store_true", help="print a final JSON summary instead of text")
@@ -202,6 +205,8 @@ def _run_evolve(args: argparse.Namespace) -> int:
         run = dataclasses.replace(run, workers=args.workers)
     if args.dask is not None:
         run = dataclasses.replace(run, dask=args.dask)
+    else:
+        _check_config_dask(cfg.path, run.dask, args.trust_config_dask)
     cfg = dataclasses.replace(cfg, run=run)
     if args.resume:
         run_dir = Path(args.resume)
@@ -245,6 +250,22 @@ def _run_evolve(args: argparse.Namespace) -> int:
         for line in nxt:
             print(f"  {line}")
     return 0
+
+
+def _check_config_dask(path: str, address: str | None, trusted: bool) -> None:
+    """Refuse a remote scheduler named by a config file unless the command line confirms it.
+
+    Work goes to a Dask scheduler as pickles and results come back as pickles, which run code when
+    loaded: whoever runs that scheduler can run code here. A config file is shared and copied, so
+    it may not choose a host on its own; ``local`` (a cluster on this machine) is always allowed.
+    """
+    if address in (None, "local") or trusted:
+        return
+    raise InputError(
+        f"{path}: [run] dask = {address!r} would send pickled work to that scheduler and load the pickles it "
+        f"returns; a config file may not choose that: give --dask {address} on the command line "
+        "(or add --trust-config-dask)"
+    )
 
 
 def plan_beside(config_path: str | Path, name: str) -> Path | None:
@@ -326,15 +347,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     # what the manifest records: the words actually given, also when main() is called with a list
     args.argv = list(sys.argv[1:] if argv is None else argv)
     try:
-        return int(args._run(args) or 0)
+        with stop_on_signals():
+            return int(args._run(args) or 0)
     except PretrialError as exc:
         if args.debug:
             traceback.print_exc()
         print(f"pretrial: error: {exc.message}", file=sys.stderr)
         return exc.exit_code
+    except Terminated:
+        print("pretrial: terminated (SIGTERM)", file=sys.stderr)
+        return EXIT_TERMINATED
     except KeyboardInterrupt:
         print("pretrial: interrupted", file=sys.stderr)
-        return 130
+        return EXIT_INTERRUPTED
     except BrokenPipeError:
         # output piped into e.g. `head`, which closed early: not an error of ours
         sys.stderr.close()

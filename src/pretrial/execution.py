@@ -9,14 +9,18 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import contextlib
+import ctypes
 import logging
 import multiprocessing as mp
 import os
 import signal
+import sys
+import threading
+import time
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
-from .errors import PretrialError
+from .errors import InputError, PretrialError
 
 
 class Executor:
@@ -42,7 +46,7 @@ class Executor:
 
 
 def _ignore_sigint() -> None:
-    """Pool initializer: a worker leaves Ctrl-C to the parent.
+    """A worker leaves Ctrl-C to the parent.
 
     A terminal sends SIGINT to the whole process group, workers included; a worker that
     raised KeyboardInterrupt would print its own traceback while the parent shuts it down.
@@ -50,6 +54,59 @@ def _ignore_sigint() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     if hasattr(signal, "pthread_sigmask"):
         signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})  # see _sigint_blocked
+
+
+#: prctl(2) option: the signal this process gets when its parent dies (<linux/prctl.h>)
+_PR_SET_PDEATHSIG = 1
+#: seconds between two looks at the parent where prctl(2) is not available
+_PARENT_POLL_S = 0.5
+
+
+def exit_with_parent(parent: int, use_prctl: bool = True) -> None:
+    """Make this process end when process ``parent`` dies, however it dies.
+
+    A parent killed by ``kill -9`` or the OOM killer runs no clean-up, and its orphaned workers
+    would wait for work forever (holding the parent's stdout open, so ``| tee`` never ends). On
+    Linux the kernel sends this process SIGKILL when the parent dies (``prctl(PR_SET_PDEATHSIG)``;
+    strictly, when the parent's thread that started it ends: pools are started by the caller's
+    thread). Elsewhere, or with ``use_prctl=False``, a daemon thread polls ``os.getppid()``, which
+    changes when an orphan is re-parented.
+
+    Parameters
+    ----------
+    parent : int
+        The parent's process id, as the parent saw it (``os.getpid()`` there): if the parent is
+        already gone when this runs, the process exits at once.
+    use_prctl : bool
+        Use ``prctl`` when it is available (False: the portable thread, for tests).
+    """
+    if not (use_prctl and _set_parent_death_signal()):
+        threading.Thread(target=_watch_parent, args=(parent,), name="pretrial-parent-watch", daemon=True).start()
+    if os.getppid() != parent:  # died before we were watching
+        os._exit(1)
+
+
+def _set_parent_death_signal() -> bool:
+    """``prctl(PR_SET_PDEATHSIG, SIGKILL)`` through libc; False where that is not available."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0) == 0
+    except (OSError, AttributeError):  # pragma: no cover - a libc without prctl
+        return False
+
+
+def _watch_parent(parent: int) -> None:
+    while os.getppid() == parent:
+        time.sleep(_PARENT_POLL_S)
+    os._exit(1)  # no clean-up: the parent that would use our results is gone
+
+
+def _worker_start(parent: int) -> None:
+    """Pool initializer: leave Ctrl-C to the parent, and never outlive it."""
+    _ignore_sigint()
+    exit_with_parent(parent)
 
 
 @contextlib.contextmanager
@@ -87,7 +144,7 @@ class ProcessExecutor(Executor):
         if self._pool is None:
             # spawn: workers start clean (no inherited threads or locks from the parent)
             self._pool = cf.ProcessPoolExecutor(self.workers, mp_context=mp.get_context("spawn"),
-                                                initializer=_ignore_sigint)
+                                                initializer=_worker_start, initargs=(os.getpid(),))
         return self._pool
 
     def map(self, fn: Callable[[Any], Any], items: Sequence[Any]) -> list[Any]:
@@ -154,6 +211,8 @@ class DaskExecutor(Executor):
             ) from None
         self._cluster = None
         self._env_set = False
+        if address != "local":
+            check_dask_address(address)  # before any connection, run directory or cluster
         try:
             if address == "local":
                 n = workers or os.cpu_count() or 1
@@ -176,6 +235,9 @@ class DaskExecutor(Executor):
         except OSError as exc:
             self._restore_env()
             raise PretrialError(f"--dask {address}: cannot reach the scheduler ({exc})") from None
+        except (ValueError, TypeError) as exc:  # an address dask's parser let through and its client did not
+            self._restore_env()
+            raise InputError(f"--dask {address!r}: not a scheduler address ({exc})") from None
         except BaseException:
             self._restore_env()
             raise
@@ -225,6 +287,31 @@ class DaskExecutor(Executor):
 
     def describe(self) -> dict[str, Any]:
         return {"executor": self.name, "workers": self.workers, "scheduler": self.address}
+
+
+def check_dask_address(address: str) -> None:
+    """Refuse a Dask scheduler address that names no host and port (``tcp://``, ``:::``, ``host:x``).
+
+    Parsed by dask's own address functions, so every scheme dask knows (tcp, tls, ws, ...) is
+    accepted as dask would read it.
+
+    Raises
+    ------
+    InputError
+        One line naming the address.
+    """
+    from distributed.comm.addressing import get_address_host_port
+
+    try:
+        host, port = get_address_host_port(address)
+    except (ValueError, TypeError) as exc:
+        reason = str(exc)
+    else:
+        if host and 0 < port < 2**16:
+            return
+        reason = "no host" if not host else f"port {port} is not in 1-65535"
+    raise InputError(f"--dask {address!r}: not a scheduler address ({reason}); expected 'local' or "
+                      "tcp://HOST:PORT, e.g. tcp://10.0.0.5:8786")
 
 
 def resolve_workers(workers: int | str | None) -> int:
