@@ -22,13 +22,14 @@ import copy
 import csv
 import io
 import json
+import math
 import platform
 import random
 import sys
 import time
 import tomllib
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
@@ -36,7 +37,7 @@ import numpy as np
 
 from . import __version__, checkpoint
 from .config import Config, build_neat_ini, check_budget, dump_toml, neat_generation_zero
-from .errors import InputError, PretrialError
+from .errors import FileFormatError, InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
@@ -259,31 +260,34 @@ class Evolution:
         return any((self.run_dir / n).exists() for n in ("checkpoints", "plots", "config.resolved.toml", "neat.ini"))
 
     def resume(self) -> None:
-        """Continue from the newest checkpoint recorded in the manifest."""
+        """Continue from the newest checkpoint recorded in the manifest.
+
+        Every file the resume needs is read and checked before anything is written, so a damaged
+        run directory is refused with one line and left exactly as it was.
+        """
         if not self.manifest_path.is_file():
             if self._stopped_before_first_checkpoint():
                 raise InputError(f"{self.run_dir}: the run was stopped before its first checkpoint (no "
                                  "manifest.json); delete the directory and start the run again")
             raise InputError(f"{self.run_dir}: not a run directory (no manifest.json)")
-        try:
-            self.manifest = json.loads(self.manifest_path.read_text())
-        except (OSError, ValueError) as exc:
-            raise InputError(f"{self.manifest_path}: unreadable ({exc})") from None
+        self.manifest = _read_manifest(self.manifest_path, self.run_dir / "checkpoints")
         self._check_same_config()
-        recorded = self.manifest.get("checkpoints") or {}
+        recorded = self.manifest["checkpoints"]
         if not recorded:
             raise InputError(f"{self.run_dir}: no checkpoint yet; delete the directory and start the run again")
         check_writable_dir(self.run_dir)
+        name = max(recorded, key=checkpoint.generation_of)
+        self.neat_config = _read_neat_ini(self.ini_path)
+        path = checkpoint.recorded_path(self.run_dir / "checkpoints", name, self.manifest_path)
+        self.state = _run_state(checkpoint.load(path, recorded[name]), path)
+        timing_rows = _read_timing(self.run_dir / "timing.csv", self.state.generation)
+        # everything read: from here on the run directory is written
+        from neat.reporting import ReporterSet
+
         from .files import remove_partial_writes
 
         for d in (self.run_dir, self.run_dir / "checkpoints", self.run_dir / "plots"):
             remove_partial_writes(d)  # left by a process killed mid-write; the files they were for are whole
-        name = max(recorded, key=lambda n: int(n.split("-")[-1].split(".")[0]))
-        self.neat_config = _neat_config(self.ini_path)
-        st = checkpoint.load(self.run_dir / "checkpoints" / name, recorded[name])
-        self.state = RunState(**st)
-        from neat.reporting import ReporterSet
-
         reporters = ReporterSet()
         self.state.species.reporters = reporters
         self.state.reproduction.reporters = reporters
@@ -295,10 +299,7 @@ class Evolution:
 
             gc.node_indexer = itertools.count(self.state.node_indexer_next)
         self._rewrite_history()
-        timing = self.run_dir / "timing.csv"
-        if timing.exists():  # read once: rows of generations the checkpoint already holds
-            with open(timing, newline="") as f:
-                self._timing_rows = [r for r in csv.DictReader(f) if int(r["generation"]) < self.state.generation]
+        self._timing_rows = timing_rows
         # the checkpoint loaded and only settings a resume may change differ: record them (e.g. more generations)
         atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
         self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
@@ -463,7 +464,7 @@ class Evolution:
         if gc.node_indexer is not None:
             nxt = int(repr(gc.node_indexer)[len("count(") : -1])
         st.node_indexer_next = nxt
-        name = f"generation-{st.generation}.pkl"
+        name = checkpoint.file_name(st.generation)
         state = dict(st.__dict__)
         digest = checkpoint.save(self.run_dir / "checkpoints" / name, state)
         self.manifest.setdefault("checkpoints", {})[name] = digest
@@ -543,6 +544,81 @@ class Evolution:
         names_in = list(physics.obs_names[: physics.obs_dim // blocks])
         names_out = list(physics.action_names[: physics.action_dim // blocks])
         plot_network(doc["network"], plots / "network.png", names_in, names_out)
+
+
+# --------------------------------------------------------------------------- #
+# the run directory read back on --resume: each file checked, one line naming it
+# --------------------------------------------------------------------------- #
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+def _read_manifest(path: Path, checkpoints: Path) -> dict[str, Any]:
+    """The run's manifest.json: a JSON object whose ``checkpoints`` maps ``generation-N.pkl`` to a SHA-256."""
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError, RecursionError) as exc:  # ValueError: bad JSON or UTF-8
+        raise FileFormatError(f"{path}: unreadable ({_one_line(exc)})") from None
+    if not isinstance(manifest, dict):
+        raise FileFormatError(f"{path}: not a run manifest (a JSON object is expected, not "
+                              f"{type(manifest).__name__})")
+    recorded = manifest.setdefault("checkpoints", {})
+    if not isinstance(recorded, dict):
+        raise FileFormatError(f"{path}: 'checkpoints' must map checkpoint file names to SHA-256 hashes")
+    for name, digest in recorded.items():
+        checkpoint.recorded_path(checkpoints, name, path)
+        if not (isinstance(digest, str) and len(digest) == 64 and all(c in "0123456789abcdef" for c in digest)):
+            raise FileFormatError(f"{path}: checkpoints: {name}: {digest!r} is not a SHA-256 hash (64 hex digits)")
+    return manifest
+
+
+def _read_neat_ini(path: Path) -> Any:
+    """The run's neat.ini as a ``neat.Config``."""
+    try:
+        return _neat_config(path)
+    except Exception as exc:  # neat-python raises bare Exception, RuntimeError, configparser and value errors
+        raise FileFormatError(f"{path}: damaged neat-python settings ({_one_line(exc)})") from None
+
+
+def _run_state(state: Any, path: Path) -> RunState:
+    """A loaded checkpoint's state as a RunState (refusing one written by another pretrial version)."""
+    names = {f.name for f in fields(RunState)}
+    if not isinstance(state, dict) or not set(state) <= names or "generation" not in state:
+        raise FileFormatError(f"{path}: not a checkpoint of this pretrial version ({__version__})")
+    try:
+        return RunState(**state)
+    except TypeError as exc:
+        raise FileFormatError(f"{path}: not a checkpoint of this pretrial version ({_one_line(exc)})") from None
+
+
+def _read_timing(path: Path, generation: int) -> list[dict[str, str]]:
+    """timing.csv rows of the generations before ``generation`` (those the checkpoint holds); none if absent."""
+    if not path.exists():
+        return []
+    hint = "it only records seconds per generation: delete it to resume without the earlier timings"
+    try:
+        with open(path, newline="", encoding="utf-8") as f:
+            reader = csv.DictReader(f)
+            if reader.fieldnames != ["generation", "seconds"]:
+                raise ValueError(f"header {reader.fieldnames} is not generation,seconds")
+            rows = [_timing_row(r, reader.line_num) for r in reader]
+    except (OSError, ValueError, csv.Error) as exc:  # ValueError: bad UTF-8 or a bad row
+        raise FileFormatError(f"{path}: damaged ({_one_line(exc)}); {hint}") from None
+    return [r for r in rows if int(r["generation"]) < generation]
+
+
+def _timing_row(row: dict[Any, Any], line: int) -> dict[str, str]:
+    if None in row or None in row.values():
+        raise ValueError(f"line {line}: expected 2 fields")
+    if not (row["generation"].isascii() and row["generation"].isdigit()):
+        raise ValueError(f"line {line}: generation {row['generation']!r} is not a whole number")
+    try:
+        seconds = float(row["seconds"])
+    except ValueError:
+        seconds = float("nan")
+    if not (math.isfinite(seconds) and seconds >= 0):
+        raise ValueError(f"line {line}: seconds {row['seconds']!r} is not a duration")
+    return row
 
 
 #: config keys a resume may change: they decide how long and where, not what the run computes

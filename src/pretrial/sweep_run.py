@@ -462,6 +462,60 @@ def _no_constant(text: str) -> Any:
     raise ValueError(f"{text} is not a number a results file may hold (written with allow_nan=False)")
 
 
+def _is_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _is_dict_or_none(v: Any) -> bool:
+    return v is None or isinstance(v, dict)
+
+
+def _is_list_or_none(v: Any) -> bool:
+    return v is None or isinstance(v, list)
+
+
+#: top-level keys of results.json (schema version 1, README "results.json") -> (check, what it must be)
+_RESULTS_KEYS: dict[str, tuple[Any, str]] = {
+    "policy": (lambda v: isinstance(v, dict), "an object"),
+    "env": (lambda v: isinstance(v, dict), "an object"),
+    "plan": (lambda v: isinstance(v, dict), "an object"),
+    "seed": (_is_int, "a whole number"),
+    "required_success_rate": (_is_number, "a number"),
+    "episodes_per_point": (_is_int, "a whole number"),
+    "margins": (_is_list_or_none, "a list or null"),
+    "montecarlo": (_is_dict_or_none, "an object or null"),
+    "worstcase": (_is_dict_or_none, "an object or null"),
+    "sensitivity": (_is_dict_or_none, "an object or null"),
+    "success_map": (_is_dict_or_none, "an object or null"),
+    "linear": (_is_list_or_none, "a list or null"),
+    "linear_sampled": (_is_list_or_none, "a list or null"),
+    "linear_details": (_is_dict_or_none, "an object or null"),
+    "integrator_check": (_is_dict_or_none, "an object or null"),
+    "diverged": (_is_dict_or_none, "an object or null"),
+    "requirements": (lambda v: isinstance(v, list), "a list"),
+    "verdict": (lambda v: v in ("pass", "fail"), '"pass" or "fail"'),
+    "baseline": (_is_dict_or_none, "an object or null"),
+    "cautions": (lambda v: isinstance(v, list) and all(isinstance(c, str) for c in v), "a list of text"),
+    "content_sha256": (lambda v: isinstance(v, str), "text (a SHA-256)"),
+}
+
+
+def _check_results_schema(p: Path, doc: dict[str, Any]) -> None:
+    """Refuse a results document of another schema version, or missing a top-level key or of the wrong type."""
+    version = doc.get("schema_version")
+    if not _is_int(version) or version != SCHEMA_VERSION:
+        raise InputError(f"{p}: schema_version {version!r} is not one this pretrial reads ({SCHEMA_VERSION})")
+    for key, (ok, what) in _RESULTS_KEYS.items():
+        if key not in doc:
+            raise InputError(f"{p}: not a complete sweep results file ('{key}' is missing)")
+        if not ok(doc[key]):
+            raise InputError(f"{p}: '{key}' must be {what}, not {type(doc[key]).__name__}")
+
+
 def read_results(path: str | Path) -> dict[str, Any]:
     """Read a results.json back, refusing an edited or damaged file."""
     p = Path(path)
@@ -473,6 +527,7 @@ def read_results(path: str | Path) -> dict[str, Any]:
         raise InputError(f"{p}: not a readable results file ({exc})") from None
     if not isinstance(doc, dict) or doc.get("schema") != SCHEMA:
         raise InputError(f"{p}: not a pretrial sweep results file")
+    _check_results_schema(p, doc)  # before the hash: anyone can compute a hash over a made-up file
     stored = doc.pop("content_sha256", None)
     if stored != sha256_hex(canonical_json(doc)):
         raise InputError(f"{p}: content hash mismatch: the file was edited or damaged")
