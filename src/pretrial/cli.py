@@ -304,6 +304,7 @@ COMMANDS: list[Command] = [
     ("replay", *_lazy("replay")),
     ("sweep", *_lazy("sweep_run")),
     ("export", *_lazy("export")),
+    ("calibrate", *_lazy("calibrate")),
 ]
 
 HELP = {
@@ -312,6 +313,7 @@ HELP = {
     "replay": "replay a policy (or the LQR baseline) and measure what it does",
     "sweep": "run a perturbation plan: margins, Monte Carlo, worst case, linear margins, verdict",
     "export": "write a policy as dependency-free C99 or Python for the target",
+    "calibrate": "estimate plant parameters from bench logs, with bootstrap intervals",
 }
 
 
