@@ -117,3 +117,75 @@ def test_short_verdict_agrees_with_the_linear_loop():
     # checked against python-control in tests/test_linear.py)
     bad = short_verdict(ctl.plan, ctl.physics, ctl.base_params, _Scaled(ctl.controller, 0.1), _Serial(), 64, 99)
     assert bad["verdict"] == "fail" and bad["met"] < good["met"]
+
+
+def test_linear_shortfall_zero_for_the_lqr_and_whole_when_unstable():
+    from pretrial.sweep_run import controlled
+    from pretrial.training import linear_shortfall
+
+    ctl = controlled("lqr", str(ROOT / "configs" / "sweeps" / "cartpole.toml"))
+    # the LQR's margins exceed the plan's 6 dB / 45 deg on both loops (the sweep shows 12.4 dB / 54.8 deg)
+    assert linear_shortfall(ctl.plan, ctl.physics, ctl.base_params, ctl.controller) == 0.0
+    # a tenth of the gain: both loops unstable, each of the two requirements missed whole on each loop
+    assert linear_shortfall(ctl.plan, ctl.physics, ctl.base_params, _Scaled(ctl.controller, 0.1)) == 4.0
+
+
+def test_training_streams_never_meet_the_plans_own(tmp_path):
+    from pretrial import streams
+    from pretrial.config import load_config
+    from pretrial.evolution import _SCENARIO_STREAM, _scenarios, make_task
+    from pretrial.sweep import _SEED_KEYS, derive_seed
+
+    plan_path = ROOT / "configs" / "sweeps" / "cartpole.toml"
+    cfg_path = tmp_path / "c.toml"
+    cfg_path.write_text(f'[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 16\nplan = "{plan_path}"\n'
+                        "[run]\nseed = 1\n", encoding="utf-8")  # the plan's own seed is 1 too
+    cfg = load_config(cfg_path)
+    task = make_task(cfg)
+    assert task.distribution is not None and task.quality is not None
+    train = np.concatenate([_scenarios(task, 16, 1, _SCENARIO_STREAM, k, generation=k).keys for k in range(20)])
+    mc_seed = derive_seed(1, _SEED_KEYS["montecarlo"])
+    mc = streams.episode_keys(streams.episode_keys(np.uint64(mc_seed), np.arange(2000)), np.zeros(2000, np.int64))
+    assert len(set(train.tolist()) & set(mc.tolist())) == 0
+    assert len(set(train.tolist())) == len(train)
+
+
+def test_evolve_against_a_plan_records_the_predicted_verdict(tmp_path, capsys):
+    import json
+
+    from pretrial.cli import main
+
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 4\nobjective = "cvar:0.5"\n'
+                   "[neat]\npop_size = 12\n[run]\ngenerations = 2\nseed = 3\nlinear_every = 1\nlinear_top = 2\n"
+                   "verdict_samples = 16\nfinalists = 2\nvalidation_episodes = 4\nworkers = 1\n", encoding="utf-8")
+    plan = ROOT / "configs" / "sweeps" / "cartpole.toml"
+    assert main(["evolve", str(cfg), "--plan", str(plan), "--out", str(tmp_path / "run"), "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["predicted_verdict"] in ("pass", "fail") and summary["confirm"].startswith("pretrial sweep ")
+    doc = json.loads((tmp_path / "run" / "champion.json").read_text(encoding="utf-8"))
+    tr = doc["training"]
+    assert tr["objective"] == "cvar:0.5" and tr["plan"]["name"] == "cartpole.toml"
+    assert tr["plan"]["vary"] == ["pole_mass", "cart_mass", "pole_half_length", "actuator_gain",
+                                  "actuator_delay_s", "sensor_noise_std"]
+    rows = tr["predicted_verdict"]["requirements"]
+    assert rows and all({"name", "required", "measured", "pass"} <= set(r) for r in rows)
+    assert all("requirements_met" in f for f in tr["finalists"])
+
+
+@pytest.mark.parametrize(("text", "needle"), [
+    ('plan = "nope.toml"', "task.plan"),
+    ('objective = "median"', "task.objective"),
+    ('plan = "PLAN"\n[task.randomize]\npole_mass = [0.08, 0.12]', "task.randomize"),
+])
+def test_training_config_errors_name_the_key(tmp_path, text, needle):
+    from pretrial.config import load_config
+    from pretrial.errors import InputError
+
+    plan = ROOT / "configs" / "sweeps" / "cartpole.toml"
+    path = tmp_path / "c.toml"
+    path.write_text('[task]\nenv = "pretrial/CartPole-v0"\n' + text.replace("PLAN", str(plan)) + "\n",
+                    encoding="utf-8")
+    with pytest.raises(InputError) as err:
+        load_config(path)
+    assert needle in str(err.value) and "\n" not in str(err.value)

@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
-from .console import emit_json, table
+from .console import emit_json, fmt_number, table
 from .errors import InputError, PretrialError
 from .signals import EXIT_INTERRUPTED, EXIT_TERMINATED, Terminated, stop_on_signals
 
@@ -182,6 +182,8 @@ def _configure_evolve(p: argparse.ArgumentParser) -> None:
     p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")
     p.add_argument("--trust-config-dask", action="store_true",
                    help="use the scheduler the config's [run] dask names (it receives and returns pickles)")
+    p.add_argument("--plan", metavar="PLAN.toml",
+                   help="train against a sweep plan: its scenario, dispersions and quality limits (as [task] plan)")
     p.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint")
     p.add_argument("--quiet", action="store_true", help="no per-generation lines")
     p.add_argument("--json", action="store_true", help="print a final JSON summary instead of text")
@@ -196,6 +198,8 @@ def _run_evolve(args: argparse.Namespace) -> int:
     from .execution import make_executor
 
     cfg = load_config(args.config)
+    if getattr(args, "plan", None):
+        cfg = _with_plan(cfg, args.plan)
     run = cfg.run
     if args.seed is not None:
         run = dataclasses.replace(run, seed=args.seed)
@@ -237,6 +241,15 @@ def _run_evolve(args: argparse.Namespace) -> int:
     print(f"champion: {summary['champion']}  (validation success {summary['validation_success_rate']:.1%} "
           f"over {cfg.run.validation_episodes} fresh episodes, {summary['evaluations']} evaluations, "
           f"{summary['seconds']:.1f} s)")
+    if "predicted_verdict" in summary:
+        met, judged = summary["requirements_met"]
+        print(f"predicted verdict on {Path(cfg.task.plan).name}: {summary['predicted_verdict'].upper()} "
+              f"({met} of {judged} requirements met on a short run; margins, worst case and sensitivity are "
+              "left to the sweep)")
+        for r in summary["requirements"]:
+            mark = {True: "yes", False: "NO"}.get(r["pass"], "n/a")
+            print(f"  {mark:3s}  {r['name']}: {fmt_number(r['measured'])} (required {fmt_number(r['required'])})")
+        print(f"confirm with:  {summary['confirm']}")
     names = {c[0] for c in COMMANDS}
     nxt = []
     if "replay" in names:
@@ -250,6 +263,23 @@ def _run_evolve(args: argparse.Namespace) -> int:
         for line in nxt:
             print(f"  {line}")
     return 0
+
+
+def _with_plan(cfg: Any, plan: str) -> Any:
+    """``cfg`` training against the plan at ``plan`` (``--plan``: a path from the working directory)."""
+    import dataclasses
+
+    if not Path(plan).is_file():
+        raise InputError(f"--plan {plan}: no such file")
+    if cfg.task.randomize:
+        raise InputError(f"--plan {plan}: {cfg.path} has [task.randomize]; with a plan its [[vary]] dispersions are "
+                         "the training distribution: move those ranges into the plan")
+    task = dataclasses.replace(cfg.task, plan=str(Path(plan).resolve()))
+    new = dataclasses.replace(cfg, task=task)
+    from .evolution import load_training_plan
+
+    load_training_plan(new)  # every plan error now, before anything is written
+    return new
 
 
 def _check_config_dask(path: str, address: str | None, trusted: bool) -> None:

@@ -44,6 +44,8 @@ class TaskConfig:
     network: str = "whole"  # "shared": one network per repeated observation block (drones)
     randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
     randomize_ramp: int = 0  # generations over which the ranges widen from nominal; 0 = full at once
+    plan: str | None = None  # a sweep plan whose scenario and dispersions are the training distribution
+    objective: str = "mean"  # "mean", "cvar:A" or "success_lower_bound" (see pretrial.training)
 
 
 @dataclass(frozen=True)
@@ -58,6 +60,9 @@ class RunConfig:
     dask: str | None = None
     finalists: int = 5
     validation_episodes: int = 32
+    linear_every: int = 0  # with a plan: every N generations the best genomes' linear loops are checked (0: never)
+    linear_top: int = 3  # how many of the best genomes are linearized
+    verdict_samples: int = 256  # with a plan: Monte Carlo samples of each finalist's short verdict
 
 
 @dataclass(frozen=True)
@@ -95,6 +100,10 @@ class Config:
             task["randomize"] = {k: list(v) for k, v in self.task.randomize.items()}
         if self.task.randomize_ramp:
             task["randomize_ramp"] = self.task.randomize_ramp
+        if self.task.plan is not None:
+            task["plan"] = self.task.plan
+        if self.task.objective != "mean":
+            task["objective"] = self.task.objective
         out["neat"] = dict(self.neat)
         run = {k: v for k, v in self.run.__dict__.items() if v is not None}
         out["run"] = run
@@ -270,7 +279,19 @@ def load_config(path: str | Path) -> Config:
     ramp = t.take("randomize_ramp", int, 0, lambda v: 0 <= v <= 1_000_000,
                   "generations over which the [task.randomize] ranges widen from the nominal values, "
                   "a whole number from 0 (full ranges at once) to 1000000")
+    plan_path = t.take("plan", str, None, lambda v: bool(v.strip()), "the path of a sweep plan")
+    objective = t.take("objective", str, "mean")
     t.finish()
+    from .training import parse_objective
+
+    try:
+        parse_objective(objective)
+    except ValueError as exc:
+        raise InputError(f"{path}: task.objective: {exc}") from None
+    if plan_path is not None:  # relative to the config file, so a config and its plan move together
+        plan_path = str((Path(path).parent / plan_path).resolve())
+        if not Path(plan_path).is_file():
+            raise InputError(f"{path}: task.plan: {plan_path}: no such file")
 
     from .generic import make_plant
 
@@ -324,8 +345,11 @@ def load_config(path: str | Path) -> Config:
         if plant_refusal(physics, name):
             raise InputError(f"{path}: {key}: {plant_refusal(physics, name)}")
         randomize[name] = (lo, hi)
-    if ramp and not randomize:
+    if ramp and not randomize and plan_path is None:
         raise InputError(f"{path}: task.randomize_ramp: {ramp} needs ranges to widen: add [task.randomize]")
+    if plan_path is not None and randomize:
+        raise InputError(f"{path}: task.randomize: with task.plan the plan's [[vary]] dispersions are the training "
+                         "distribution; move these ranges into the plan")
     if network == "shared" and not getattr(physics, "obs_blocks", 0):
         raise InputError(
             f"{path}: task.network: 'shared' needs an env with repeated observation blocks; {env} has none"
@@ -368,13 +392,20 @@ def load_config(path: str | Path) -> Config:
     dask = r.take("dask", str, None, lambda v: bool(v.strip()), "'local' or a scheduler address like tcp://host:8786")
     finalists = r.take("finalists", int, 5, lambda v: v >= 1, "a whole number >= 1")
     validation = r.take("validation_episodes", int, 32, limit=EPISODES)
+    linear_every = r.take("linear_every", int, 0, lambda v: 0 <= v <= 1_000_000,
+                          "generations between linear-loop checks of the best genomes, 0 for none")
+    linear_top = r.take("linear_top", int, 3, lambda v: 1 <= v <= 1000, "a whole number from 1 to 1000")
+    verdict_samples = r.take("verdict_samples", int, 256, lambda v: 16 <= v <= 1_000_000,
+                             "Monte Carlo samples per finalist, 16 to 1000000")
     r.finish()
 
     cfg = Config(
         path=path,
-        task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize, ramp),
+        task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize, ramp, plan_path,
+                        objective),
         neat=neat,
-        run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation),
+        run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation, linear_every,
+                      linear_top, verdict_samples),
         source_text=text,
     )
     # surface neat-python's own objections now, naming the key when one alone upsets it

@@ -42,15 +42,24 @@ from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
 from .perturb import describe_values, diverged_warning, nominal_value
-from .policy import IOMap, PopulationPolicy, policy_to_dict, save_policy
+from .policy import IOMap, PopulationPolicy, policy_from_genome, policy_to_dict, save_policy
+from .quality import QualityLimits
 from .rollout import Scenarios, draw_scenarios, run_episodes
+from .training import (
+    Objective,
+    PlanDistribution,
+    linear_shortfall,
+    objective_fitness,
+    parse_objective,
+    short_verdict,
+)
 
 #: genomes per work item: fixed, so results never depend on the number of workers
 CHUNK = 32
 
 HISTORY_FIELDS = ("generation", "evaluations", "best", "mean", "stdev", "species", "best_nodes", "best_connections")
 
-_SCENARIO_STREAM, _NEAT_STREAM, _VALIDATION_STREAM = 1, 2, 3
+_SCENARIO_STREAM, _NEAT_STREAM, _VALIDATION_STREAM, _VERDICT_STREAM = 1, 2, 3, 4
 
 
 # --------------------------------------------------------------------------- #
@@ -68,6 +77,16 @@ class Task:
     randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
     randomize_ramp: int = 0
     nominal: dict[str, float] = field(default_factory=dict)  # of each randomized name
+    #: with a plan: its dispersions (the training distribution) and its loop-quality limits
+    distribution: PlanDistribution | None = None
+    quality: QualityLimits | None = None
+    objective: Objective = field(default_factory=lambda: Objective("mean"))
+
+    def ramp_fraction(self, generation: int | None) -> float:
+        """How far the training distribution has widened at ``generation`` (1: fully; None: validation)."""
+        if generation is None or generation >= self.randomize_ramp:
+            return 1.0
+        return generation / self.randomize_ramp
 
     def ranges(self, generation: int | None) -> dict[str, tuple[float, float]]:
         """The randomized ranges a generation draws from (``None``: the full ranges, for validation).
@@ -103,20 +122,36 @@ _DIVERGED_WARNINGS = 3
 
 
 def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Mean return and success rate per network, and diverged episodes per scenario (runs in a worker)."""
+    """Fitness (the task's objective) and success rate per network, and diverged episodes per scenario.
+
+    Runs in a worker. With the default objective the fitness is the mean return.
+    """
     task, specs, scenarios = item
     physics = task.physics()
     policy = PopulationPolicy(PopulationNetwork(specs), task.io)
-    out = run_episodes(physics, policy, scenarios, task.max_steps)
+    out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
+                       quality=task.quality)
     diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
-    return out.returns.mean(axis=1), out.success.mean(axis=1), diverged
+    fitness = objective_fitness(task.objective, out.returns, out.success, out.score)
+    return fitness, out.success.mean(axis=1), diverged
 
 
 def make_task(cfg: Config) -> Task:
-    """Derive the network's inputs, outputs and scaling from the env."""
+    """Derive the network's inputs, outputs and scaling from the env (and the plan, when training against one)."""
     from .generic import make_plant
 
+    if cfg.task.plan is not None:
+        return _plan_task(cfg)
     physics = make_plant(cfg.task.env, **cfg.task.env_options)
+    io_map = _io_map(cfg, physics)
+    steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
+    opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
+    nominal = {name: nominal_value(physics, params, name) for name in cfg.task.randomize}
+    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize), cfg.task.randomize_ramp, nominal,
+                objective=parse_objective(cfg.task.objective))
+
+
+def _io_map(cfg: Config, physics: Any) -> IOMap:
     blocks = physics.obs_blocks if cfg.task.network == "shared" else 1
     n_in, n_out = physics.obs_dim // blocks, physics.action_dim // blocks
     scale = physics.obs_scale
@@ -124,14 +159,48 @@ def make_task(cfg: Config) -> Task:
     act = str(cfg.neat.get("activation_default", "tanh"))
     # sigmoid outputs live in [0, 1]; map them onto the actuator range [-1, 1]
     a_scale, a_offset = ((2.0, -1.0) if act == "sigmoid" else (1.0, 0.0))
-    io_map = IOMap(
-        n_in, n_out, blocks, obs_scale=obs_scale,
-        action_scale=[a_scale] * physics.action_dim, action_offset=[a_offset] * physics.action_dim,
-    )
-    steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
-    opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
-    nominal = {name: nominal_value(physics, params, name) for name in cfg.task.randomize}
-    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize), cfg.task.randomize_ramp, nominal)
+    return IOMap(n_in, n_out, blocks, obs_scale=obs_scale, action_scale=[a_scale] * physics.action_dim,
+                 action_offset=[a_offset] * physics.action_dim)
+
+
+def load_training_plan(cfg: Config) -> tuple[Any, Any, dict[str, Any], dict[str, float]]:
+    """(plan, physics, env options, physics overrides) for a config that trains against ``cfg.task.plan``.
+
+    The plan's scenario wins where both speak (options, start ranges, params,
+    horizon), as the sweep will run it; the structural options (poles,
+    observe, hoist) must agree.
+    """
+    from .generic import make_plant
+    from .plan import load_plan
+    from .sweep_run import _scenario_head
+
+    path = cfg.task.plan
+    plan_env, plan_options, plan_start = _scenario_head(path)
+    if plan_env is not None and plan_env != cfg.task.env:
+        raise InputError(f"{path}: scenario.env: the plan is for {plan_env}, the config trains {cfg.task.env}")
+    options = dict(cfg.task.env_options)
+    for k, v in plan_options.items():
+        if k in ("poles", "observe", "hoist") and options.get(k, v) != v:
+            raise InputError(f"{path}: scenario.options.{k}: {v!r} does not fit the config ({k}={options[k]!r})")
+        options[k] = v
+    if plan_start:
+        options["start_spread"] = {**dict(options.get("start_spread") or {}), **plan_start}
+    try:
+        physics = make_plant(cfg.task.env, **options)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{path}: scenario.options: {exc}") from None
+    plan = load_plan(path, physics, cfg.task.env)
+    params = {**cfg.task.params, **plan.params}
+    return plan, physics, options, params
+
+
+def _plan_task(cfg: Config) -> Task:
+    plan, physics, options, params = load_training_plan(cfg)
+    horizon = plan.horizon if plan.horizon is not None else cfg.task.horizon
+    steps = physics.max_steps if horizon is None else max(1, round(horizon / physics.dt))
+    dist = PlanDistribution.from_plan(plan.vary, physics, params)
+    return Task(cfg.task.env, options, params, steps, _io_map(cfg, physics), {}, cfg.task.randomize_ramp,
+                dict(dist.nominal), dist, plan.quality, parse_objective(cfg.task.objective))
 
 
 # --------------------------------------------------------------------------- #
@@ -143,6 +212,11 @@ def _seed_int(seed: int, *key: int) -> int:
 
 def _scenarios(task: Task, n: int, seed: int, *key: int, generation: int | None = None) -> Scenarios:
     ss = np.random.SeedSequence(seed, spawn_key=key)
+    if task.distribution is not None:  # the plan's dispersions, on the run's own streams (never the plan's)
+        physics = task.physics()
+        base = physics.param_table.resolve_batch(task.params, n)
+        seed64 = int(ss.generate_state(1, dtype=np.uint64)[0])
+        return task.distribution.draw(physics, n, seed64, base, task.ramp_fraction(generation))
     return draw_scenarios(task.physics(), n, ss, task.params, task.ranges(generation))
 
 
@@ -211,6 +285,9 @@ class Evolution:
         self.timing: list[float] = []  # seconds per generation of this session
         self._timing_rows: list[dict[str, Any]] = []  # timing.csv, earlier sessions included
         self._best_success = 0.0
+        self._linear_met: int | None = None
+        #: (plan, physics, options, params) when training against a plan
+        self._plan = load_training_plan(cfg) if cfg.task.plan is not None else None
 
     # ------------------------------------------------------------ set-up
     def create(self) -> None:
@@ -377,6 +454,8 @@ class Evolution:
                     except PretrialError:
                         pass  # e.g. the disk is full: the previous checkpoint stands, resuming still works
                     raise
+                if self._plan is not None and self.cfg.run.linear_every and k % self.cfg.run.linear_every == 0:
+                    fitness = self._linear_rerank(genomes, fitness)
                 for g, f in zip(genomes, fitness):
                     g.fitness = float(f)
                 st.evaluations += len(genomes) * self.cfg.task.episodes
@@ -434,6 +513,30 @@ class Evolution:
             ) from None
         return self.finish(reached)
 
+    def _policy(self, genome: Any) -> Any:
+        physics = self.task.physics()
+        params = dict(zip(physics.param_table.names, physics.param_table.resolve(self.task.params).tolist()))
+        return policy_from_genome(genome, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
+                                  env_params=params, io=self.task.io)
+
+    def _linear_rerank(self, genomes: Sequence[Any], fitness: np.ndarray) -> np.ndarray:
+        """The best ``linear_top`` genomes, reordered so that those meeting the plan's linear margins come first.
+
+        Their fitness values are permuted among themselves (by shortfall, then
+        fitness): the generation's fitness scale is untouched, only who holds
+        the best values changes.
+        """
+        plan, physics, _, params = self._plan
+        top = np.argsort(-fitness, kind="stable")[: self.cfg.run.linear_top]
+        short = {int(i): linear_shortfall(plan, physics, params, self._policy(genomes[i])) for i in top}
+        values = sorted((float(fitness[i]) for i in top), reverse=True)
+        order = sorted(top.tolist(), key=lambda i: (short[i], -fitness[i], i))
+        out = np.array(fitness, dtype=float)
+        for i, v in zip(order, values, strict=True):
+            out[i] = v
+        self._linear_met = sum(1 for v in short.values() if v == 0.0)
+        return out
+
     def _update_hall(self, genomes: Sequence[Any]) -> None:
         st = self.state
         n = self.cfg.run.finalists
@@ -488,12 +591,19 @@ class Evolution:
         st = self.state
         scen = _scenarios(self.task, self.cfg.run.validation_episodes, self.cfg.run.seed, _VALIDATION_STREAM)
         returns, success = self.evaluate(st.hall, scen, "re-test of the finalists")
-        order = sorted(range(len(st.hall)), key=lambda i: (-success[i], -returns[i], st.hall[i].key))
+        verdicts = self._short_verdicts(st.hall) if self._plan is not None else None
+        if verdicts is not None:  # the plan's requirements first, then the re-test
+            order = sorted(range(len(st.hall)), key=lambda i: (-verdicts[i]["met"], -success[i], -returns[i],
+                                                                st.hall[i].key))
+        else:
+            order = sorted(range(len(st.hall)), key=lambda i: (-success[i], -returns[i], st.hall[i].key))
         i = order[0]
         champ = st.hall[i]
         finalists = [
             {"genome": int(st.hall[j].key), "training_fitness": float(st.hall[j].fitness),
              "validation_return": float(returns[j]), "validation_success_rate": float(success[j])}
+            | ({"requirements_met": verdicts[j]["met"], "requirements_judged": verdicts[j]["judged"]}
+               if verdicts is not None else {})
             for j in order
         ]
         training = {
@@ -509,7 +619,14 @@ class Evolution:
             "config_sha256": self.cfg.content_hash(),
             "validation_episodes": self.cfg.run.validation_episodes,
             "finalists": finalists,
+            "objective": self.task.objective.text,
         }
+        if self._plan is not None:
+            plan = self._plan[0]
+            training["plan"] = {"name": Path(plan.path).name, "content_sha256": plan.content_hash(),
+                                "vary": [v.name for v in self.task.distribution.vary],
+                                "linear_every": self.cfg.run.linear_every, "linear_top": self.cfg.run.linear_top}
+            training["predicted_verdict"] = verdicts[i]
         physics = self.task.physics()
         params = dict(zip(physics.param_table.names, physics.param_table.resolve(self.task.params).tolist()))
         doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
@@ -527,10 +644,23 @@ class Evolution:
             "validation_return": float(returns[i]),
             "seconds": float(sum(self.timing)),
         }
+        if verdicts is not None:
+            summary["predicted_verdict"] = verdicts[i]["verdict"]
+            summary["requirements_met"] = [verdicts[i]["met"], verdicts[i]["judged"]]
+            summary["requirements"] = verdicts[i]["requirements"]
+            summary["confirm"] = f"pretrial sweep {self.run_dir} --plan {self._plan[0].path}"
         self.manifest["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
         self.manifest["seconds_this_session"] = float(sum(self.timing))
         write_json(self.manifest_path, self.manifest)
         return summary
+
+    def _short_verdicts(self, genomes: Sequence[Any]) -> list[dict[str, Any]]:
+        """Each finalist's predicted verdict on a short form of the plan (fresh streams: neither training's nor
+        the plan's own)."""
+        plan, physics, _, params = self._plan
+        seed = _seed_int(self.cfg.run.seed, _VERDICT_STREAM)
+        return [short_verdict(plan, physics, params, self._policy(g), self.executor, self.cfg.run.verdict_samples,
+                              seed) for g in genomes]
 
     def _plots(self, doc: dict[str, Any], physics: Any) -> None:
         from .plots import plot_fitness, plot_network, plot_species

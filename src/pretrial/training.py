@@ -199,3 +199,34 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     judged = [r for r in rows if r["pass"] is not None]
     return {"requirements": rows, "met": sum(bool(r["pass"]) for r in judged), "judged": len(judged),
             "verdict": verdict(rows), "montecarlo": res["montecarlo"]}
+
+
+def linear_shortfall(plan, physics: Physics, params: Mapping[str, float], policy) -> float:
+    """How far ``policy``'s linearized loops fall short of the plan's gain and phase margin requirements.
+
+    The sum over the loops the plan analyses (continuous, sampled) and their
+    channels of each missing share (``(required - measured) / required`` when
+    below); an unstable or unlinearizable loop counts as missing each
+    requirement whole (1 each). A recurrent controller's loops are not
+    analysed (0), as the sweep marks them not applicable.
+    """
+    from .linear import loop_report
+
+    if not getattr(policy, "feed_forward", True):
+        return 0.0
+    wanted = [(key, req) for key, req in (("gain_margin_db", plan.gain_margin_db),
+                                          ("phase_margin_deg", plan.phase_margin_deg)) if req]
+    p = physics.param_table.resolve(dict(params))
+    total = 0.0
+    for sampled in [s for s, name in ((False, "linear"), (True, "linear_sampled")) if name in plan.analyses]:
+        delay = plan.budgets["delay_steps"] if sampled else 0
+        rep = loop_report(physics, policy, p, sampled=sampled, delay_steps=delay)
+        if not rep.linearizable or rep.stable is False:
+            total += len(wanted)
+            continue
+        for ch in rep.channel_dicts():
+            for key, req in wanted:
+                got = ch.get(key)
+                if got is not None and got < req:
+                    total += (req - got) / req
+    return total
