@@ -227,8 +227,9 @@ def _positions(n: int, q: float) -> tuple[int, int, float]:
 
 def _lerp(a: float, b: float, t: float) -> float:
     """numpy.quantile's interpolation between neighbours (the symmetric form from t = 0.5 on)."""
-    diff = np.float64(b) - np.float64(a)
-    return float(np.float64(b) - diff * (1 - t)) if t >= 0.5 else float(np.float64(a) + diff * t)
+    with np.errstate(invalid="ignore"):  # inf - inf is NaN, as in numpy
+        diff = np.float64(b) - np.float64(a)
+        return float(np.float64(b) - diff * (1 - t)) if t >= 0.5 else float(np.float64(a) + diff * t)
 
 
 def exact_quantiles(blocks: Callable[[], Iterable[np.ndarray]], n: int, qs: Sequence[float],
