@@ -588,3 +588,240 @@ def test_replay_refuses_an_existing_output_unless_forced(capsys, work, policy):
 ])
 def test_a_name_given_twice(capsys, work, argv):
     assert "given twice" in refused(capsys, argv)
+
+
+# --------------------------------------------------------------------------- #
+# --dask addresses, a config's scheduler, and a damaged run directory on --resume
+# --------------------------------------------------------------------------- #
+import hashlib as _hashlib  # noqa: E402
+import pickle as _pickle  # noqa: E402
+
+_BAD_DASK = ["tcp://", ":::", "tcp://host:notaport", "tcp://host:99999", "tcp://host", "nosuch://host:8786"]
+
+
+@pytest.mark.parametrize("command", ["evolve", "sweep"])
+@pytest.mark.parametrize("address", _BAD_DASK)
+def test_malformed_dask_address(capsys, work, command, address):
+    pytest.importorskip("dask.distributed", reason="dask.distributed is not installed (pretrial[cluster])")
+    out = work / "out"
+    argv = (["evolve", str(CONFIG), "--out", str(out)] if command == "evolve"
+            else ["sweep", "lqr", "--plan", str(PLAN), "--out", str(out)])
+    before = snapshot(work)
+    line = refused(capsys, [*argv, "--dask", address])
+    assert f"--dask {address!r}" in line and "not a scheduler address" in line, line
+    assert snapshot(work) == before  # no run or sweep directory
+
+
+def _with_run_key(text: str, line: str) -> str:
+    assert "[run]\n" in text
+    return text.replace("[run]\n", f"[run]\n{line}\n", 1)
+
+
+def test_a_config_may_not_choose_a_remote_scheduler(capsys, work):
+    config = work / "remote.toml"
+    config.write_text(_with_run_key(CONFIG.read_text(), 'dask = "tcp://203.0.113.9:8786"'))
+    before = snapshot(work)
+    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    assert "remote.toml" in line and "tcp://203.0.113.9:8786" in line and "--trust-config-dask" in line, line
+    # confirmed on the command line, the config's address is used (and checked like --dask)
+    config.write_text(_with_run_key(CONFIG.read_text(), 'dask = "tcp://"'))
+    pytest.importorskip("dask.distributed", reason="dask.distributed is not installed (pretrial[cluster])")
+    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--trust-config-dask"])
+    assert "not a scheduler address" in line, line
+    assert snapshot(work) == {**before, "remote.toml": config.read_bytes()}
+
+
+_RUN_CONFIG = ('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n[neat]\npop_size = 6\n\n'
+               "[run]\ngenerations = 2\nworkers = 1\n")
+
+
+@pytest.fixture(scope="module")
+def finished_run(tmp_path_factory) -> tuple[Path, Path]:
+    """A tiny finished run (config, run directory) that each case copies and damages."""
+    root = tmp_path_factory.mktemp("resume_run")
+    config = root / "tiny.toml"
+    config.write_text(_RUN_CONFIG)
+    assert main(["evolve", str(config), "--out", str(root / "run"), "--quiet"]) == 0
+    return config, root / "run"
+
+
+class _Loaded:
+    """A pickle that leaves a marker file when loaded: the harm a checkpoint from anywhere could do."""
+
+    def __init__(self, marker: str):
+        self.marker = marker
+
+    def __reduce__(self):
+        return (Path.touch, (Path(self.marker),))
+
+
+def _sha(data: bytes) -> str:
+    return _hashlib.sha256(data).hexdigest()
+
+
+def _manifest_pointing_at(run: Path, target: str, data: bytes) -> None:
+    doc = json.loads((run / "manifest.json").read_text())
+    doc["checkpoints"] = {"generation-0.pkl": doc["checkpoints"]["generation-0.pkl"], target: _sha(data)}
+    (run / "manifest.json").write_text(json.dumps(doc))
+
+
+def _escape_dir(run: Path, marker: Path) -> None:
+    data = _pickle.dumps(_Loaded(str(marker)))
+    (run.parent / "x.pkl").write_bytes(data)  # beside the run, reached as ../../x.pkl from checkpoints/
+    _manifest_pointing_at(run, "../../x.pkl", data)
+
+
+def _absolute(run: Path, marker: Path) -> None:
+    data = _pickle.dumps(_Loaded(str(marker)))
+    (run.parent / "x.pkl").write_bytes(data)
+    _manifest_pointing_at(run, str(run.parent / "x.pkl"), data)
+
+
+def _symlinked(run: Path, marker: Path) -> None:
+    data = _pickle.dumps(_Loaded(str(marker)))
+    (run.parent / "x.pkl").write_bytes(data)
+    (run / "checkpoints" / "generation-9.pkl").symlink_to(run.parent / "x.pkl")
+    _manifest_pointing_at(run, "generation-9.pkl", data)
+
+
+def _replace(name: str, content: bytes) -> Callable[[Path, Path], None]:
+    def damage(run: Path, marker: Path) -> None:
+        (run / name).write_bytes(content)
+
+    return damage
+
+
+def _edit_manifest(edit: Callable[[dict], object]) -> Callable[[Path, Path], None]:
+    def damage(run: Path, marker: Path) -> None:
+        doc = json.loads((run / "manifest.json").read_text())
+        doc = edit(doc) or doc
+        (run / "manifest.json").write_text(json.dumps(doc))
+
+    return damage
+
+
+def _drop_ini_line(key: str) -> Callable[[Path, Path], None]:
+    def damage(run: Path, marker: Path) -> None:
+        ini = run / "neat.ini"
+        lines = [ln for ln in ini.read_text().splitlines(keepends=True) if not ln.startswith(f"{key} ")]
+        ini.write_text("".join(lines))
+
+    return damage
+
+
+def _delete(name: str) -> Callable[[Path, Path], None]:
+    def damage(run: Path, marker: Path) -> None:
+        (run / name).unlink()
+
+    return damage
+
+
+DAMAGED_RUN = [
+    ("manifest-escapes-the-run", _escape_dir, "../../x.pkl"),
+    ("manifest-absolute-path", _absolute, "x.pkl"),
+    ("checkpoint-symlink", _symlinked, "symlink"),
+    ("manifest-array", _replace("manifest.json", b"[1, 2]\n"), "manifest.json"),
+    ("manifest-truncated", _replace("manifest.json", b'{"checkpoints": {"generation-0.pkl": "ab'), "manifest.json"),
+    ("manifest-not-utf8", _replace("manifest.json", b'{"seed": "\xff\xfe"}'), "manifest.json"),
+    ("manifest-deep", _replace("manifest.json", b"[" * 100_000), "manifest.json"),
+    ("manifest-checkpoints-list", _edit_manifest(lambda d: d.update(checkpoints=["generation-0.pkl"])),
+     "manifest.json"),
+    ("manifest-hash-not-text", _edit_manifest(lambda d: d["checkpoints"].update({"generation-2.pkl": 5})),
+     "manifest.json"),
+    ("manifest-odd-name", _edit_manifest(lambda d: d["checkpoints"].update({"generation-two.pkl": "0" * 64})),
+     "generation-two.pkl"),
+    ("neat-ini-empty", _replace("neat.ini", b""), "neat.ini"),
+    ("neat-ini-binary", _replace("neat.ini", bytes(range(256))), "neat.ini"),
+    ("neat-ini-no-pop-size", _drop_ini_line("pop_size"), "neat.ini"),
+    ("neat-ini-missing", _delete("neat.ini"), "neat.ini"),
+    ("timing-header", _replace("timing.csv", b"gen,secs\n0,0.1\n"), "timing.csv"),
+    ("timing-generation", _replace("timing.csv", b"generation,seconds\nzero,0.1\n"), "timing.csv"),
+    ("timing-short-row", _replace("timing.csv", b"generation,seconds\n0\n"), "timing.csv"),
+    ("timing-long-row", _replace("timing.csv", b"generation,seconds\n0,0.1,9\n"), "timing.csv"),
+    ("timing-seconds", _replace("timing.csv", b"generation,seconds\n0,nan\n"), "timing.csv"),
+    ("timing-binary", _replace("timing.csv", b"\xff\xfe\x00\x01" * 20), "timing.csv"),
+    ("config-resolved", _replace("config.resolved.toml", b"[task\n"), "config.resolved.toml"),
+]
+
+
+@pytest.mark.parametrize("damage, needle", [c[1:] for c in DAMAGED_RUN], ids=[c[0] for c in DAMAGED_RUN])
+def test_resume_of_a_damaged_run_directory(capsys, work, finished_run, damage, needle):
+    config, original = finished_run
+    run = work / "runs" / "run"
+    shutil.copytree(original, run)
+    marker = work / "pickle-was-loaded"
+    damage(run, marker)
+    before = snapshot(work)
+    line = refused(capsys, ["evolve", str(config), "--resume", str(run)])
+    assert needle in line, line
+    assert not marker.exists()  # no pickle from outside checkpoints/ was ever loaded
+    assert snapshot(work) == before  # nothing modified
+
+
+def test_resume_of_the_undamaged_run_works(capsys, work, finished_run):
+    # the cases above are refused for their damage, not because this run cannot resume
+    config, original = finished_run
+    shutil.copytree(original, work / "run")
+    assert main(["evolve", str(config), "--resume", str(work / "run"), "--quiet"]) == 0
+
+
+def _results_doc(**changes) -> dict:
+    """A results.json body of schema version 1 (README "results.json"), with its content hash."""
+    from pretrial.files import canonical_json, sha256_hex
+
+    doc = {
+        "schema": "pretrial.sweep", "schema_version": 1,
+        "policy": {"kind": "lqr", "path": None, "content_sha256": None},
+        "env": {"id": "pretrial/CartPole-v0", "options": {}, "params": {}},
+        "plan": {"path": "p.toml", "content_sha256": "0" * 64, "resolved": {}},
+        "seed": 1, "required_success_rate": 0.95, "episodes_per_point": 80,
+        "margins": [], "montecarlo": None, "worstcase": None, "sensitivity": None, "success_map": None,
+        "linear": None, "linear_sampled": None, "linear_details": None, "integrator_check": None,
+        "diverged": None, "requirements": [], "verdict": "fail", "baseline": None, "cautions": ["x"],
+    }
+    for key, value in changes.items():
+        if value is _DROP:
+            doc.pop(key)
+        else:
+            doc[key] = value
+    doc["content_sha256"] = sha256_hex(canonical_json(doc))  # a hash anyone can compute: not a check of trust
+    return doc
+
+
+_DROP = object()
+
+
+@pytest.mark.parametrize("changes, needle", [
+    ({"schema_version": 2}, "schema_version 2"),
+    ({"schema_version": "1"}, "schema_version '1'"),
+    ({"schema_version": True}, "schema_version True"),
+    ({"schema_version": _DROP}, "schema_version None"),
+    ({"verdict": _DROP}, "'verdict' is missing"),
+    ({"verdict": "maybe"}, "'verdict'"),
+    ({"seed": 1.5}, "'seed'"),
+    ({"margins": {}}, "'margins'"),
+    ({"cautions": [1]}, "'cautions'"),
+    ({"required_success_rate": False}, "'required_success_rate'"),
+])
+def test_results_of_another_schema_are_refused(tmp_path, changes, needle):
+    from pretrial.sweep_run import read_results
+
+    good = tmp_path / "good.json"
+    good.write_text(json.dumps(_results_doc()))
+    assert read_results(good)["verdict"] == "fail"  # the complete document is read
+    path = tmp_path / "results.json"
+    path.write_text(json.dumps(_results_doc(**changes)))
+    with pytest.raises(InputError) as info:
+        read_results(path)
+    assert needle in str(info.value) and "results.json" in str(info.value) and "\n" not in str(info.value)
+
+
+def test_results_holding_only_a_schema_are_refused(tmp_path):
+    from pretrial.files import canonical_json, sha256_hex
+    from pretrial.sweep_run import read_results
+
+    path = tmp_path / "results.json"
+    body = {"schema": "pretrial.sweep"}
+    path.write_text(json.dumps({**body, "content_sha256": sha256_hex(canonical_json(body))}))  # its hash is right
+    with pytest.raises(InputError, match="schema_version"):
+        read_results(path)

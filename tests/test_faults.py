@@ -10,6 +10,7 @@ from __future__ import annotations
 import contextlib
 import csv
 import errno
+import gc
 import hashlib
 import itertools
 import json
@@ -33,6 +34,7 @@ from pretrial.config import load_config
 from pretrial.errors import PretrialError
 from pretrial.evolution import Evolution
 from pretrial.execution import DaskExecutor, Executor, ProcessExecutor
+from pretrial.signals import Terminated, stop_on_signals
 
 ROOT = Path(__file__).resolve().parents[1]
 CARTPOLE_PLAN = ROOT / "configs" / "sweeps" / "cartpole.toml"
@@ -44,10 +46,10 @@ KILLS = 5
 GEN_LINE = re.compile(rb"(?m)^gen +\d+ ")
 
 
-def write_config(path: Path, checkpoint_every: int = 1) -> Path:
+def write_config(path: Path, checkpoint_every: int = 1, pop_size: int = 20) -> Path:
     path.write_text(
         '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 4\nhorizon = 2.0\n\n'
-        "[neat]\npop_size = 20\n\n"
+        f"[neat]\npop_size = {pop_size}\n\n"
         f"[run]\ngenerations = {GENERATIONS}\nseed = 11\ncheckpoint_every = {checkpoint_every}\n"
     )
     return path
@@ -306,8 +308,12 @@ def test_a_failed_evaluation_leaves_a_run_that_resumes(reference, tmp_path, monk
 # --------------------------------------------------------------------------- #
 # 3. Ctrl-C
 # --------------------------------------------------------------------------- #
-def _live_members(pgid: int) -> list[int]:
-    """Processes of a process group that still run (zombies do not: they only wait to be reaped)."""
+def _live_members(sid: int) -> list[int]:
+    """Processes of a session that still run (zombies do not: they only wait to be reaped).
+
+    The session, not the process group: whatever a command starts stays in its session unless it
+    calls setsid(2), orphans re-parented to init included (proc(5): field 6 of /proc/PID/stat).
+    """
     live = []
     for entry in Path("/proc").iterdir():
         if not entry.name.isdigit():
@@ -316,13 +322,15 @@ def _live_members(pgid: int) -> list[int]:
             fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
         except OSError:
             continue
-        if int(fields[2]) == pgid and fields[0] != "Z":
+        if int(fields[3]) == sid and fields[0] != "Z":
             live.append(int(entry.name))
     return live
 
 
-def interrupt(argv: list[str], tmp_path: Path, ready: re.Pattern[bytes], delay: float) -> tuple[int, str, str]:
-    """Run ``pretrial ARGV``, press Ctrl-C once ``ready`` is printed and ``delay`` s have passed."""
+def interrupt(argv: list[str], tmp_path: Path, ready: re.Pattern[bytes], delay: float,
+              send: Callable[[int], None] | None = None) -> tuple[int, str, str]:
+    """Run ``pretrial ARGV``; once ``ready`` is printed and ``delay`` s have passed, ``send(pid)``
+    (default: Ctrl-C, SIGINT to the whole process group as a terminal sends it)."""
     out_path, err_path = tmp_path / "stdout.log", tmp_path / "stderr.log"
     # a shell's `pytest ... &` ignores SIGINT and children inherit an ignored signal: start them with the default
     old = signal.signal(signal.SIGINT, signal.default_int_handler)
@@ -336,7 +344,10 @@ def interrupt(argv: list[str], tmp_path: Path, ready: re.Pattern[bytes], delay: 
         wait_for(lambda: ready.search(out_path.read_bytes()) or proc.poll() is not None, 60, ready.pattern)
         time.sleep(delay)
         assert proc.poll() is None, "finished before it could be interrupted"
-        os.killpg(proc.pid, signal.SIGINT)
+        if send is None:
+            os.killpg(proc.pid, signal.SIGINT)
+        else:
+            send(proc.pid)
         rc = proc.wait(timeout=30)
     finally:
         if proc.poll() is None:
@@ -515,3 +526,155 @@ def test_written_files_follow_the_umask_like_open(umask, tmp_path):
     modes = {p.name: stat.S_IMODE(p.stat().st_mode) for p in tmp_path.iterdir()}
     # POSIX open(2): a new file gets the requested mode (0666 for open(..., "w")) less the umask
     assert modes == {"atomic.json": 0o666 & ~umask, "plain.json": 0o666 & ~umask}
+
+
+# --------------------------------------------------------------------------- #
+# 5. SIGTERM, and a command that dies without cleaning up
+# --------------------------------------------------------------------------- #
+def _sigterm_parent(pid: int) -> None:
+    os.kill(pid, signal.SIGTERM)  # `kill PID`, and what the OOM killer's victim gets instead of a clean-up
+
+
+def _sigterm_then_group(pid: int) -> None:
+    # coreutils `timeout` (from memory: timeout.c) signals the command, then its whole process group, so the
+    # command gets two; systemd signals every process of the unit at once
+    os.kill(pid, signal.SIGTERM)
+    os.killpg(pid, signal.SIGTERM)
+
+
+@pytest.mark.parametrize("send", [_sigterm_parent, _sigterm_then_group], ids=["kill", "timeout"])
+def test_sigterm_stops_evolve_like_ctrl_c_and_the_run_resumes(send, reference, tmp_path):
+    cfg, ref = reference
+    run_dir = tmp_path / "run"
+    argv = ["evolve", str(cfg), "--out", str(run_dir), "--workers", "2"]
+    rc, out, err = interrupt(argv, tmp_path, re.compile(rb"(?m)^gen +2 "), random.Random(7).uniform(0.0, 0.3), send)
+    assert rc == 128 + signal.SIGTERM  # 143: 128 + the signal's number, as a shell reports it (common practice)
+    assert err == "pretrial: terminated (SIGTERM)\n"
+    assert "Traceback" not in out and f"--resume {run_dir}" in out
+    assert 2 < check_run_dir(run_dir) < GENERATIONS  # checkpointed where it stopped
+    assert main(["evolve", str(cfg), "--resume", str(run_dir), "--workers", "1", "--quiet"]) == 0
+    assert_same_run(run_dir, ref)
+
+
+@pytest.mark.slow
+def test_sigterm_stops_a_sweep_and_leaves_no_directory(tmp_path):
+    where = tmp_path / "sweeps"
+    where.mkdir()
+    argv = ["sweep", "lqr", "--plan", str(CARTPOLE_PLAN), "--out", str(where / "D"), "--workers", "2"]
+    rc, out, err = interrupt(argv, tmp_path, re.compile(rb"sweeping"), random.Random(3).uniform(0.5, 2.0),
+                             _sigterm_then_group)
+    assert rc == 128 + signal.SIGTERM
+    assert err == "pretrial: terminated (SIGTERM)\n" and "Traceback" not in out
+    assert list(where.iterdir()) == []
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads /proc (Linux)")
+@pytest.mark.parametrize("executor", [["--workers", "2"], ["--dask", "local", "--workers", "2"]],
+                         ids=["processes", "dask"])
+def test_kill_9_leaves_no_worker_behind(executor, tmp_path):
+    if "--dask" in executor:
+        pytest.importorskip("dask.distributed", reason="dask.distributed is not installed (pretrial[cluster])")
+    cfg = write_config(tmp_path / "cart.toml", pop_size=40)  # two chunks of 32 genomes: both workers busy
+    argv = [*PRETRIAL, "evolve", str(cfg), "--out", str(tmp_path / "run"), *executor]
+    # stdout a pipe, as in `pretrial evolve ... | tee log`: it ends only when no process holds it open
+    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, env=ENV, start_new_session=True)
+    try:
+        with deadline(120):
+            seen = b""
+            while not GEN_LINE.search(seen) and proc.poll() is None:
+                seen += proc.stdout.readline()
+        assert proc.poll() is None, seen.decode()
+        # the command, the resource tracker and two workers (whatever else the executor starts)
+        assert len(_live_members(proc.pid)) >= 4, _live_members(proc.pid)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        with deadline(30):
+            proc.stdout.read()  # end of file: every process that held the pipe has exited
+        wait_for(lambda: not _live_members(proc.pid), 10, "every process of the command to exit")
+    finally:
+        for pid in _live_members(proc.pid):  # only if the test failed: leave nothing running
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGKILL)
+        proc.stdout.close()
+
+
+_CHILD = """
+import os, sys, time
+from pretrial.execution import exit_with_parent
+exit_with_parent(os.getppid(), use_prctl=sys.argv[1] == "prctl")
+print("watching", flush=True)
+time.sleep(300)
+"""
+_PARENT = """
+import subprocess, sys, time
+subprocess.Popen([sys.executable, "-c", sys.argv[1], sys.argv[2]])
+time.sleep(300)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads /proc (Linux)")
+@pytest.mark.parametrize("how", ["prctl", "poll"])
+def test_a_worker_ends_with_its_parent(how, tmp_path):
+    # both ways a worker watches its parent: the kernel's death signal, and the portable thread
+    proc = subprocess.Popen([sys.executable, "-c", _PARENT, _CHILD, how], stdout=subprocess.PIPE, env=ENV,
+                            start_new_session=True)
+    try:
+        with deadline(60):
+            assert proc.stdout.readline() == b"watching\n"
+            assert len(_live_members(proc.pid)) == 2
+            proc.send_signal(signal.SIGKILL)  # the parent dies with no chance to end its child
+            proc.wait()
+            assert proc.stdout.read() == b""  # end of file: the child exited too
+        wait_for(lambda: not _live_members(proc.pid), 10, "the orphaned child to exit")
+    finally:
+        for pid in _live_members(proc.pid):
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGKILL)
+        proc.stdout.close()
+
+
+@pytest.fixture
+def default_sigint():
+    # a shell's `pytest ... &` ignores SIGINT; stop_on_signals leaves an ignored SIGINT ignored
+    old = signal.signal(signal.SIGINT, signal.default_int_handler)
+    yield
+    signal.signal(signal.SIGINT, old)
+
+
+@pytest.mark.parametrize("signum, stop", [(signal.SIGTERM, Terminated), (signal.SIGINT, KeyboardInterrupt)],
+                         ids=["SIGTERM", "SIGINT"])
+def test_an_interrupt_python_discards_in_a_gc_callback_is_delivered_again(signum, stop, default_sigint, capfd):
+    # A signal handler runs between any two bytecodes, also inside a gc callback (dask installs one), where
+    # Python discards the exception ("Exception ignored in"): the command would run on as if never signalled.
+    sent = []
+
+    def callback(phase: str, info: dict) -> None:
+        if phase == "start" and not sent:
+            sent.append(signum)
+            signal.raise_signal(signum)  # the handler runs here, inside the callback
+
+    gc.callbacks.append(callback)
+    try:
+        with deadline(30), pytest.raises(stop):
+            with stop_on_signals():
+                gc.collect()
+                assert sent == [signum]
+                for _ in range(1000):  # delivered again within a moment
+                    time.sleep(0.01)
+                pytest.fail("the interrupt was lost")
+    finally:
+        gc.callbacks.remove(callback)
+    assert "Exception ignored" not in capfd.readouterr().err
+
+
+def test_a_second_sigterm_does_not_interrupt_the_clean_up():
+    cleaned, before = [], signal.getsignal(signal.SIGTERM)
+    with pytest.raises(Terminated):
+        with stop_on_signals():
+            try:
+                signal.raise_signal(signal.SIGTERM)
+            finally:
+                signal.raise_signal(signal.SIGTERM)  # `timeout`'s second one, to the process group
+                cleaned.append(True)
+    assert cleaned == [True]
+    assert signal.getsignal(signal.SIGTERM) is before  # restored on leaving
