@@ -159,18 +159,27 @@ def test_evolve_against_a_plan_records_the_predicted_verdict(tmp_path, capsys):
     cfg.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 4\nobjective = "cvar:0.5"\n'
                    "[neat]\npop_size = 12\n[run]\ngenerations = 2\nseed = 3\nlinear_every = 1\nlinear_top = 2\n"
                    "verdict_samples = 16\nfinalists = 2\nvalidation_episodes = 4\nworkers = 1\n", encoding="utf-8")
-    plan = ROOT / "configs" / "sweeps" / "cartpole.toml"
+    full = (ROOT / "configs" / "sweeps" / "cartpole.toml").read_text(encoding="utf-8")
+    plan = tmp_path / "small.toml"
+    plan.write_text(full.split("[analysis]")[0] + '[analysis]\nrun = ["montecarlo", "linear"]\n'
+                    "montecarlo_samples = 32\n[require]\nsuccess_rate = 0.9\n", encoding="utf-8")
     assert main(["evolve", str(cfg), "--plan", str(plan), "--out", str(tmp_path / "run"), "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["predicted_verdict"] in ("pass", "fail") and summary["confirm"].startswith("pretrial sweep ")
     doc = json.loads((tmp_path / "run" / "champion.json").read_text(encoding="utf-8"))
     tr = doc["training"]
-    assert tr["objective"] == "cvar:0.5" and tr["plan"]["name"] == "cartpole.toml"
+    assert tr["objective"] == "cvar:0.5" and tr["plan"]["name"] == "small.toml"
     assert tr["plan"]["vary"] == ["pole_mass", "cart_mass", "pole_half_length", "actuator_gain",
                                   "actuator_delay_s", "sensor_noise_std"]
     rows = tr["predicted_verdict"]["requirements"]
     assert rows and all({"name", "required", "measured", "pass"} <= set(r) for r in rows)
     assert all("requirements_met" in f for f in tr["finalists"])
+    # the sweep of that champion with that plan says it was trained on the plan's distribution
+    capsys.readouterr()
+    words = ["sweep", str(tmp_path / "run"), "--plan", str(plan), "--out", str(tmp_path / "sw"), "--json"]
+    assert main(words) in (0, 1)
+    res = json.loads((tmp_path / "sw" / "results.json").read_text(encoding="utf-8"))
+    assert res["cautions"][0].startswith("This controller was trained against this plan's distribution")
 
 
 @pytest.mark.parametrize(("text", "needle"), [

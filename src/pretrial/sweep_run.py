@@ -76,6 +76,12 @@ def _plant(env_id: str, options: dict[str, Any], where: str) -> Physics:
         raise InputError(f"{where}: {exc}") from None
 
 
+#: said first when the controller was evolved against the very plan it is swept with
+TRAINED_ON_PLAN = ("This controller was trained against this plan's distribution: the Monte Carlo draws fresh "
+                   "samples, so its estimate is honest for that distribution, but it is the distribution the "
+                   "controller was tuned for; a rig outside it is not covered.")
+
+
 def _scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str, Any]]:
     """The plan's env, options and start ranges, read before the plant exists."""
     from .config import read_toml
@@ -256,6 +262,9 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
             print(f"{diverged_warning(d['episodes'], d['where'], context=who)}; replay one: {d['first']['replay']}",
                   file=sys.stderr)
     results["cautions"] = list(CAUTIONS)
+    trained = (getattr(ctl.controller, "training", None) or {}).get("plan") or {}
+    if trained.get("content_sha256") == plan.content_hash():
+        results["cautions"].insert(0, TRAINED_ON_PLAN)
     from .console import jsonable
 
     results = jsonable(results)
