@@ -431,6 +431,13 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
     every sample was in memory, so results.json did not change with streaming; a fixed-bin
     histogram would have approximated them. The report's histograms come from the same copy.
 
+    Blocks are whole chunks, so without ``control_period_s`` varied every chunk is the one a single
+    batch of all samples made: the same bytes as before streaming. With the period varied, rows are
+    chunked by period within a block; past :data:`MC_BLOCK` samples some chunks then differ from the
+    one-batch run's, and a score may differ from it in the last digit (the batched arithmetic
+    rounds a row by its place in the chunk). Either way the results depend on the plan and seed
+    only, never on the executor or its number of workers.
+
     Parameters
     ----------
     c : Campaign
