@@ -498,7 +498,7 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
         "varied": [{"name": v.name, "unit": v.unit, "distribution": v.distribution, "low": v.box_low,
                     "high": v.box_high, "mean": v.mean, "std": v.std} for v in vary],
         "score_quantiles": {str(q): float(quant[q]) for q in SCORE_QUANTILES}, "worst": worst,
-        "samples_file": "montecarlo.csv", "seed": seed,
+        "samples_file": "montecarlo.csv" if csv_path is not None else None, "seed": seed,
     }
     return summary, hist
 
