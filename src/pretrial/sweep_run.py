@@ -47,7 +47,8 @@ EPILOG = """exit status:
   0  verdict PASS (every requirement of the plan met)
   1  verdict FAIL (the sweep directory is written all the same)
   2  bad input (one-line error; nothing written)
-  130  interrupted (Ctrl-C; no partial sweep directory)"""
+  130  interrupted (Ctrl-C; no partial sweep directory)
+  143  terminated (SIGTERM, e.g. from timeout or a batch scheduler; no partial sweep directory)"""
 
 
 @dataclass
@@ -379,7 +380,7 @@ def run_cli(args: argparse.Namespace) -> int:
 
 
 def exit_code(results: dict[str, Any]) -> int:
-    """The verdict as an exit status: 0 pass, 1 fail (bad input is 2 and Ctrl-C 130, from the CLI)."""
+    """The verdict as an exit status: 0 pass, 1 fail (bad input is 2, Ctrl-C 130 and SIGTERM 143, from the CLI)."""
     return EXIT_PASS if results.get("verdict") == "pass" else EXIT_FAIL
 
 
