@@ -1,0 +1,113 @@
+"""What training for the verdict buys: each shipped config evolved with and without its plan, then swept.
+
+Run: ``python benchmarks/verdict_training.py [--configs cartpole gantry ...] [--objective success_lower_bound]
+[--generations N]``
+
+For each config (default: every shipped one) this runs, in temporary
+directories, the same commands a user would:
+
+1. ``pretrial evolve configs/NAME.toml`` (the config as shipped);
+2. ``pretrial evolve configs/NAME.toml --plan PLAN`` with ``[task.randomize]``
+   dropped (the plan's dispersions replace it) and ``[task] objective`` set;
+3. ``pretrial sweep RUN --plan PLAN`` on each champion,
+
+and prints one row per config and variant: evolve wall time, the predicted
+verdict (with ``--plan``), the sweep's verdict, its Monte Carlo successes and the
+requirements that failed. The plan is the one ``pretrial evolve`` names for the
+config (``configs/sweeps/``). Expect minutes per config (the drone pair: about
+8 minutes per evolve on 2 cores); ``--generations`` shortens every run alike.
+
+The last line is ``passed: K of N`` (sweeps whose verdict is PASS).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+import time
+import tomllib
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = ("cartpole", "gantry", "double-pole", "drone-pair", "drone-pair-wide")
+
+
+def _plan_for(name: str) -> Path:
+    sys.path.insert(0, str(ROOT / "src"))
+    from pretrial.cli import plan_beside
+
+    plan = plan_beside(str(ROOT / "configs" / f"{name}.toml"), name)
+    if plan is None:
+        raise SystemExit(f"no plan for {name} in configs/sweeps/")
+    return plan
+
+
+def _write_variant(src: Path, dst: Path, plan: Path | None, objective: str, generations: int | None) -> None:
+    lines, skip = [], False
+    for line in src.read_text(encoding="utf-8").splitlines():
+        head = line.strip()
+        if head.startswith("["):
+            skip = plan is not None and head == "[task.randomize]"
+        if skip or (plan is not None and head.startswith(("randomize_ramp", "fitness_target"))):
+            continue
+        if generations is not None and head.startswith("generations"):
+            line = f"generations = {generations}"
+        lines.append(line)
+        if plan is not None and head == "[task]":
+            lines.append(f'plan = "{plan}"')
+            lines.append(f'objective = "{objective}"')
+    dst.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    tomllib.loads(dst.read_text(encoding="utf-8"))  # still a valid config
+
+
+def _run(words: list[str]) -> tuple[int, str, float]:
+    t0 = time.perf_counter()
+    p = subprocess.run(words, capture_output=True, text=True, cwd=ROOT)
+    return p.returncode, p.stdout, time.perf_counter() - t0
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--configs", nargs="+", default=list(CONFIGS))
+    ap.add_argument("--objective", default="success_lower_bound")
+    ap.add_argument("--generations", type=int, default=None)
+    args = ap.parse_args()
+    exe = str(Path(sys.executable).with_name("pretrial"))
+    rows, passed, total = [], 0, 0
+    with tempfile.TemporaryDirectory() as tmp:
+        for name in args.configs:
+            plan = _plan_for(name)
+            for variant in ("as shipped", "--plan"):
+                cfg = Path(tmp) / f"{name}-{'plan' if variant == '--plan' else 'own'}.toml"
+                _write_variant(ROOT / "configs" / f"{name}.toml", cfg, plan if variant == "--plan" else None,
+                               args.objective, args.generations)
+                run = Path(tmp) / f"run-{cfg.stem}"
+                code, out, secs = _run([exe, "evolve", str(cfg), "--out", str(run), "--json"])
+                if code != 0:
+                    rows.append((name, variant, f"{secs:.0f}", "-", "evolve failed", "-", "-"))
+                    continue
+                summary = json.loads(out)
+                predicted = summary.get("predicted_verdict", "-")
+                code, out, _ = _run([exe, "sweep", str(run), "--plan", str(plan), "--out", str(run) + "-sweep",
+                                     "--json"])
+                res = json.loads(out) if out.strip().startswith("{") else {}
+                verdict = res.get("verdict", f"exit {code}")
+                mc = res.get("montecarlo") or {}
+                failing = [r["name"] for r in res.get("requirements", []) if r.get("pass") is False]
+                total += 1
+                passed += verdict == "pass"
+                rows.append((name, variant, f"{secs:.0f}", predicted, verdict,
+                             f"{mc.get('successes', '-')}/{mc.get('samples', '-')}", "; ".join(failing) or "-"))
+    head = ("config", "training", "evolve s", "predicted", "verdict", "Monte Carlo", "failing")
+    widths = [max(len(str(r[i])) for r in [head, *rows]) for i in range(len(head))]
+    for r in [head, *rows]:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)))
+    print(f"passed: {passed} of {total}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
