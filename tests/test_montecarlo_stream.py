@@ -26,6 +26,7 @@ from pretrial.report import write_samples_csv
 from pretrial.samples import exact_quantiles, order_statistics, sample_histograms, unit_blocks
 from pretrial.sweep import Campaign, montecarlo
 from pretrial.sweep_run import controlled
+from pretrial.training import unit_to_value
 
 # every distribution (uniform, loguniform, normal), a noise stream per episode; the LQR cart-pole, short
 # episodes; no control period varied, so a block of whole chunks holds the very chunks of one big batch
@@ -84,7 +85,7 @@ def one_batch_montecarlo(c: Campaign, seed: int, csv_path: Path) -> dict:
             u = qmc.Sobol(len(vary), scramble=True, seed=rng).random(n)
     else:
         u = qmc.LatinHypercube(len(vary), seed=rng).random(n)
-    values = {v.name: sweep._from_unit(v, u[:, i]) for i, v in enumerate(vary)}
+    values = {v.name: unit_to_value(v, u[:, i]) for i, v in enumerate(vary)}
     seeds = streams.episode_keys(np.uint64(seed), np.arange(n))
     batch = c.evaluate(values, seeds, np.zeros(n, dtype=np.int64))
     write_samples_csv(csv_path, {**values, "seed": seeds, "success": batch.success, "failure": batch.failure,

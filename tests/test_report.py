@@ -96,7 +96,7 @@ def part(scale: float = 1.0, verdict: str = "fail"):
                       "score": -0.8, "values": {"pole_mass": 0.3}, "seed": 42, "success_rate": 0.0,
                       "failure": "pole_fell",
                       "replay": "pretrial replay runs/a/champion.json --set pole_mass=0.3 --seed 42 --episodes 8"},
-        "sensitivity": {"method": "Sobol (SALib, Saltelli sampling)", "score": "episode score", "samples": 1024,
+        "sensitivity": {"method": "Sobol (scipy, Saltelli 2010)", "score": "episode score", "samples": 1024,
                         "indices": [{"name": "pole_mass", "S1": 0.4, "S1_conf": 0.05, "ST": 0.5, "ST_conf": 0.06}]},
         "success_map": {"x": "pole_mass", "y": "track_offset", "x_unit": "kg", "y_unit": "m",
                         "x_values": [0.05, 0.1, 0.2, 0.3], "y_values": [-0.3, 0.0, 0.3],

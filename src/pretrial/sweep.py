@@ -28,12 +28,12 @@ import numpy as np
 from pretrial_envs.core import Physics
 
 from . import streams
-from .errors import InputError
 from .execution import Executor
 from .perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
 from .plan import Z2, Plan, Vary
 from .rollout import keyed_scenarios, run_episodes
 from .samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
+from .training import unit_to_value
 
 #: rows per work item: fixed, so results never depend on the number of workers
 CHUNK = 4096
@@ -390,18 +390,6 @@ MC_BLOCK = 32 * CHUNK
 SCORE_QUANTILES = (0.01, 0.05, 0.5)
 
 
-def _from_unit(v: Vary, u: np.ndarray) -> np.ndarray:
-    lo, hi = v.box_low, v.box_high
-    if v.distribution == "loguniform":
-        return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
-    if v.distribution == "normal":
-        from scipy.stats import truncnorm
-
-        a, b = (lo - v.mean) / v.std, (hi - v.mean) / v.std
-        return truncnorm.ppf(u, a, b, loc=v.mean, scale=v.std)
-    return lo + u * (hi - lo)
-
-
 @dataclass
 class _Lowest:
     """The K lowest-scoring samples so far, in ``numpy.lexsort((index, score))`` order (NaN scores last)."""
@@ -469,7 +457,7 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
         for u in unit_blocks(n, len(vary), seed, c.plan.budgets["montecarlo_sampler"], MC_BLOCK):
             index = np.arange(start, start + len(u))
             start += len(u)
-            values = {v.name: _from_unit(v, u[:, i]) for i, v in enumerate(vary)}
+            values = {v.name: unit_to_value(v, u[:, i]) for i, v in enumerate(vary)}
             if CONTROL_PERIOD in values:  # each distinct period is its own plant: keep them few
                 values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
             seeds = streams.episode_keys(np.uint64(seed), index)
@@ -567,29 +555,52 @@ def worstcase(c: Campaign, seed: int) -> dict[str, Any]:
 
 
 def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
-    """Sobol first-order and total indices of the mean episode score (SALib, Saltelli sampling)."""
-    try:
-        from SALib.analyze import sobol as sobol_analyze
-        from SALib.sample import sobol as sobol_sample
-    except ImportError:
-        raise InputError("analysis sensitivity needs SALib: pip install 'pretrial[sensitivity]'") from None
+    """Sobol first-order and total indices of the mean episode score (scipy.stats.sobol_indices).
+
+    Saltelli (2010) estimators over the plan's own distributions (uniform,
+    log-uniform or truncated normal over each dispersion), with 95% bootstrap
+    confidence half-widths (``S1_conf``, ``ST_conf``).
+    """
+    from scipy import stats
+
     vary = c.plan.vary
     names = [v.name for v in vary]
-    problem = {"num_vars": len(vary), "names": names, "bounds": [[v.box_low, v.box_high] for v in vary]}
     n = c.plan.budgets["sensitivity_samples"]
     k = c.plan.budgets["sensitivity_episodes"]
-    x = sobol_sample.sample(problem, n, calc_second_order=False, seed=seed % 2**32)
-    y, _ = _scored(c, names, x, seed, k)
+    evaluated: list[np.ndarray] = []
+
+    def score(x: np.ndarray) -> np.ndarray:  # x: (d, m) points -> (m,) mean scores
+        y, _ = _scored(c, names, np.ascontiguousarray(x.T), seed, k)
+        evaluated.append(y)
+        return y
+
+    rng = np.random.default_rng(seed)
+    res = stats.sobol_indices(func=score, n=n, dists=[_distribution(v) for v in vary], rng=rng)
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        si = sobol_analyze.analyze(problem, y, calc_second_order=False, seed=seed % 2**32)
+        warnings.simplefilter("ignore")  # degenerate resamples of a flat score
+        boot = res.bootstrap(confidence_level=0.95, n_resamples=999)
     rows = []
     for i, name in enumerate(names):
-        rows.append({key: _finite(si[key][i]) for key in ("S1", "S1_conf", "ST", "ST_conf")} | {"name": name})
-    rows = [{"name": r.pop("name"), **r} for r in rows]
-    return {"method": "Sobol indices (SALib, Saltelli sampling, uniform over the box)", "score": "mean episode score",
-            "samples": int(len(x)), "episodes": k, "seed": seed, "indices": rows,
+        s1_lo, s1_hi = boot.first_order.confidence_interval.low[i], boot.first_order.confidence_interval.high[i]
+        st_lo, st_hi = boot.total_order.confidence_interval.low[i], boot.total_order.confidence_interval.high[i]
+        rows.append({"name": name, "S1": _finite(res.first_order[i]), "S1_conf": _finite((s1_hi - s1_lo) / 2),
+                     "ST": _finite(res.total_order[i]), "ST_conf": _finite((st_hi - st_lo) / 2)})
+    y = np.concatenate(evaluated)
+    return {"method": "Sobol indices (scipy.stats.sobol_indices, Saltelli 2010, the plan's distributions)",
+            "score": "mean episode score", "samples": int(len(y)), "episodes": k, "seed": seed, "indices": rows,
             "score_variance": float(np.var(y))}
+
+
+def _distribution(v: Vary) -> Any:
+    """The scipy distribution a varied name is drawn from (as Monte Carlo draws it)."""
+    from scipy import stats
+
+    lo, hi = v.box_low, v.box_high
+    if v.distribution == "loguniform":
+        return stats.loguniform(lo, hi)
+    if v.distribution == "normal":
+        return stats.truncnorm((lo - v.mean) / v.std, (hi - v.mean) / v.std, loc=v.mean, scale=v.std)
+    return stats.uniform(loc=lo, scale=hi - lo)
 
 
 def _finite(v: Any) -> float | None:

@@ -388,7 +388,7 @@ def _versions() -> dict[str, str]:
     from importlib.metadata import PackageNotFoundError, version
 
     out = {}
-    for name in ("numpy", "scipy", "gymnasium", "neat-python", "SALib", "matplotlib"):
+    for name in ("numpy", "scipy", "gymnasium", "neat-python", "matplotlib"):
         try:
             out[name] = version(name)
         except PackageNotFoundError:
