@@ -20,7 +20,7 @@ from .core import (
     jacobians,
     rk4_step,
 )
-from .registry import env_ids, make_physics, physics_type, register_physics, register_shipped
+from .registry import env_ids, import_prefix, make_physics, physics_type, register_physics, register_shipped
 
 register_shipped()
 
@@ -35,6 +35,7 @@ __all__ = [
     "Transition",
     "env_ids",
     "euler_step",
+    "import_prefix",
     "jacobians",
     "make_physics",
     "physics_type",

@@ -62,8 +62,24 @@ def env_ids() -> list[str]:
     return list(_PHYSICS)
 
 
+def import_prefix(env_id: str) -> str:
+    """``module:id`` (as gymnasium accepts) -> ``id``, importing ``module`` first so it can register its plants.
+
+    A plain id comes back unchanged. ValueError names the module when it cannot be imported.
+    """
+    if ":" not in env_id:
+        return env_id
+    module, name = env_id.split(":", 1)
+    try:
+        importlib.import_module(module)
+    except ImportError as exc:
+        raise ValueError(f"{env_id}: cannot import module {module!r} ({exc})") from None
+    return name
+
+
 def physics_type(env_id: str) -> type[Physics]:
-    """The :class:`Physics` class behind ``env_id``; ValueError if it has none."""
+    """The :class:`Physics` class behind ``env_id`` (or ``module:id``); ValueError if it has none."""
+    env_id = import_prefix(env_id)
     entry = _PHYSICS.get(env_id)
     if entry is None:
         # A gymnasium env whose class declares a physics core also qualifies.

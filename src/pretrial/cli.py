@@ -60,7 +60,7 @@ def resolve_env_id(name: str) -> str:
         if env_id.split("/", 1)[-1].lower() == name.lower():
             return env_id
     try:
-        pretrial_envs.physics_type(name)
+        pretrial_envs.physics_type(name)  # also imports the module of a module:id
         return name
     except ValueError as exc:
         raise InputError(str(exc)) from None

@@ -40,6 +40,7 @@ from .config import Config, build_neat_ini, check_budget, dump_toml, neat_genera
 from .errors import FileFormatError, InputError, PretrialError
 from .execution import Executor
 from .files import atomic_write_text, check_writable_dir, write_json
+from .generic import check_workers_can_build
 from .network import NetworkSpec, PopulationNetwork, spec_from_genome
 from .perturb import describe_values, diverged_warning, nominal_value
 from .policy import IOMap, PopulationPolicy, policy_from_genome, policy_to_dict, save_policy
@@ -277,6 +278,7 @@ class Evolution:
         self.log = log
         self.command_line = list(command_line)
         self.task = make_task(cfg)
+        check_workers_can_build(self.task.physics(), executor)
         self.ini_path = run_dir / "neat.ini"
         self.manifest_path = run_dir / "manifest.json"
         self.manifest: dict[str, Any] = {}

@@ -140,7 +140,30 @@ def make_plant(env_id: str, **options: Any) -> Physics:
     try:
         kind = pretrial_envs.physics_type(env_id)
     except ValueError as exc:
-        if env_id not in gym.registry:
+        try:
+            plain = pretrial_envs.import_prefix(env_id)
+        except ValueError:
+            plain = env_id
+        if plain not in gym.registry:
             raise InputError(str(exc)) from None
         return GymnasiumPlant(env_id, **options)
     return kind(**options)
+
+
+def check_workers_can_build(physics: Any, executor: Any) -> None:
+    """Refuse a plant defined in ``__main__`` when work goes to other processes, naming the fix.
+
+    Worker processes import the plant's module to rebuild it; a script's ``__main__``
+    is not importable there, so the workers would fail with no useful message.
+    """
+    from .execution import Executor
+
+    cls = type(physics)
+    if cls.__module__ != "__main__" or type(executor) is Executor:
+        return
+    env_id = getattr(physics, "env_id", "") or cls.__name__
+    raise InputError(
+        f"{env_id}: the plant {cls.__name__} is defined in __main__, which worker processes cannot import; "
+        f"move it into a module and name the env as 'MODULE:{env_id}' (the module registers it when "
+        "imported), or run with one worker (--workers 1)"
+    )

@@ -118,7 +118,13 @@ def env_id_of(name: str) -> str:
     try:
         return resolve_env_id(name)
     except InputError:
-        if name in gym.registry:
+        import pretrial_envs
+
+        try:
+            plain = pretrial_envs.import_prefix(name)
+        except ValueError:
+            raise InputError(f"{name}: cannot import its module") from None
+        if plain in gym.registry:
             return name
         raise
 

@@ -31,6 +31,7 @@ from . import __version__
 from .console import CAUTIONS, Progress, emit_json, fmt_number, print_cautions, table
 from .errors import InputError
 from .files import canonical_json, check_writable_dir, sha256_hex, write_json
+from .generic import check_workers_can_build
 from .perturb import diverged_warning
 from .plan import Plan, load_plan
 
@@ -244,6 +245,7 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     bar = Progress(total, "episodes") if progress else None
     tick = bar.advance if bar is not None else None
     try:
+        check_workers_can_build(ctl.physics, executor)
         say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
         camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
         part, samples = run_analyses(camp, say, stage / "montecarlo.csv" if stage else None, stage)
