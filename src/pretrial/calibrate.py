@@ -23,6 +23,7 @@ from .calibrate_fit import (
     FITTABLE_ACTUATOR,
     FLAT_LOADING,
     FLAT_RANGE_SHARE,
+    FLAT_RELATIVE,
     SCALE_FLOOR,
     SINGULAR_RATIO,
     Estimate,
@@ -42,7 +43,7 @@ from .perturb import PERTURBATIONS
 #: default held-out share of segments for validation (every fifth segment; a tail of each when fewer than 5)
 HOLDOUT = 0.2
 WINDOW_S = 0.5
-REPLICATES = 200
+REPLICATES = 100
 
 
 def configure_cli(p: argparse.ArgumentParser) -> None:
@@ -269,8 +270,9 @@ def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: ar
             "estimated_velocities": list(log.estimated), "savgol_window": SAVGOL_WINDOW,
             "bootstrap": {"replicates": int(args.bootstrap), "seed": int(args.seed), "units": est.units,
                           "unit_kind": est.unit_kind},
-            "thresholds": {"flat_range_share": FLAT_RANGE_SHARE, "singular_ratio": SINGULAR_RATIO,
-                           "flat_loading": FLAT_LOADING, "scale_floor": SCALE_FLOOR},
+            "thresholds": {"flat_range_share": FLAT_RANGE_SHARE, "flat_relative": FLAT_RELATIVE,
+                           "singular_ratio": SINGULAR_RATIO, "flat_loading": FLAT_LOADING,
+                           "scale_floor": SCALE_FLOOR},
         },
         "logs": [_log_entry(p) for p in args.logs],
     }
@@ -300,10 +302,6 @@ def fit_or_val_label(segs: list[Segment]) -> str:
 
 def _warnings(model: Model, est: Estimate) -> list[str]:
     out = [f"{name} is not identifiable from these logs: {why}" for name, why in est.flags.items()]
-    low, high = model.bounds
-    for k, name in enumerate(est.names):
-        if est.estimate[k] <= low[k] or est.estimate[k] >= high[k]:
-            out.append(f"{name} = {est.estimate[k]:g} is at the edge of its valid range [{low[k]:g}, {high[k]:g}]")
     if not est.converged:
         out.append(f"the fit did not converge ({est.message}); the estimates are where it stopped")
     return out

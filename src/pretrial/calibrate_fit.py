@@ -27,7 +27,8 @@ The method, in the order :func:`calibrate` runs it:
   pattern), and the spread of the refits gives the standard deviation and the percentile 95%
   interval. Resampling whole units keeps the correlation of residuals inside them.
 * **Identifiability.** A parameter is flagged when its bootstrap 95% interval spans more than
-  :data:`FLAT_RANGE_SHARE` of its valid range, or when the Jacobian of the weighted residuals with
+  :data:`FLAT_RANGE_SHARE` of its valid range or is wider than the estimate itself
+  (:data:`FLAT_RELATIVE`), or when the Jacobian of the weighted residuals with
   respect to the parameters (columns scaled by each valid range; the start states fitted out) has
   a singular value below :data:`SINGULAR_RATIO` of the largest, and the parameter loads on that
   direction (|component| > :data:`FLAT_LOADING`).
@@ -60,6 +61,8 @@ SCALE_FLOOR = 1e-3
 MIN_UNITS = 20
 #: flat direction: a bootstrap 95% interval wider than this share of the parameter's valid range
 FLAT_RANGE_SHARE = 0.1
+#: ... or wider than the estimate itself (its size taken as at least SCALE_FLOOR of the valid range)
+FLAT_RELATIVE = 1.0
 #: near-singular Jacobian: a singular value below this share of the largest (condition number above 1e6)
 SINGULAR_RATIO = 1e-6
 #: a parameter belongs to a flat direction when its share of the singular vector exceeds this
@@ -452,7 +455,7 @@ def calibrate(model: Model, win: Windows, replicates: int, seed: int) -> Estimat
         boot = theta[None, :]
     std = boot.std(axis=0, ddof=1) if len(boot) > 1 else np.zeros(len(theta))
     ci = np.percentile(boot, [2.5, 97.5], axis=0).T
-    singular, flags = identifiability(model, final.jac, ci)
+    singular, flags = identifiability(model, final.jac, theta, ci)
     units = int(win.unit.max()) + 1
     kind = "segments" if np.array_equal(win.unit, win.seg) else \
         f"blocks of up to {max(1, win.count // MIN_UNITS)} windows"
@@ -472,17 +475,25 @@ def _correlation(boot: np.ndarray) -> np.ndarray:
     return c
 
 
-def identifiability(model: Model, jac: np.ndarray, ci: np.ndarray) -> tuple[np.ndarray, dict[str, str]]:
+def identifiability(model: Model, jac: np.ndarray, estimate: np.ndarray,
+                    ci: np.ndarray) -> tuple[np.ndarray, dict[str, str]]:
     """Singular values of the range-scaled Jacobian (start states already fitted out) and
     ``{name: reason}`` for each parameter the data do not pin down."""
     low, high = model.bounds
     width = high - low
     flags: dict[str, str] = {}
     for k, name in enumerate(model.names):
-        share = (ci[k, 1] - ci[k, 0]) / width[k]
-        if share > FLAT_RANGE_SHARE:
-            flags[name] = (f"bootstrap 95% interval spans {share:.0%} of its valid range "
+        spread_ = ci[k, 1] - ci[k, 0]
+        size = max(abs(estimate[k]), SCALE_FLOOR * width[k])
+        if spread_ > FLAT_RANGE_SHARE * width[k]:
+            flags[name] = (f"bootstrap 95% interval spans {spread_ / width[k]:.0%} of its valid range "
                            f"(more than {FLAT_RANGE_SHARE:.0%})")
+        elif min(estimate[k] - low[k], high[k] - estimate[k]) <= 1e-9 * width[k]:  # on a bound, to rounding
+            flags[name] = (f"the fit ended at the edge of its valid range [{low[k]:g}, {high[k]:g}]: the data do not "
+                           "hold it inside")
+        elif spread_ > FLAT_RELATIVE * size:
+            flags[name] = (f"bootstrap 95% interval [{ci[k, 0]:.4g}, {ci[k, 1]:.4g}] is wider than the estimate "
+                           f"{estimate[k]:.4g} itself (more than {FLAT_RELATIVE:.0%} of it)")
     j = np.asarray(jac) * width[None, :]
     _, sv, vt = np.linalg.svd(j, full_matrices=False)
     top = sv[0] if len(sv) and sv[0] > 0 else 0.0

@@ -288,7 +288,8 @@ def method_lines(summary: dict[str, Any]) -> list[str]:
         f"resampling {m['bootstrap']['units']} {m['bootstrap']['unit_kind']} with replacement, each refitted from "
         "the estimate; std and percentile 95% interval of the refits.",
         f"Not identifiable when the bootstrap 95% interval spans more than {th['flat_range_share']:.0%} of the "
-        f"valid range, or the range-scaled Jacobian has a singular value below {th['singular_ratio']:g} of the "
+        f"valid range or is wider than {th['flat_relative']:.0%} of the estimate or ends on a bound, or the "
+        f"range-scaled Jacobian has a singular value below {th['singular_ratio']:g} of the "
         f"largest and the parameter loads on it by more than {th['flat_loading']:g}.",
     ]
 
