@@ -576,9 +576,17 @@ def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
 
     rng = np.random.default_rng(seed)
     res = stats.sobol_indices(func=score, n=n, dists=[_distribution(v) for v in vary], rng=rng)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # degenerate resamples of a flat score
-        boot = res.bootstrap(confidence_level=0.95, n_resamples=999)
+    # SobolResult.bootstrap resamples with numpy's global random state (it takes no generator): seed it
+    # from the analysis seed for the call, and put the caller's state back, so the intervals are
+    # a function of the plan alone
+    saved = np.random.get_state()  # noqa: NPY002 (the legacy state is what scipy draws from here)
+    np.random.seed(seed % 2**32)  # noqa: NPY002
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # degenerate resamples of a flat score
+            boot = res.bootstrap(confidence_level=0.95, n_resamples=999)
+    finally:
+        np.random.set_state(saved)  # noqa: NPY002
     rows = []
     for i, name in enumerate(names):
         s1_lo, s1_hi = boot.first_order.confidence_interval.low[i], boot.first_order.confidence_interval.high[i]
