@@ -3,7 +3,8 @@
     .venv/bin/python configs/bench/make_logs.py
 
 The rig is simulated with pretrial's own cart-pole physics (RK4, 8 substeps per 20 ms period, finer
-than the calibration's default), the pole hanging down, the cart driven by the excitation below;
+than the calibration's default), the pole hanging down, the cart driven by the excitation below
+and held near the middle of the track by the bench's centring loop (clipped at 8 N);
 the logger records positions only, with encoder noise, and the applied force in N.
 """
 
@@ -27,15 +28,19 @@ SECONDS = 10.0
 NOISE = {"x": 5e-4, "theta": 1e-3}
 
 
+#: the bench's cart-centring loop (a PD on the measured cart position): keeps the cart on a short track
+CENTRE_KP = 8.0  # N/m
+CENTRE_KD = 4.0  # N s/m
+
+
 def excitation(t: np.ndarray, run: int, rng: np.random.Generator) -> np.ndarray:
-    """Force in N: a multisine over 0.3-3 Hz with random phases (around the pendulum's 0.9 Hz swing),
-    plus a slow square wave that walks the cart along the track and back, clipped at 8 N."""
+    """Open-loop part of the force in N: a multisine over 0.3-3 Hz with random phases (around the
+    pendulum's 0.9 Hz swing), plus a slow +-1.5 N square wave that walks the cart to and fro."""
     freqs = np.linspace(0.3, 3.0, 10)
     phases = rng.uniform(0.0, 2.0 * math.pi, freqs.size)
     multi = np.sin(2.0 * math.pi * freqs[:, None] * t[None, :] + phases[:, None]).sum(axis=0)
-    multi *= 5.0 / np.abs(multi).max()
-    walk = 2.0 * np.sign(np.sin(2.0 * math.pi * t / (6.0 + run)))
-    return np.clip(multi + walk, -8.0, 8.0)
+    multi *= 4.0 / np.abs(multi).max()
+    return multi + 1.5 * np.sign(np.sin(2.0 * math.pi * t / (6.0 + run)))
 
 
 def simulate(run: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -43,11 +48,14 @@ def simulate(run: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     params = physics.param_table.resolve(RIG)[None, :]
     rng = np.random.default_rng(100 + run)
     t = np.arange(int(SECONDS / DT)) * DT
-    force = excitation(t, run, rng)
+    drive = excitation(t, run, rng)
+    force = np.zeros(t.size)
     x = np.zeros((t.size, 4))
     x[0] = [0.0, 0.0, math.pi + rng.normal(0.0, 0.05), 0.0]  # hanging, a little off plumb
     for k in range(t.size - 1):  # one rig, one step at a time: this is the rig, not the estimator
+        force[k] = np.clip(drive[k] - CENTRE_KP * x[k, 0] - CENTRE_KD * x[k, 1], -8.0, 8.0)
         x[k + 1] = physics.integrate(x[k : k + 1], np.array([[force[k]]]), params)[0]
+    force[-1] = force[-2]
     return t, x, force
 
 
