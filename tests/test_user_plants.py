@@ -115,3 +115,25 @@ def test_an_unimportable_module_is_one_line(capsys):
     assert main(["envs", "no_such_module_xyz:lab/Thing-v0"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "no_such_module_xyz" in err[0]
+
+
+def test_sweep_of_a_plain_gymnasium_env_runs_what_needs_no_physics(tmp_path, capsys):
+    # gymnasium's own Pendulum-v1: no parameter table, no equations; generic perturbations still apply
+    cfg = tmp_path / "pend.toml"
+    cfg.write_text('[task]\nenv = "Pendulum-v1"\nepisodes = 2\n[neat]\npop_size = 10\n'
+                   "[run]\ngenerations = 1\nseed = 1\nworkers = 1\nfinalists = 1\nvalidation_episodes = 2\n",
+                   encoding="utf-8")
+    assert main(["evolve", str(cfg), "--out", str(tmp_path / "run"), "--json"]) == 0
+    plan = tmp_path / "plan.toml"
+    plan.write_text('[scenario]\nenv = "Pendulum-v1"\nepisodes = 4\n[[vary]]\nname = "sensor_noise_std"\n'
+                    'range = [0.0, 0.5]\n[analysis]\nrun = ["margins", "montecarlo", "linear", "integrator_check"]\n'
+                    "montecarlo_samples = 8\n[require]\nsuccess_rate = 0.5\n", encoding="utf-8")
+    capsys.readouterr()
+    code = main(["sweep", str(tmp_path / "run"), "--plan", str(plan), "--out", str(tmp_path / "sw"), "--workers", "1"])
+    assert code in (0, 1)
+    res = json.loads((tmp_path / "sw" / "results.json").read_text(encoding="utf-8"))
+    assert res["montecarlo"]["samples"] == 8 and res["margins"][0]["name"] == "sensor_noise_std"
+    assert res["integrator_check"] is None and "integrates its own equations" in res["skipped"]["integrator_check"]
+    linear_rows = [r for r in res["requirements"] if "loop" in r["name"]]
+    assert linear_rows and all(r["pass"] is None for r in linear_rows)
+    assert "skipped" in capsys.readouterr().out

@@ -238,6 +238,8 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
     quality = ((plan.get("resolved") or {}).get("require") or {}).get("quality")
     if quality:
         items.append(_quality_line(quality))
+    for name, why in (results.get("skipped") or {}).items():
+        items.append(f"{name} skipped: {why}")
     if results.get("content_sha256"):
         items.append(f"results content sha256 {results['content_sha256']}")
     from .perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated)

@@ -182,6 +182,8 @@ def run_episodes(
     loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
     state = np.tile(scenarios.start, (g, 1))
     limit = physics.max_steps if max_steps is None else int(max_steps)
+    # a plant that declares no limits (e.g. a plain gymnasium env) has no slack and may not map actions to forces
+    has_limits = type(physics).constraint_slack is not Physics.constraint_slack
     tracker = None
     if quality is not None:
         tracker = QualityTracker(physics, quality, params, limit, np.tile(random_rows(physics, scenarios), g))
@@ -228,7 +230,8 @@ def run_episodes(
             tracker.update(k, tr.state, action, tr.hold, params, None if finished is None else active)
         if slack is not None:
             with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-                now = physics.constraint_slack(tr.state, loop.physical(action, params), params)
+                now = (physics.constraint_slack(tr.state, loop.physical(action, params), params) if has_limits
+                       else np.full(len(tr.state), np.inf))
             slack = keep_finished(np.fmin(slack, now), slack)
             best_hold = keep_finished(np.maximum(best_hold, tr.hold), best_hold)
         if finished is None:

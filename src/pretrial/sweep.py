@@ -652,7 +652,7 @@ def success_map(c: Campaign, seed: int) -> dict[str, Any]:
 # --------------------------------------------------------------------------- #
 def linear_analysis(c: Campaign, sampled: bool) -> tuple[list[dict[str, Any]], dict[str, Any]]:
     """Per-channel margins at the closed-loop equilibrium, and the details (with the frequency response)."""
-    from .linear import loop_report
+    from .linear import equations_reason, loop_report
 
     params = c.physics.param_table.resolve(c.base_params)
     delay = c.plan.budgets["delay_steps"] if sampled else 0
@@ -670,6 +670,8 @@ def linear_analysis(c: Campaign, sampled: bool) -> tuple[list[dict[str, Any]], d
         # a dynamic (recurrent) controller is not analysed here: its linear requirements do not apply,
         # rather than fail by construction (the report says so)
         details["not_applicable"] = "recurrent controller (its network state is not linearized)"
+    elif equations_reason(c.physics):  # a plain gymnasium env: no equations to linearize (skipped, said so)
+        details["not_applicable"] = "the plant gives no equations of motion (a plain gymnasium env)"
     channels = rep.channel_dicts() if rep.linearizable else []
     if rep.linearizable and rep.stable is False:
         # margins of an unstable loop are meaningless numbers (0 dB / 0 deg): say UNSTABLE instead
@@ -842,7 +844,12 @@ def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_
     if "linear_sampled" in run:
         starting("linear_sampled")
         res["linear_sampled"], res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
-    if "integrator_check" in run:
+    if "integrator_check" in run and "substeps" not in c.physics.options():
+        # a plain gymnasium env integrates itself: there is no step to refine
+        res["skipped"] = {"integrator_check": f"{c.physics.env_id} integrates its own equations; pretrial cannot "
+                                              "refine its step or change its method"}
+        say and say(f"  integrator_check skipped: {res['skipped']['integrator_check']}")
+    elif "integrator_check" in run:
         starting("integrator_check")
         res["integrator_check"] = integrator_check(c, seed("integrator_check"))
     if "margins" in run:
