@@ -85,6 +85,32 @@ class Vary:
 
 
 @dataclass(frozen=True)
+class Calibrated:
+    """A calibration's fitted names, estimates and bootstrap set, as a plan draws from them.
+
+    Monte Carlo draws one bootstrap row per sample, so the names move together
+    and their correlations are kept; the estimates are the nominal values
+    every other analysis runs at.
+    """
+
+    path: str
+    content_sha256: str
+    names: tuple[str, ...]
+    units: tuple[str, ...]
+    estimates: tuple[float, ...]
+    bootstrap: tuple[tuple[float, ...], ...]
+
+    def rows(self) -> Any:
+        import numpy as np
+
+        return np.array(self.bootstrap, dtype=float)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"path": self.path, "content_sha256": self.content_sha256, "names": list(self.names),
+                "estimates": dict(zip(self.names, self.estimates, strict=True)), "replicates": len(self.bootstrap)}
+
+
+@dataclass(frozen=True)
 class Plan:
     """A resolved sweep plan."""
 
@@ -110,6 +136,8 @@ class Plan:
     quality: QualityLimits = field(default_factory=QualityLimits)
     #: the least success rate accepted at the worst case found inside the dispersion
     worstcase_success_rate: float | None = None
+    #: ``[scenario] calibration``: parameters Monte Carlo draws jointly from a calibration's bootstrap set
+    calibration: Calibrated | None = None
 
     @property
     def name(self) -> str:
@@ -134,6 +162,7 @@ class Plan:
                         "worstcase_success_rate": self.worstcase_success_rate,
                         "quality": self.quality.to_dict()},
             "baseline": {"q": dict(self.lqr_q), "r": dict(self.lqr_r)},
+            **({"calibration": self.calibration.to_dict()} if self.calibration is not None else {}),
         }
 
     def toml(self) -> str:
@@ -179,7 +208,12 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     options = s.table_of("options")
     params_t = s.table_of("params")
     start_t = s.table_of("start")
+    cal_path = s.take("calibration", str, None, lambda v: bool(v.strip()), "the path of a calibration.json")
     s.finish()
+    calibrated = None
+    if cal_path is not None:
+        calibrated, cal_params = _read_calibration(path, cal_path, physics)
+        params_t = {**cal_params, **params_t}  # the plan's own [scenario.params] still win
     if horizon is not None:
         try:
             check_horizon(horizon, physics, "scenario.horizon")
@@ -218,6 +252,9 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         v = _read_vary(path, f"vary[{i}]", item, physics, params)
         if v.name in seen:
             raise InputError(f"{path}: vary[{i}].name: {v.name!r} is varied twice")
+        if calibrated is not None and v.name in calibrated.names:
+            raise InputError(f"{path}: vary[{i}].name: {v.name!r} is drawn from the calibration's bootstrap set "
+                             "([scenario] calibration); vary it there or drop this entry")
         seen.add(v.name)
         vary.append(v)
 
@@ -334,9 +371,36 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         worst_rate = DEFAULT_WORSTCASE_SHARE * rate
     plan = Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
                 tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text, quality,
-                worst_rate)
+                worst_rate, calibrated)
     check_plan_budget(plan, physics)
     return plan
+
+
+def _read_calibration(path: str, cal_path: str, physics: Any) -> tuple[Calibrated, dict[str, float]]:
+    """``[scenario] calibration`` -> the draws, and the physics values (fitted and fixed) as nominal overrides."""
+    from .calibrate_report import load_calibration
+
+    full = Path(cal_path) if Path(cal_path).is_absolute() else Path(path).parent / cal_path
+    try:
+        data = load_calibration(full)
+    except InputError as exc:
+        raise InputError(f"{path}: scenario.calibration: {exc.message}") from None
+    env = (data.get("env") or {}).get("id")
+    if env != physics.env_id:
+        raise InputError(f"{path}: scenario.calibration: {full} calibrates {env}, the plan runs {physics.env_id}")
+    names = tuple(data.get("names") or data["params"])
+    for name in names:
+        if name not in physics.param_table and name not in PERTURBATIONS and name.split(".")[0] not in PERTURBATIONS:
+            raise InputError(f"{path}: scenario.calibration: {name!r} is not a parameter of {physics.env_id}")
+    units = tuple(spec_of(physics, n).unit for n in names)
+    estimates = tuple(float(data["params"][n]["estimate"]) for n in names)
+    boot = tuple(tuple(float(x) for x in row) for row in data["bootstrap"])
+    if not boot:
+        raise InputError(f"{path}: scenario.calibration: {full} has no bootstrap set (run pretrial calibrate with "
+                         "--bootstrap > 0)")
+    fixed = {k: float(v) for k, v in (data.get("fixed") or {}).items() if k in physics.param_table}
+    nominal = {**fixed, **{n: e for n, e in zip(names, estimates, strict=True) if n in physics.param_table}}
+    return Calibrated(str(full), data["content_sha256"], names, units, estimates, boot), nominal
 
 
 def check_plan_budget(plan: Plan, physics: Any) -> int:

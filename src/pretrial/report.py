@@ -240,6 +240,11 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
         items.append(_quality_line(quality))
     for name, why in (results.get("skipped") or {}).items():
         items.append(f"{name} skipped: {why}")
+    cal = (plan.get("resolved") or {}).get("calibration")
+    if cal:
+        items.append(f"calibrated plant: {', '.join(cal['names'])} at their estimates from {cal['path']} "
+                     f"(sha256 {cal['content_sha256'][:16]}…) in every analysis; Monte Carlo draws them jointly "
+                     f"from its {cal['replicates']} bootstrap replicates, so their correlations are kept")
     if results.get("content_sha256"):
         items.append(f"results content sha256 {results['content_sha256']}")
     from .perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated)

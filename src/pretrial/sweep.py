@@ -448,11 +448,16 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
 
     n = c.plan.budgets["montecarlo_samples"]
     vary = c.plan.vary
-    names = [v.name for v in vary]
+    cal = c.plan.calibration
+    cal_names = list(cal.names) if cal is not None else []
+    boot = cal.rows() if cal is not None else None
+    cal_seed = derive_seed(seed, _CALIBRATION_DRAWS)
+    units = {v.name: v.unit for v in vary} | (dict(zip(cal.names, cal.units, strict=True)) if cal else {})
+    names = [v.name for v in vary] + cal_names
     successes, modes, lowest, has_nan = 0, Counter[str](), _Lowest(WORST_LISTED), False
     with ExitStack() as stack:
         store = stack.enter_context(ColumnStore([*names, "score", "success"], n, scratch))
-        csv = stack.enter_context(SamplesCSV(csv_path, names, {v.name: v.unit for v in vary})) if csv_path else None
+        csv = stack.enter_context(SamplesCSV(csv_path, names, units)) if csv_path else None
         start = 0
         for u in unit_blocks(n, len(vary), seed, c.plan.budgets["montecarlo_sampler"], MC_BLOCK):
             index = np.arange(start, start + len(u))
@@ -460,6 +465,9 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
             values = {v.name: unit_to_value(v, u[:, i]) for i, v in enumerate(vary)}
             if CONTROL_PERIOD in values:  # each distinct period is its own plant: keep them few
                 values[CONTROL_PERIOD] = np.round(values[CONTROL_PERIOD], 4)
+            if boot is not None:  # one bootstrap row per sample: the calibrated names move together
+                row = streams.episode_keys(np.uint64(cal_seed), index) % np.uint64(len(boot))
+                values.update({name: boot[row.astype(np.int64), j] for j, name in enumerate(cal_names)})
             seeds = streams.episode_keys(np.uint64(seed), index)
             batch = c.evaluate(values, seeds, np.zeros(len(u), dtype=np.int64))
             block = {**values, "seed": seeds, "success": batch.success, "failure": batch.failure, "score": batch.score}
@@ -484,7 +492,10 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
         "samples": n, "successes": successes, "success_rate": successes / n, "ci95": [float(lo), float(hi)],
         "failure_modes": _ordered_modes(modes), "sampler": c.plan.budgets["montecarlo_sampler"],
         "varied": [{"name": v.name, "unit": v.unit, "distribution": v.distribution, "low": v.box_low,
-                    "high": v.box_high, "mean": v.mean, "std": v.std} for v in vary],
+                    "high": v.box_high, "mean": v.mean, "std": v.std} for v in vary]
+                  + [{"name": name, "unit": units[name], "distribution": "calibration bootstrap",
+                      "low": float(boot[:, j].min()), "high": float(boot[:, j].max()), "mean": None, "std": None}
+                     for j, name in enumerate(cal_names)],
         "score_quantiles": {str(q): float(quant[q]) for q in SCORE_QUANTILES}, "worst": worst,
         "samples_file": "montecarlo.csv" if csv_path is not None else None, "seed": seed,
     }
@@ -810,6 +821,9 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
 
 
 #: analysis -> key into the plan seed, so adding an analysis never changes another's draws
+#: key into the Monte Carlo seed for the calibration's bootstrap-row draws
+_CALIBRATION_DRAWS = 7
+
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 

@@ -29,7 +29,7 @@ import numpy as np
 from pretrial_envs.core import Physics
 
 from .perturb import CONTROL_PERIOD, nominal_value
-from .plan import Z2, Vary
+from .plan import Z2, Calibrated, Vary
 from .rollout import Scenarios, keyed_scenarios
 
 OBJECTIVES = ("mean", "cvar:A", "success_lower_bound")
@@ -125,11 +125,14 @@ class PlanDistribution:
 
     vary: tuple[Vary, ...]
     nominal: Mapping[str, float]
+    #: a plan's calibration: whole bootstrap rows drawn per scenario (the fitted names move together)
+    calibration: Calibrated | None = None
 
     @classmethod
-    def from_plan(cls, vary: Sequence[Vary], physics: Physics, params: Mapping[str, float]) -> PlanDistribution:
+    def from_plan(cls, vary: Sequence[Vary], physics: Physics, params: Mapping[str, float],
+                  calibration: Calibrated | None = None) -> PlanDistribution:
         kept = tuple(v for v in vary if v.name != CONTROL_PERIOD)
-        return cls(kept, {v.name: nominal_value(physics, params, v.name) for v in kept})
+        return cls(kept, {v.name: nominal_value(physics, params, v.name) for v in kept}, calibration)
 
     def draw(self, physics: Physics, n: int, seed: int, params: np.ndarray, ramp: float = 1.0) -> Scenarios:
         """``n`` scenarios drawn from the dispersions, a pure function of ``seed``.
@@ -144,6 +147,11 @@ class PlanDistribution:
             x = unit_to_value(v, u[:, j])
             c = min(max(self.nominal[v.name], v.box_low), v.box_high)
             settings[v.name] = c + ramp * (x - c) if ramp < 1.0 else x
+        if self.calibration is not None:
+            boot = self.calibration.rows()
+            pick = boot[rng.integers(0, len(boot), n)]
+            for j, (name, est) in enumerate(zip(self.calibration.names, self.calibration.estimates, strict=True)):
+                settings[name] = est + ramp * (pick[:, j] - est) if ramp < 1.0 else pick[:, j]
         return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
 
 
@@ -167,10 +175,13 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     from .sweep import Campaign, linear_analysis, requirements, verdict, wilson_interval
 
     c = Campaign(physics, policy, dict(base_params), plan, executor, "policy")
-    dist = PlanDistribution.from_plan(plan.vary, physics, base_params)
+    dist = PlanDistribution.from_plan(plan.vary, physics, base_params, plan.calibration)
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
     u = rng.random((samples, len(dist.vary)))
     values = {v.name: unit_to_value(v, u[:, j]) for j, v in enumerate(dist.vary)}
+    if plan.calibration is not None:  # whole bootstrap rows, as the sweep's Monte Carlo draws them
+        pick = plan.calibration.rows()[rng.integers(0, len(plan.calibration.bootstrap), samples)]
+        values.update({name: pick[:, j] for j, name in enumerate(plan.calibration.names)})
     batch = c.evaluate(values, np.full(samples, seed, dtype=np.uint64), np.arange(samples))
     k = int(batch.success.sum())
     lo, hi = wilson_interval(k, samples)
