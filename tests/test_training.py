@@ -198,3 +198,15 @@ def test_training_config_errors_name_the_key(tmp_path, text, needle):
     with pytest.raises(InputError) as err:
         load_config(path)
     assert needle in str(err.value) and "\n" not in str(err.value)
+
+
+def test_corner_share_puts_rows_on_the_box_corners():
+    physics = make_physics("pretrial/CartPole-v0", start_spread={"x": 0.05, "theta": 0.05})
+    plan = load_plan(ROOT / "configs" / "sweeps" / "cartpole.toml", physics)
+    dist = PlanDistribution.from_plan(plan.vary, physics, plan.params, corner_share=0.5)
+    sc = dist.draw(physics, 40, 5, physics.param_table.resolve_batch(plan.params, 40))
+    for v in plan.vary:
+        x = sc.params[:, physics.param_table.index(v.name)] if v.name in physics.param_table else sc.perturb[v.name]
+        ends = np.isclose(x[20:], v.box_low, rtol=1e-12) | np.isclose(x[20:], v.box_high, rtol=1e-12)
+        assert ends.all()  # the last half: every name at one end of its dispersion
+        assert not np.isclose(x[:20], v.box_low).all()  # the first half: the plan's own distribution

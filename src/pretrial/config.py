@@ -46,6 +46,7 @@ class TaskConfig:
     randomize_ramp: int = 0  # generations over which the ranges widen from nominal; 0 = full at once
     plan: str | None = None  # a sweep plan whose scenario and dispersions are the training distribution
     objective: str = "mean"  # "mean", "cvar:A" or "success_lower_bound" (see pretrial.training)
+    corner_share: float = 0.0  # with a plan: share of training scenarios on corners of the dispersion box
 
 
 @dataclass(frozen=True)
@@ -104,6 +105,8 @@ class Config:
             task["plan"] = self.task.plan
         if self.task.objective != "mean":
             task["objective"] = self.task.objective
+        if self.task.corner_share:
+            task["corner_share"] = self.task.corner_share
         out["neat"] = dict(self.neat)
         run = {k: v for k, v in self.run.__dict__.items() if v is not None}
         out["run"] = run
@@ -281,6 +284,7 @@ def load_config(path: str | Path) -> Config:
                   "a whole number from 0 (full ranges at once) to 1000000")
     plan_path = t.take("plan", str, None, lambda v: bool(v.strip()), "the path of a sweep plan")
     objective = t.take("objective", str, "mean")
+    corner_share = t.take("corner_share", float, 0.0, lambda v: 0 <= v <= 1, "a share of the episodes, 0 to 1")
     t.finish()
     from .training import parse_objective
 
@@ -402,7 +406,7 @@ def load_config(path: str | Path) -> Config:
     cfg = Config(
         path=path,
         task=TaskConfig(env, dict(env_options), params, episodes, horizon, network, randomize, ramp, plan_path,
-                        objective),
+                        objective, corner_share),
         neat=neat,
         run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation, linear_every,
                       linear_top, verdict_samples),

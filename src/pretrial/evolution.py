@@ -199,7 +199,7 @@ def _plan_task(cfg: Config) -> Task:
     plan, physics, options, params = load_training_plan(cfg)
     horizon = plan.horizon if plan.horizon is not None else cfg.task.horizon
     steps = physics.max_steps if horizon is None else max(1, round(horizon / physics.dt))
-    dist = PlanDistribution.from_plan(plan.vary, physics, params, plan.calibration)
+    dist = PlanDistribution.from_plan(plan.vary, physics, params, plan.calibration, cfg.task.corner_share)
     return Task(cfg.task.env, options, params, steps, _io_map(cfg, physics), {}, cfg.task.randomize_ramp,
                 dict(dist.nominal), dist, plan.quality, parse_objective(cfg.task.objective))
 

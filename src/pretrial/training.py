@@ -127,12 +127,15 @@ class PlanDistribution:
     nominal: Mapping[str, float]
     #: a plan's calibration: whole bootstrap rows drawn per scenario (the fitted names move together)
     calibration: Calibrated | None = None
+    #: share of each generation's scenarios put on random corners of the dispersion box (every name at
+    #: one end of its dispersion): the worst-case search looks there, so training can too
+    corner_share: float = 0.0
 
     @classmethod
     def from_plan(cls, vary: Sequence[Vary], physics: Physics, params: Mapping[str, float],
-                  calibration: Calibrated | None = None) -> PlanDistribution:
+                  calibration: Calibrated | None = None, corner_share: float = 0.0) -> PlanDistribution:
         kept = tuple(v for v in vary if v.name != CONTROL_PERIOD)
-        return cls(kept, {v.name: nominal_value(physics, params, v.name) for v in kept}, calibration)
+        return cls(kept, {v.name: nominal_value(physics, params, v.name) for v in kept}, calibration, corner_share)
 
     def draw(self, physics: Physics, n: int, seed: int, params: np.ndarray, ramp: float = 1.0) -> Scenarios:
         """``n`` scenarios drawn from the dispersions, a pure function of ``seed``.
@@ -142,6 +145,9 @@ class PlanDistribution:
         """
         rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
         u = rng.random((n, len(self.vary)))  # one column per name, in plan order
+        corners = round(self.corner_share * n)
+        if corners:  # the last rows: each name at the low or the high end of its dispersion
+            u[n - corners:] = rng.integers(0, 2, (corners, len(self.vary)))
         settings = {}
         for j, v in enumerate(self.vary):
             x = unit_to_value(v, u[:, j])
