@@ -187,3 +187,15 @@ def test_quality_words_follow_the_envs_own():
     # the gantry's bands are its goal tolerances, per row
     params = ph.param_table.resolve_batch({"position_tolerance": 0.03}, 3)
     np.testing.assert_allclose(ph.regulation_band(params), [[0.03, 0.05]] * 3)
+
+
+def test_envs_lists_the_regulated_quantities(capsys):
+    import json
+
+    from pretrial.cli import main
+
+    assert main(["envs", "CartPole-v0", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["regulated"] == [{"name": "x", "unit": "m", "band": 0.1}, {"name": "theta", "unit": "rad", "band": 0.05}]
+    assert main(["envs", "CartPole-v0"]) == 0
+    assert "not_settled" in capsys.readouterr().out

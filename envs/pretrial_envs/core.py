@@ -787,6 +787,7 @@ class Physics:
             ],
             "params": self.param_table.as_dicts(),
             "failure_modes": list(self.failure_words[1:]),
+            "regulated": [{"name": n, "unit": u, "band": b} for n, (u, b) in self.regulated().items()],
             "success_rule": self.success_rule,
             "reward": self.reward_doc,
             "options": self.options(),

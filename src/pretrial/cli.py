@@ -127,6 +127,11 @@ def _run_envs(args: argparse.Namespace) -> int:
            for s in info["perturbations"]])
     print(f"\nSuccess: {info['success_rule']}")
     print(f"Failure words: {', '.join(info['failure_modes'])}")
+    from .quality import QUALITY_WORDS
+
+    regulated = ", ".join(f"{r['name']} (band {r['band']:g} {r['unit']})" for r in info.get("regulated", []))
+    print(f"Loop quality (a sweep's success also needs it): {', '.join(QUALITY_WORDS)}; regulated: "
+          f"{regulated or 'none declared (saturation and chatter only)'}")
     print(f"Reward: {info['reward']}")
     return 0
 
