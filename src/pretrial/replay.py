@@ -516,14 +516,14 @@ def run_cli(args: argparse.Namespace) -> int:
         for kind in ("gif", "mp4"):
             if outputs[kind]:
                 animation.write_animation(outputs[kind], rep.physics, trace["state"][:, 0], params[0], int(steps[0]),
-                                          note)
+                                          traces.plot_title(note))
                 rep.files[kind] = outputs[kind]
     except OSError as exc:
         raise PretrialError(f"cannot write output: {exc.strerror or exc}") from None
     if args.show:
         ok, backend = animation.display_available()
         if ok:
-            animation.show_episode(rep.physics, trace["state"][:, 0], params[0], int(steps[0]), note)
+            animation.show_episode(rep.physics, trace["state"][:, 0], params[0], int(steps[0]), traces.plot_title(note))
         else:
             print(f"pretrial: --show skipped: no display here (matplotlib backend {backend}); use --gif or --mp4",
                   file=sys.stderr)
