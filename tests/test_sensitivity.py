@@ -46,13 +46,20 @@ def test_sobol_indices_of_the_ishigami_function(monkeypatch):
     assert out["samples"] == 2**12 * (3 + 2)
 
 
-def test_sensitivity_draws_from_the_plans_distributions():
-    lo = Vary("a", "-", 1.0, 0.1, 10.0, "loguniform")
-    norm = Vary("b", "-", 0.0, -3.0, 3.0, "normal", mean=0.5, std=1.0)
+def test_draws_follow_the_plans_distributions():
+    # outside reference: scipy.stats' own uniform, log-uniform and truncated normal inverse CDFs; Monte Carlo,
+    # training and sensitivity all map uniforms through pretrial.training.unit_to_value
+    from scipy import stats
+
     u = np.linspace(0.01, 0.99, 9)
-    # the distribution sensitivity samples from maps uniforms exactly as Monte Carlo does
-    for v in (lo, norm, Vary("c", "-", 0.0, -1.0, 2.0)):
-        np.testing.assert_allclose(sweep._distribution(v).ppf(u), sweep.unit_to_value(v, u), rtol=1e-12)
+    cases = [
+        (Vary("a", "-", 1.0, 0.1, 10.0, "loguniform"), stats.loguniform(0.1, 10.0)),
+        (Vary("b", "-", 0.0, -3.0, 3.0, "normal", mean=0.5, std=1.0), stats.truncnorm(-3.5, 2.5, loc=0.5, scale=1.0)),
+        (Vary("c", "-", 0.0, -1.0, 2.0), stats.uniform(loc=-1.0, scale=3.0)),
+    ]
+    for v, reference in cases:
+        np.testing.assert_allclose(sweep.unit_to_value(v, u), reference.ppf(u), rtol=1e-12)
+        np.testing.assert_allclose(sweep._Drawn(v).ppf(u), reference.ppf(u), rtol=1e-12)
 
 
 def test_sensitivity_intervals_are_a_function_of_the_seed(monkeypatch):

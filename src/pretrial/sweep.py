@@ -586,7 +586,7 @@ def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
         return y
 
     rng = np.random.default_rng(seed)
-    res = stats.sobol_indices(func=score, n=n, dists=[_distribution(v) for v in vary], rng=rng)
+    res = stats.sobol_indices(func=score, n=n, dists=[_Drawn(v) for v in vary], rng=rng)
     # SobolResult.bootstrap resamples with numpy's global random state (it takes no generator): seed it
     # from the analysis seed for the call, and put the caller's state back, so the intervals are
     # a function of the plan alone
@@ -610,16 +610,17 @@ def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
             "score_variance": float(np.var(y))}
 
 
-def _distribution(v: Vary) -> Any:
-    """The scipy distribution a varied name is drawn from (as Monte Carlo draws it)."""
-    from scipy import stats
+@dataclass(frozen=True)
+class _Drawn:
+    """A varied name's distribution as ``scipy.stats.sobol_indices`` asks for one: its inverse CDF only.
 
-    lo, hi = v.box_low, v.box_high
-    if v.distribution == "loguniform":
-        return stats.loguniform(lo, hi)
-    if v.distribution == "normal":
-        return stats.truncnorm((lo - v.mean) / v.std, (hi - v.mean) / v.std, loc=v.mean, scale=v.std)
-    return stats.uniform(loc=lo, scale=hi - lo)
+    The mapping is :func:`pretrial.training.unit_to_value`, the one Monte Carlo and training use.
+    """
+
+    vary: Vary
+
+    def ppf(self, u: np.ndarray) -> np.ndarray:
+        return unit_to_value(self.vary, u)
 
 
 def _finite(v: Any) -> float | None:
@@ -687,8 +688,8 @@ def linear_analysis(c: Campaign, sampled: bool) -> tuple[list[dict[str, Any]], d
     if rep.linearizable and rep.stable is False:
         # margins of an unstable loop are meaningless numbers (0 dB / 0 deg): say UNSTABLE instead
         details["unstable"] = True
-        channels = [{k: (None if k not in ("channel",) and isinstance(v, (int, float)) and not isinstance(v, bool)
-                         else v) for k, v in ch.items()} | {"unstable": True} for ch in channels]
+        channels = [{k: None if isinstance(v, (int, float)) and not isinstance(v, bool) else v for k, v in ch.items()}
+                    | {"unstable": True} for ch in channels]
     return channels, details
 
 
@@ -769,34 +770,25 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
         out.append({"name": "success rate at the worst case found (point estimate)",
                     "required": plan.worstcase_success_rate, "measured": conf["success_rate"],
                     "interval": conf["ci95"], "pass": conf["success_rate"] >= plan.worstcase_success_rate})
-    wanted = (("gain_margin_db", plan.gain_margin_db), ("phase_margin_deg", plan.phase_margin_deg))
+    wanted = [(k, w) for k, w in (("gain_margin_db", plan.gain_margin_db), ("phase_margin_deg", plan.phase_margin_deg))
+              if w is not None]
     for key, title in (("linear", "continuous loop"), ("linear_sampled", "sampled loop")):
         if res.get(key) is None:
             continue
         details = res["linear_details"]["continuous" if key == "linear" else "sampled"]
-        if details.get("not_applicable"):
-            for req_name, want in wanted:
-                if want is not None:
-                    out.append({"name": f"{req_name} ({title})", "required": want,
-                                "measured": f"not applicable: {details['not_applicable']}", "pass": None})
-            continue
-        if details.get("unstable"):
-            for req_name, want in wanted:
-                if want is not None:
-                    out.append({"name": f"{req_name} ({title})", "required": want,
-                                "measured": "UNSTABLE (an unstable pole in the nominal linearized loop)",
-                                "pass": False})
-            continue
-        if not details["linearizable"]:
-            reason = f"not linearizable: {details['reason']}"
-            for req_name, want in wanted:
-                if want is not None:
-                    out.append({"name": f"{req_name} ({title})", "required": want, "measured": reason, "pass": False})
+        # a loop judged whole: not applicable (neither passes nor fails), unstable, or not linearizable
+        whole = (
+            (f"not applicable: {details['not_applicable']}", None) if details.get("not_applicable")
+            else ("UNSTABLE (an unstable pole in the nominal linearized loop)", False) if details.get("unstable")
+            else (f"not linearizable: {details['reason']}", False) if not details["linearizable"]
+            else None
+        )
+        if whole is not None:
+            out += [{"name": f"{req_name} ({title})", "required": want, "measured": whole[0], "pass": whole[1]}
+                    for req_name, want in wanted]
             continue
         for ch in res[key]:
             for req_name, want in wanted:
-                if want is None:
-                    continue
                 got = ch.get(req_name)
                 # None: no limit on that side (an unbounded margin)
                 measured = "unlimited" if got is None else got
