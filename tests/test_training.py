@@ -1,9 +1,8 @@
 """Training for the verdict: objectives and the plan's dispersions as a training distribution.
 
-References: the Wilson (1927) score interval as scipy computes it
-(``scipy.stats.binomtest(...).proportion_ci(method="wilson")``); conditional value at
-risk as the mean of the worst share of outcomes (Rockafellar & Uryasev 2000, for a
-finite sample of equally likely outcomes).
+References: the Wilson (1927) score interval (``sweep.wilson_interval``, checked against scipy in
+tests/test_sweep.py); conditional value at risk as the mean of the worst share of outcomes
+(Rockafellar & Uryasev 2000, for a finite sample of equally likely outcomes).
 """
 
 from __future__ import annotations
@@ -12,12 +11,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
-from scipy.stats import binomtest
 
 from pretrial.plan import load_plan
-from pretrial.training import Objective, PlanDistribution, objective_fitness, parse_objective, wilson_lower
+from pretrial.training import Objective, PlanDistribution, objective_fitness, parse_objective
 from pretrial_envs import make_physics
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -35,14 +31,6 @@ def test_objectives_parse(text, kind, alpha):
 def test_bad_objectives_say_what_is_valid(text):
     with pytest.raises(ValueError, match="success_lower_bound"):
         parse_objective(text)
-
-
-@given(st.integers(0, 50), st.integers(1, 50))
-@settings(max_examples=60, deadline=None)
-def test_wilson_lower_bound_matches_scipy(k, n):
-    k = min(k, n)
-    ref = binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson").low
-    assert wilson_lower(np.array([k]), n)[0] == pytest.approx(ref, abs=1e-9)
 
 
 def test_cvar_is_the_mean_of_the_worst_share():

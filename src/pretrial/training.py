@@ -29,7 +29,7 @@ import numpy as np
 from pretrial_envs.core import Physics
 
 from .perturb import CONTROL_PERIOD, nominal_value
-from .plan import Z2, Calibrated, Vary
+from .plan import Calibrated, Vary
 from .rollout import Scenarios, keyed_scenarios
 
 OBJECTIVES = ("mean", "cvar:A", "success_lower_bound")
@@ -75,14 +75,6 @@ def parse_objective(text: str) -> Objective:
     raise ValueError(f"{text!r} is not one of {valid}")
 
 
-def wilson_lower(successes: np.ndarray, n: int) -> np.ndarray:
-    """Wilson (1927) 95% lower bound of ``successes`` out of ``n``, elementwise."""
-    p = np.asarray(successes, dtype=float) / n
-    centre = p + Z2 / (2 * n)
-    half = math.sqrt(Z2) * np.sqrt(p * (1 - p) / n + Z2 / (4 * n * n))
-    return np.maximum((centre - half) / (1 + Z2 / n), 0.0)
-
-
 def objective_fitness(objective: Objective, returns: np.ndarray, success: np.ndarray,
                       score: np.ndarray | None = None) -> np.ndarray:
     """One fitness per genome from (G, S) episode returns, successes and (for the lower bound) scores."""
@@ -95,7 +87,9 @@ def objective_fitness(objective: Objective, returns: np.ndarray, success: np.nda
         return np.sort(returns, axis=1)[:, :k].mean(axis=1)
     if score is None:
         raise ValueError("success_lower_bound needs the episode scores")
-    lower = wilson_lower(np.asarray(success).sum(axis=1), s)
+    from .sweep import wilson_interval
+
+    lower = wilson_interval(np.asarray(success).sum(axis=1), s)[0]
     return lower + SCORE_TIEBREAK * np.asarray(score, dtype=float).mean(axis=1)
 
 
@@ -144,6 +138,11 @@ class PlanDistribution:
         curriculum of ``randomize_ramp``); 1 is the plan's full distribution.
         """
         rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
+        settings = self.values(rng, n, ramp)
+        return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
+
+    def values(self, rng: np.random.Generator, n: int, ramp: float = 1.0) -> dict[str, np.ndarray]:
+        """``n`` values of every varied (and calibrated) name, drawn from ``rng``; see :meth:`draw`."""
         u = rng.random((n, len(self.vary)))  # one column per name, in plan order
         corners = round(self.corner_share * n)
         if corners:  # the last rows: each name at the low or the high end of its dispersion
@@ -153,12 +152,12 @@ class PlanDistribution:
             x = unit_to_value(v, u[:, j])
             c = min(max(self.nominal[v.name], v.box_low), v.box_high)
             settings[v.name] = c + ramp * (x - c) if ramp < 1.0 else x
-        if self.calibration is not None:
+        if self.calibration is not None:  # whole bootstrap rows: the fitted names move together
             boot = self.calibration.rows()
             pick = boot[rng.integers(0, len(boot), n)]
             for j, (name, est) in enumerate(zip(self.calibration.names, self.calibration.estimates, strict=True)):
                 settings[name] = est + ramp * (pick[:, j] - est) if ramp < 1.0 else pick[:, j]
-        return keyed_scenarios(physics, np.full(n, seed, dtype=np.uint64), np.arange(n), params, settings)
+        return settings
 
 
 # --------------------------------------------------------------------------- #
@@ -181,13 +180,8 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     from .sweep import Campaign, linear_analysis, requirements, verdict, wilson_interval
 
     c = Campaign(physics, policy, dict(base_params), plan, executor, "policy")
-    dist = PlanDistribution.from_plan(plan.vary, physics, base_params, plan.calibration)
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,)))
-    u = rng.random((samples, len(dist.vary)))
-    values = {v.name: unit_to_value(v, u[:, j]) for j, v in enumerate(dist.vary)}
-    if plan.calibration is not None:  # whole bootstrap rows, as the sweep's Monte Carlo draws them
-        pick = plan.calibration.rows()[rng.integers(0, len(plan.calibration.bootstrap), samples)]
-        values.update({name: pick[:, j] for j, name in enumerate(plan.calibration.names)})
+    dist = PlanDistribution.from_plan(plan.vary, physics, base_params, plan.calibration)  # no corners: the plan
+    values = dist.values(np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0,))), samples)
     batch = c.evaluate(values, np.full(samples, seed, dtype=np.uint64), np.arange(samples))
     k = int(batch.success.sum())
     lo, hi = wilson_interval(k, samples)
@@ -203,12 +197,12 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     # A short run cannot show a high rate at 95% confidence; predict the plan's own test instead: the
     # lower bound the sweep's sample count would give at the rate measured here.
     full = int(plan.budgets.get("montecarlo_samples", samples))
-    predicted = float(wilson_lower(np.array([k / samples * full]), full)[0])
+    predicted = float(wilson_interval(k / samples * full, full)[0])
     for r in rows:
         if r["name"].startswith("success rate (Monte Carlo"):
-            r.update(name=f"success rate (Monte Carlo, Wilson 95% lower bound predicted at {full} samples from "
-                          f"{samples})", measured=predicted, passed=predicted >= plan.required_success_rate)
-            r["pass"] = r.pop("passed")
+            r.update({"name": f"success rate (Monte Carlo, Wilson 95% lower bound predicted at {full} samples "
+                              f"from {samples})", "measured": predicted,
+                      "pass": predicted >= plan.required_success_rate})
     for r in rows:  # JSON-friendly, as champion.json keeps them
         for key in ("required", "measured", "point"):
             if isinstance(r.get(key), (np.floating, np.integer)):
