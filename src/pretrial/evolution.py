@@ -137,12 +137,15 @@ def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple
     return fitness, out.success.mean(axis=1), diverged
 
 
-def make_task(cfg: Config) -> Task:
-    """Derive the network's inputs, outputs and scaling from the env (and the plan, when training against one)."""
+def make_task(cfg: Config, training_plan: tuple | None = None) -> Task:
+    """Derive the network's inputs, outputs and scaling from the env (and the plan, when training against one).
+
+    ``training_plan`` is :func:`load_training_plan`'s result when the caller already has it.
+    """
     from .generic import make_plant
 
     if cfg.task.plan is not None:
-        return _plan_task(cfg)
+        return _plan_task(cfg, training_plan or load_training_plan(cfg))
     physics = make_plant(cfg.task.env, **cfg.task.env_options)
     io_map = _io_map(cfg, physics)
     steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
@@ -195,8 +198,8 @@ def load_training_plan(cfg: Config) -> tuple[Any, Any, dict[str, Any], dict[str,
     return plan, physics, options, params
 
 
-def _plan_task(cfg: Config) -> Task:
-    plan, physics, options, params = load_training_plan(cfg)
+def _plan_task(cfg: Config, training_plan: tuple) -> Task:
+    plan, physics, options, params = training_plan
     horizon = plan.horizon if plan.horizon is not None else cfg.task.horizon
     steps = physics.max_steps if horizon is None else max(1, round(horizon / physics.dt))
     dist = PlanDistribution.from_plan(plan.vary, physics, params, plan.calibration, cfg.task.corner_share)
@@ -277,7 +280,9 @@ class Evolution:
         self.executor = executor
         self.log = log
         self.command_line = list(command_line)
-        self.task = make_task(cfg)
+        #: (plan, physics, options, params) when training against a plan
+        self._plan = load_training_plan(cfg) if cfg.task.plan is not None else None
+        self.task = make_task(cfg, self._plan)
         check_workers_can_build(self.task.physics(), executor)
         self.ini_path = run_dir / "neat.ini"
         self.manifest_path = run_dir / "manifest.json"
@@ -287,9 +292,6 @@ class Evolution:
         self.timing: list[float] = []  # seconds per generation of this session
         self._timing_rows: list[dict[str, Any]] = []  # timing.csv, earlier sessions included
         self._best_success = 0.0
-        self._linear_met: int | None = None
-        #: (plan, physics, options, params) when training against a plan
-        self._plan = load_training_plan(cfg) if cfg.task.plan is not None else None
 
     # ------------------------------------------------------------ set-up
     def create(self) -> None:
@@ -515,11 +517,15 @@ class Evolution:
             ) from None
         return self.finish(reached)
 
+    def _env_params(self) -> dict[str, float]:
+        """Every physics parameter of the task's plant, by name (what a policy file records)."""
+        table = self.task.physics().param_table
+        return dict(zip(table.names, table.resolve(self.task.params).tolist()))
+
     def _policy(self, genome: Any) -> Any:
-        physics = self.task.physics()
-        params = dict(zip(physics.param_table.names, physics.param_table.resolve(self.task.params).tolist()))
-        return policy_from_genome(genome, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
-                                  env_params=params, io=self.task.io)
+        return policy_from_genome(genome, self.neat_config, env_id=self.task.env_id,
+                                  env_options=self.task.physics().options(), env_params=self._env_params(),
+                                  io=self.task.io)
 
     def _linear_rerank(self, genomes: Sequence[Any], fitness: np.ndarray) -> np.ndarray:
         """The best ``linear_top`` genomes, reordered so that those meeting the plan's linear margins come first.
@@ -536,7 +542,6 @@ class Evolution:
         out = np.array(fitness, dtype=float)
         for i, v in zip(order, values, strict=True):
             out[i] = v
-        self._linear_met = sum(1 for v in short.values() if v == 0.0)
         return out
 
     def _update_hall(self, genomes: Sequence[Any]) -> None:
@@ -630,9 +635,8 @@ class Evolution:
                                 "linear_every": self.cfg.run.linear_every, "linear_top": self.cfg.run.linear_top}
             training["predicted_verdict"] = verdicts[i]
         physics = self.task.physics()
-        params = dict(zip(physics.param_table.names, physics.param_table.resolve(self.task.params).tolist()))
         doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
-                             env_params=params, io=self.task.io, training=training)
+                             env_params=self._env_params(), io=self.task.io, training=training)
         save_policy(self.run_dir / "champion.json", doc)
         self._plots(doc, physics)
         summary = {
