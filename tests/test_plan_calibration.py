@@ -110,3 +110,16 @@ def test_training_against_a_calibrated_plan_draws_whole_rows(tmp_path):
     i, j = physics.param_table.index("cart_mass"), physics.param_table.index("pole_mass")
     boot = {tuple(r) for r in json.loads((tmp_path / "cal.json").read_text())["bootstrap"]}
     assert {(float(a), float(b)) for a, b in sc.params[:, [i, j]]} <= boot
+
+
+def test_a_calibration_naming_an_unknown_parameter_is_refused(tmp_path):
+    path = _calibration(tmp_path / "cal.json")
+    doc = json.loads(path.read_text())
+    doc["names"] = ["cart_mass", "no_such_mass"]
+    doc["params"]["no_such_mass"] = doc["params"].pop("pole_mass")
+    path.write_text(json.dumps(with_hash({k: v for k, v in doc.items() if k != "content_sha256"})), encoding="utf-8")
+    plan_path = tmp_path / "plan.toml"
+    plan_path.write_text(PLAN, encoding="utf-8")
+    with pytest.raises(InputError) as err:
+        load_plan(plan_path, make_physics("pretrial/CartPole-v0"))
+    assert "scenario.calibration" in str(err.value) and "no_such_mass" in str(err.value)

@@ -389,10 +389,10 @@ def _read_calibration(path: str, cal_path: str, physics: Any) -> tuple[Calibrate
     if env != physics.env_id:
         raise InputError(f"{path}: scenario.calibration: {full} calibrates {env}, the plan runs {physics.env_id}")
     names = tuple(data.get("names") or data["params"])
-    for name in names:
-        if name not in physics.param_table and name not in PERTURBATIONS and name.split(".")[0] not in PERTURBATIONS:
-            raise InputError(f"{path}: scenario.calibration: {name!r} is not a parameter of {physics.env_id}")
-    units = tuple(spec_of(physics, n).unit for n in names)
+    try:
+        units = tuple(spec_of(physics, n).unit for n in names)
+    except ValueError as exc:
+        raise InputError(f"{path}: scenario.calibration: {full}: {exc}") from None
     estimates = tuple(float(data["params"][n]["estimate"]) for n in names)
     boot = tuple(tuple(float(x) for x in row) for row in data["bootstrap"])
     if not boot:

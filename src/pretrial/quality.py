@@ -44,7 +44,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
@@ -92,7 +92,7 @@ class QualityLimits:
         Full-scale share a command must pass on each side for a reversal to count.
     growth : bool
         Apply the growth test (survival tasks).
-    growth_ratio, growth_floor : float
+    growth_span, growth_ratio, growth_floor, noisy_growth_ratio, noisy_growth_floor : float
         See the module docstring.
     """
 
@@ -112,12 +112,7 @@ class QualityLimits:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data, as results.json records it."""
-        return {"settled": self.settled, "settle_window": self.settle_window, "band": dict(self.band),
-                "offset": dict(self.offset), "saturated_fraction": self.saturated_fraction,
-                "chatter_hz": self.chatter_hz, "chatter_level": self.chatter_level, "growth": self.growth,
-                "growth_span": self.growth_span, "growth_ratio": self.growth_ratio,
-                "growth_floor": self.growth_floor, "noisy_growth_ratio": self.noisy_growth_ratio,
-                "noisy_growth_floor": self.noisy_growth_floor}
+        return asdict(self)
 
     def check_names(self, physics: Physics) -> None:
         """Raise ValueError naming a band/offset key that is not a regulated quantity of ``physics``."""
@@ -135,7 +130,7 @@ class QualityLimits:
         for j, name in enumerate(names):
             if name in self.band:
                 band[:, j] = self.band[name]
-        offset = DEFAULT_OFFSET_SHARE * band
+        offset = DEFAULT_OFFSET_SHARE * band  # of the band in force, the plan's where it gives one
         for j, name in enumerate(names):
             if name in self.offset:
                 offset[:, j] = self.offset[name]
@@ -305,11 +300,6 @@ class QualityTracker:
 def merge_words(physics_words: tuple[str, ...]) -> tuple[str, ...]:
     """The env's failure words followed by the quality words (codes continue after the env's)."""
     return tuple(physics_words) + QUALITY_WORDS
-
-
-def limits_from_table(table: Mapping[str, Any] | None) -> QualityLimits:
-    """Defaults overridden by an already-validated mapping (keys as in :class:`QualityLimits`)."""
-    return QualityLimits(**dict(table or {}))
 
 
 def quality_metrics(physics: Physics, measures: Mapping[str, np.ndarray]) -> dict[str, EpisodeMetric]:
