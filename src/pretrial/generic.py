@@ -140,10 +140,7 @@ def make_plant(env_id: str, **options: Any) -> Physics:
     try:
         kind = pretrial_envs.physics_type(env_id)
     except ValueError as exc:
-        try:
-            plain = pretrial_envs.import_prefix(env_id)
-        except ValueError:
-            plain = env_id
+        plain = env_id.split(":", 1)[-1]  # physics_type has imported the module of a module:id already
         if plain not in gym.registry:
             raise InputError(str(exc)) from None
         return GymnasiumPlant(env_id, **options)

@@ -118,13 +118,7 @@ def env_id_of(name: str) -> str:
     try:
         return resolve_env_id(name)
     except InputError:
-        import pretrial_envs
-
-        try:
-            plain = pretrial_envs.import_prefix(name)
-        except ValueError:
-            raise InputError(f"{name}: cannot import its module") from None
-        if plain in gym.registry:
+        if name.split(":", 1)[-1] in gym.registry:  # resolve_env_id has imported the module of a module:id
             return name
         raise
 
