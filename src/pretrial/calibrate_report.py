@@ -15,6 +15,7 @@ import numpy as np
 
 from .errors import FileFormatError
 from .files import atomic_write_text, canonical_json, sha256_hex, write_json
+from .plots import save_figure
 
 SCHEMA = "pretrial.calibration"
 VERSION = 1
@@ -149,26 +150,29 @@ def dispersion_toml(summary: dict[str, Any], bounds: dict[str, tuple[float, floa
 # --------------------------------------------------------------------------- #
 # plots
 # --------------------------------------------------------------------------- #
-def _figure(rows: int, cols: int, size: tuple[float, float]):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+def _grid(rows: int, cols: int, size: tuple[float, float]):
+    """A figure (the project's own, :func:`pretrial.plots._figure`) with a rows x cols grid of axes."""
+    from .plots import _figure
 
-    fig = Figure(figsize=size, dpi=100)
-    FigureCanvasAgg(fig)
+    fig = _figure(*size)
     return fig, fig.subplots(rows, cols, squeeze=False)
+
+
+def _state_panels(states: int, panel_height: float):
+    """One panel per state, two columns when there are several; the spare panel hidden."""
+    cols = 2 if states > 1 else 1
+    rows = -(-states // cols)
+    fig, axes = _grid(rows, cols, (11, panel_height * rows + 0.6))
+    for ax in axes.flat[states:]:
+        ax.set_visible(False)
+    return fig, axes
 
 
 def plot_windows(path: Path, names: list[str], units: list[str], time: np.ndarray, target: np.ndarray,
                  pred: np.ndarray, mask: np.ndarray, t0: np.ndarray, x0: np.ndarray, title: str) -> None:
     """Measured states against the windows simulated from measured starts, one panel per state."""
-    s = len(names)
-    cols = 2 if s > 1 else 1
-    rows = -(-s // cols)
-    fig, axes = _figure(rows, cols, (11, 2.2 * rows + 0.6))
-    for j, ax in enumerate(axes.flat):
-        if j >= s:
-            ax.set_visible(False)
-            continue
+    fig, axes = _state_panels(len(names), 2.2)
+    for j, ax in enumerate(axes.flat[: len(names)]):
         t = np.concatenate([t0[:, None], time], axis=1)
         meas = np.concatenate([x0[:, None, j], target[:, :, j]], axis=1)
         sim = np.concatenate([x0[:, None, j], pred[:, :, j]], axis=1)
@@ -183,20 +187,14 @@ def plot_windows(path: Path, names: list[str], units: list[str], time: np.ndarra
         ax.set_xlabel("t [s]", fontsize=8)
     fig.suptitle(title, fontsize=9)
     fig.tight_layout()
-    fig.savefig(path)
+    save_figure(fig, path)
 
 
 def plot_residuals(path: Path, names: list[str], units: list[str], time: np.ndarray, resid: np.ndarray,
                    mask: np.ndarray, title: str) -> None:
     """Simulated minus measured state against time, one panel per state."""
-    s = len(names)
-    cols = 2 if s > 1 else 1
-    rows = -(-s // cols)
-    fig, axes = _figure(rows, cols, (11, 2.0 * rows + 0.6))
-    for j, ax in enumerate(axes.flat):
-        if j >= s:
-            ax.set_visible(False)
-            continue
+    fig, axes = _state_panels(len(names), 2.0)
+    for j, ax in enumerate(axes.flat[: len(names)]):
         ax.plot(time[mask], resid[:, :, j][mask], ".", ms=2, color="C0")
         ax.axhline(0.0, color="0.5", lw=0.8)
         ax.set_ylabel(f"{names[j]} [{units[j]}]", fontsize=8)
@@ -205,13 +203,13 @@ def plot_residuals(path: Path, names: list[str], units: list[str], time: np.ndar
         ax.set_xlabel("t [s]", fontsize=8)
     fig.suptitle(title, fontsize=9)
     fig.tight_layout()
-    fig.savefig(path)
+    save_figure(fig, path)
 
 
 def plot_bootstrap(path: Path, names: list[str], units: list[str], boot: np.ndarray, estimate: np.ndarray) -> None:
     """Bootstrap refits: a histogram per parameter, each pair as a scatter."""
     k = len(names)
-    fig, axes = _figure(k, k, (2.6 * k + 1, 2.4 * k + 0.6))
+    fig, axes = _grid(k, k, (2.6 * k + 1, 2.4 * k + 0.6))
     for i in range(k):
         for j in range(k):
             ax = axes[i, j]
@@ -228,7 +226,7 @@ def plot_bootstrap(path: Path, names: list[str], units: list[str], boot: np.ndar
                 ax.set_ylabel(f"{names[i]} [{units[i]}]", fontsize=7)
     fig.suptitle(f"bootstrap refits ({len(boot)}), x = estimate", fontsize=9)
     fig.tight_layout()
-    fig.savefig(path)
+    save_figure(fig, path)
 
 
 # --------------------------------------------------------------------------- #
