@@ -170,7 +170,7 @@ def _state_panels(states: int, panel_height: float):
 
 def plot_windows(path: Path, names: list[str], units: list[str], time: np.ndarray, target: np.ndarray,
                  pred: np.ndarray, mask: np.ndarray, t0: np.ndarray, x0: np.ndarray, title: str) -> None:
-    """Measured states against the windows simulated from measured starts, one panel per state."""
+    """Measured states against the windows simulated from starts fitted near the measured states, one panel per state."""
     fig, axes = _state_panels(len(names), 2.2)
     for j, ax in enumerate(axes.flat[: len(names)]):
         t = np.concatenate([t0[:, None], time], axis=1)
@@ -250,7 +250,7 @@ def report_md(summary: dict[str, Any]) -> str:
         out += ["", "Fixed: " + ", ".join(f"{k} = {v:g}" for k, v in summary["fixed"].items()) + "."]
     out += ["", "## Warnings", ""]
     out += [f"- {w}" for w in summary["warnings"]] or ["None."]
-    out += ["", "## Simulation error (RMS, simulated from measured starts)", "",
+    out += ["", "## Simulation error (RMS, windows from starts fitted near the measured states)", "",
             "| state | unit | fit | validation |", "|---|---|---|---|"]
     val = summary.get("validation") or {}
     for name, v in summary["fit"]["rmse"].items():
