@@ -285,7 +285,8 @@ def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: ar
     plots = {
         "windows": dict(names=names_s, units=units_s, time=shown.time[first], target=shown.target[first],
                         pred=shown_pred[first], mask=shown.mask[first], t0=t0, x0=shown.x0[first],
-                        title=f"{env_id}: measured and simulated windows (starts fitted near the measured states), {label}"),
+                        title=f"{env_id}: measured and simulated windows (starts fitted near the measured states), "
+                              f"{label}"),
         "residuals": dict(names=names_s, units=units_s, time=shown.time[first],
                           resid=shown_pred[first] - shown.target[first], mask=shown.mask[first],
                           title=f"simulated - measured, {label}"),

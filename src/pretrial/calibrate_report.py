@@ -170,7 +170,7 @@ def _state_panels(states: int, panel_height: float):
 
 def plot_windows(path: Path, names: list[str], units: list[str], time: np.ndarray, target: np.ndarray,
                  pred: np.ndarray, mask: np.ndarray, t0: np.ndarray, x0: np.ndarray, title: str) -> None:
-    """Measured states against the windows simulated from starts fitted near the measured states, one panel per state."""
+    """Measured states against windows simulated from starts fitted near the measured ones, a panel per state."""
     fig, axes = _state_panels(len(names), 2.2)
     for j, ax in enumerate(axes.flat[: len(names)]):
         t = np.concatenate([t0[:, None], time], axis=1)
