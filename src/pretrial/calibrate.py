@@ -72,6 +72,12 @@ def configure_cli(p: argparse.ArgumentParser) -> None:
     p.add_argument("--holdout", type=float, default=HOLDOUT, metavar="SHARE",
                    help=f"share of segments held out for validation when no --validate (default {HOLDOUT:g}; 0: none)")
     p.add_argument("--out", metavar="DIR", help="calibration directory (default calibrations/<env>-<UTC time>/)")
+    p.add_argument("--residual", action="store_true",
+                   help="also fit a residual of the derivatives the physics misses (writes residual.json)")
+    p.add_argument("--residual-degree", type=whole, default=2, metavar="D",
+                   help="highest degree of the residual's feature products (default 2)")
+    p.add_argument("--residual-margin", type=float, default=0.1, metavar="SHARE",
+                   help="trust region: the fitted envelope widened by this share of each span (default 0.1)")
     p.add_argument("--json", action="store_true", help="print the summary as one JSON object instead of text")
 
 
@@ -83,6 +89,10 @@ def run_cli(args: argparse.Namespace) -> int:
     env_id = resolve_env_id(args.env)
     options = parse_assignments(args.option, "--option")
     _check_numbers(args)
+    if args.residual:
+        from .calibrate_residual import check_options
+
+        check_options(args.residual_degree, args.residual_margin)
     physics = _physics(env_id, options)
     fixed = parse_assignments(args.set, "--set")
     names = _fit_names(physics, args.fit, fixed)
@@ -105,12 +115,22 @@ def run_cli(args: argparse.Namespace) -> int:
         _say_start(env_id, args.logs, log, fit_segs, names)
     est = calibrate(model, win, args.bootstrap, args.seed)
     val = make_windows(val_segs, steps) if any(len(s.t) > 1 for s in val_segs) else None
-    summary, plots = _summary(env_id, physics, model, fixed, args, log, win, val, source, est, fit_segs, val_segs)
+    residual_doc = None
+    if args.residual:
+        from .calibrate_residual import residual_step, summary_entry
+
+        residual_doc = residual_step(model, est, fit_segs, win, val, args.residual_degree, args.residual_margin)
+    summary, plots = _summary(env_id, physics, model, fixed, args, log, win, val, source, est, fit_segs, val_segs,
+                              None if residual_doc is None else summary_entry(residual_doc))
     for w in summary["warnings"]:
         print(f"pretrial: warning: {w}", file=sys.stderr)
     with staged(out) as stage:
         write_directory(stage, summary, set(physics.param_table.names),
                         {n: (model.spec(n).low, model.spec(n).high) for n in names}, plots)
+        if residual_doc is not None:
+            from .calibrate_residual import write_residual
+
+            write_residual(stage, residual_doc)
         if out.exists():
             out.rmdir()  # empty (checked before the work started)
         os.replace(stage, out)
@@ -238,7 +258,7 @@ def _rmse_table(physics, values: np.ndarray) -> dict[str, float]:
 
 def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: argparse.Namespace, log: BenchLog,
              win: Windows, val: Windows | None, source: str, est: Estimate, fit_segs: list[Segment],
-             val_segs: list[Segment]) -> tuple[dict[str, Any], dict[str, Any]]:
+             val_segs: list[Segment], residual: dict[str, Any] | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
     pred, fit_rmse = rmse(model, win, est.estimate)
     shown = val if val is not None else win
     shown_pred, val_rmse = rmse(model, val, est.estimate) if val is not None else (pred, None)
@@ -275,6 +295,7 @@ def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: ar
                            "scale_floor": SCALE_FLOOR},
         },
         "logs": [_log_entry(p) for p in args.logs],
+        **({"residual": residual} if residual is not None else {}),
     }
     summary = with_hash(jsonable(summary))
     first = shown.seg == shown.seg[0]
@@ -336,6 +357,10 @@ def _say_result(summary: dict[str, Any], out: Path) -> None:
            for n, v in summary["fit"]["rmse"].items()])
     if val:
         print(f"validation: {val['source']} ({val['segments']} segments, {val['samples']} samples)")
+    if summary.get("residual"):
+        from .calibrate_residual import say
+
+        print("\n" + "\n".join(say(summary["residual"])))
     print(f"\ncalibration directory: {out}")
     print(f"next: paste {out}/params.toml into a run config's [task.params]; {out}/dispersion.toml holds "
           "[[vary]] blocks for its sweep plan")
