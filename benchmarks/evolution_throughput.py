@@ -11,7 +11,7 @@ carry a hidden node or more), each on the same number of episodes of at most
     per episode ``gymnasium.make("CartPole-v1")`` stepped one step at a time with
     ``action = 1 if net.activate(obs)[0] > 0 else 0`` until terminated or truncated;
 (b) pretrial: ``stack_genomes`` -> ``PopulationPolicy`` (``IOMap(4, 1)``) ->
-    ``pretrial.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
+    ``pretrial.sim.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
     gymnasium's (forward Euler, dt 0.02 s, one substep, 10 s, gravity 9.8,
     frictionless). Its action is the tanh output times ``max_force`` rather than
     a bang-bang push, so episode lengths differ a little between the paths.
@@ -56,10 +56,10 @@ import gymnasium  # noqa: E402
 import neat  # noqa: E402
 import numpy as np  # noqa: E402
 
-from pretrial.config import neat_defaults  # noqa: E402
-from pretrial.network import stack_genomes  # noqa: E402
-from pretrial.policy import IOMap, PopulationPolicy  # noqa: E402
-from pretrial.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
+from pretrial.controller.network import stack_genomes  # noqa: E402
+from pretrial.controller.policy import IOMap, PopulationPolicy  # noqa: E402
+from pretrial.evolution.config import neat_defaults  # noqa: E402
+from pretrial.sim.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
 from pretrial_envs.cartpole import CartPolePhysics  # noqa: E402
 
 HORIZON = 500  # CartPole-v1's max_episode_steps; pretrial: 10 s at dt 0.02

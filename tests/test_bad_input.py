@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 from test_sweep import balancing_policy_file
 
-from pretrial.cli import main
+from pretrial.cli.main import main
 
 REPO = Path(__file__).resolve().parents[1]
 PLAN = REPO / "configs" / "sweeps" / "cartpole.toml"
@@ -374,7 +374,7 @@ _plan_tables = st.dictionaries(
 
 
 def _plan_only_input_errors(path: Path) -> None:
-    from pretrial.sweep_run import controlled
+    from pretrial.analysis.sweep import controlled
 
     try:
         controlled("lqr", str(path), "CartPole-v0")
@@ -404,7 +404,7 @@ def test_fuzz_plan_tomlish_text(tmp_path, tables):
 
 
 def _results_only_input_errors(path: Path) -> None:
-    from pretrial.sweep_run import read_results
+    from pretrial.analysis.sweep import read_results
 
     try:
         read_results(path)
@@ -804,7 +804,7 @@ _DROP = object()
     ({"required_success_rate": False}, "'required_success_rate'"),
 ])
 def test_results_of_another_schema_are_refused(tmp_path, changes, needle):
-    from pretrial.sweep_run import read_results
+    from pretrial.analysis.sweep import read_results
 
     good = tmp_path / "good.json"
     good.write_text(json.dumps(_results_doc()))
@@ -817,8 +817,8 @@ def test_results_of_another_schema_are_refused(tmp_path, changes, needle):
 
 
 def test_results_holding_only_a_schema_are_refused(tmp_path):
+    from pretrial.analysis.sweep import read_results
     from pretrial.files import canonical_json, sha256_hex
-    from pretrial.sweep_run import read_results
 
     path = tmp_path / "results.json"
     body = {"schema": "pretrial.sweep"}

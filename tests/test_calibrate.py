@@ -18,10 +18,10 @@ import pytest
 from scipy.stats import binom
 
 import pretrial_envs
-from pretrial.benchlog import Segment
-from pretrial.calibrate_fit import Model, calibrate, make_windows
-from pretrial.calibrate_report import load_calibration
-from pretrial.cli import main
+from pretrial.calibration.benchlog import Segment
+from pretrial.calibration.fit import Model, calibrate, make_windows
+from pretrial.calibration.report import load_calibration
+from pretrial.cli.main import main
 from pretrial.errors import FileFormatError
 
 

@@ -6,7 +6,7 @@ import json
 
 import pytest
 
-from pretrial.cli import main
+from pretrial.cli.main import main
 
 
 def test_list_text_and_json(capsys):

@@ -17,8 +17,16 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pretrial.config import Config, RunConfig, TaskConfig, build_neat_ini, dump_toml, load_config, neat_key_sections
 from pretrial.errors import InputError, PretrialError
+from pretrial.evolution.config import (
+    Config,
+    RunConfig,
+    TaskConfig,
+    build_neat_ini,
+    dump_toml,
+    load_config,
+    neat_key_sections,
+)
 
 GOOD = """
 [task]

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from pretrial.cli import main
+from pretrial.cli.main import main
 
 PLAN = """
 [scenario]

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 import pretrial_envs
-from pretrial.cli import main
+from pretrial.cli.main import main
 from pretrial_envs import ParamSpec, ParamTable, Physics
 from pretrial_envs import registry as env_registry
 

@@ -23,13 +23,13 @@ import numpy as np
 import pytest
 
 import pretrial_envs
-from pretrial import checkpoint
-from pretrial.cli import main
-from pretrial.config import load_config
-from pretrial.evolution import Evolution, _scenarios, make_task
-from pretrial.execution import Executor
-from pretrial.policy import load_policy, policy_from_genome
-from pretrial.rollout import draw_scenarios, run_episodes
+from pretrial.cli.main import main
+from pretrial.controller.policy import load_policy, policy_from_genome
+from pretrial.evolution import checkpoint
+from pretrial.evolution.config import load_config
+from pretrial.evolution.loop import Evolution, _scenarios, make_task
+from pretrial.sim.execution import Executor
+from pretrial.sim.rollout import draw_scenarios, run_episodes
 from pretrial_envs import ParamSpec, ParamTable, Physics
 from pretrial_envs import registry as env_registry
 

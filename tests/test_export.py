@@ -31,16 +31,16 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_network import library_outputs, make_config, random_genome
 
-from pretrial.cli import main
+from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
-from pretrial.export import export_policy, step_cost
-from pretrial.export_code import build_program
-from pretrial.export_golden import FAULT_VALUES, golden_actions, golden_steps, read_golden, write_golden
-from pretrial.export_python import PythonSyntax
-from pretrial.export_python import render as render_python
-from pretrial.generic import make_plant
-from pretrial.network import ACTIVATIONS, AGGREGATIONS
-from pretrial.policy import IOMap, policy_from_genome, save_policy
+from pretrial.controller.network import ACTIVATIONS, AGGREGATIONS
+from pretrial.controller.policy import IOMap, policy_from_genome, save_policy
+from pretrial.export.exporter import export_policy, step_cost
+from pretrial.export.golden import FAULT_VALUES, golden_actions, golden_steps, read_golden, write_golden
+from pretrial.export.program import build_program
+from pretrial.export.python_code import PythonSyntax
+from pretrial.export.python_code import render as render_python
+from pretrial.sim.plant import make_plant
 
 CC = shutil.which("cc") or shutil.which("gcc")
 needs_cc = pytest.mark.skipif(CC is None, reason="no C compiler (cc or gcc) on PATH: the C export cannot be built")

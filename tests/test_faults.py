@@ -28,13 +28,16 @@ from pathlib import Path
 
 import pytest
 
-from pretrial import checkpoint, execution, files, sweep_run
-from pretrial.cli import main
-from pretrial.config import load_config
+from pretrial import files
+from pretrial.analysis import sweep as sweep_run
+from pretrial.cli.main import main
 from pretrial.errors import PretrialError
-from pretrial.evolution import Evolution
-from pretrial.execution import DaskExecutor, Executor, ProcessExecutor
-from pretrial.signals import Terminated, stop_on_signals
+from pretrial.evolution import checkpoint
+from pretrial.evolution.config import load_config
+from pretrial.evolution.loop import Evolution
+from pretrial.sim import execution
+from pretrial.sim.execution import DaskExecutor, Executor, ProcessExecutor
+from pretrial.sim.signals import Terminated, stop_on_signals
 
 ROOT = Path(__file__).resolve().parents[1]
 CARTPOLE_PLAN = ROOT / "configs" / "sweeps" / "cartpole.toml"
@@ -410,8 +413,7 @@ def test_ctrl_c_stops_a_sweep_and_leaves_no_directory(executor, tmp_path):
 
 @pytest.mark.parametrize("stop", [KeyboardInterrupt, PretrialError("disk full (simulated)")])
 def test_a_sweep_stopped_while_writing_leaves_no_directory(stop, tmp_path, monkeypatch):
-    from pretrial import report
-
+    from pretrial.report import sweep_report as report
     def write_report(*args, **kwargs):
         raise stop
 
@@ -600,7 +602,7 @@ def test_kill_9_leaves_no_worker_behind(executor, tmp_path):
 
 _CHILD = """
 import os, sys, time
-from pretrial.execution import exit_with_parent
+from pretrial.sim.execution import exit_with_parent
 exit_with_parent(os.getppid(), use_prctl=sys.argv[1] == "prctl")
 print("watching", flush=True)
 time.sleep(300)

@@ -10,12 +10,12 @@ import gymnasium as gym
 import numpy as np
 import pytest
 
-from pretrial.config import load_config
+from pretrial.controller.network import load_policy
 from pretrial.errors import InputError
-from pretrial.evolution import Evolution
-from pretrial.execution import Executor
-from pretrial.generic import GymnasiumPlant, make_plant
-from pretrial.network import load_policy
+from pretrial.evolution.config import load_config
+from pretrial.evolution.loop import Evolution
+from pretrial.sim.execution import Executor
+from pretrial.sim.plant import GymnasiumPlant, make_plant
 
 
 class DriftEnv(gym.Env):

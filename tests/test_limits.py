@@ -16,9 +16,9 @@ import pytest
 from test_bad_input import refused
 
 from pretrial import limits
-from pretrial.cli import main
-from pretrial.config import load_config
+from pretrial.cli.main import main
 from pretrial.errors import InputError
+from pretrial.evolution.config import load_config
 from pretrial_envs import make_physics
 
 F64 = np.finfo(np.float64)
@@ -107,7 +107,7 @@ def test_the_same_dt_words_from_every_entry_point(capsys, tmp_path, monkeypatch)
 
 
 def test_horizon_has_the_same_bounds_in_config_and_plan(tmp_path):
-    from pretrial.sweep_run import controlled
+    from pretrial.analysis.sweep import controlled
 
     config = tmp_path / "c.toml"
     config.write_text(BASE.replace("horizon = 0.2", "horizon = 1e308"))
@@ -170,7 +170,7 @@ def test_evolve_caps_integration_steps_before_writing(capsys, tmp_path):
 
 
 def test_sweep_caps_integration_steps(tmp_path):
-    from pretrial.sweep_run import controlled
+    from pretrial.analysis.sweep import controlled
 
     plan = tmp_path / "p.toml"
     plan.write_text('[scenario]\nenv = "pretrial/CartPole-v0"\n[[vary]]\nname = "control_period_s"\n'
@@ -181,7 +181,7 @@ def test_sweep_caps_integration_steps(tmp_path):
 
 
 def test_control_period_rebuild_past_the_episode_cap_names_the_setting():
-    from pretrial.perturb import with_control_period
+    from pretrial.sim.perturb import with_control_period
 
     physics = make_physics("pretrial/CartPole-v0", time_limit=1000.0)  # 50000 periods x 2 substeps
     with pytest.raises(ValueError, match=r"^control_period_s: 1e-05: time_limit 1000 s / dt 1e-05 s"):

@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from pretrial.analysis.linear import closed_loop_equilibrium, linear_params, loop_report, plant_model, sampled_loop, zoh
+from pretrial.analysis.loop_margins import analyze_loop
+from pretrial.analysis.lqr import design_lqr
+from pretrial.controller.policy import Policy, content_hash
 from pretrial.errors import InputError
-from pretrial.linear import closed_loop_equilibrium, linear_params, loop_report, plant_model, sampled_loop, zoh
-from pretrial.lqr import design_lqr
-from pretrial.margins import analyze_loop
-from pretrial.policy import Policy, content_hash
 from pretrial_envs import make_physics
 from pretrial_envs.core import jacobians
 

@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from scipy import linalg
 
+from pretrial.analysis.linear import loop_report
+from pretrial.analysis.loop_margins import analyze_loop
+from pretrial.analysis.lqr import design_lqr
 from pretrial.errors import InputError
-from pretrial.linear import loop_report
-from pretrial.lqr import design_lqr
-from pretrial.margins import analyze_loop
-from pretrial.rollout import Scenarios, draw_scenarios, run_episodes
+from pretrial.sim.rollout import Scenarios, draw_scenarios, run_episodes
 from pretrial_envs import make_physics
 
 ENVS = [

@@ -16,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, assume, example, given, settings
 from hypothesis import strategies as st
 
-from pretrial.margins import analyze_loop, disk_ranges, is_stable
+from pretrial.analysis.loop_margins import analyze_loop, disk_ranges, is_stable
 
 RTOL = 1e-6
 

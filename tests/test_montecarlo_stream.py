@@ -19,14 +19,17 @@ import numpy as np
 import pytest
 from scipy.stats import qmc
 
-from pretrial import report, samples, streams, sweep
-from pretrial.cli import main
-from pretrial.execution import Executor, ProcessExecutor
-from pretrial.report import write_samples_csv
-from pretrial.samples import exact_quantiles, order_statistics, sample_histograms, unit_blocks
-from pretrial.sweep import Campaign, montecarlo
-from pretrial.sweep_run import controlled
-from pretrial.training import unit_to_value
+from pretrial.analysis import campaign as sweep
+from pretrial.analysis import samples
+from pretrial.analysis.campaign import Campaign, montecarlo
+from pretrial.analysis.samples import exact_quantiles, order_statistics, sample_histograms, unit_blocks
+from pretrial.analysis.sweep import controlled
+from pretrial.cli.main import main
+from pretrial.evolution.plan_training import unit_to_value
+from pretrial.report import sweep_report as report
+from pretrial.report.sweep_report import write_samples_csv
+from pretrial.sim import streams
+from pretrial.sim.execution import Executor, ProcessExecutor
 
 # every distribution (uniform, loguniform, normal), a noise stream per episode; the LQR cart-pole, short
 # episodes; no control period varied, so a block of whole chunks holds the very chunks of one big batch

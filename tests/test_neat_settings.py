@@ -15,8 +15,8 @@ import pytest
 from neat.activations import ActivationFunctionSet
 from neat.aggregations import AggregationFunctionSet
 
-from pretrial.config import _neat_text, load_config, neat_generation_zero
 from pretrial.errors import InputError
+from pretrial.evolution.config import _neat_text, load_config, neat_generation_zero
 
 BASE = '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n[neat]\n'
 

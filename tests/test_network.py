@@ -26,9 +26,8 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from neat.innovation import InnovationTracker
 
-from pretrial import network
-from pretrial.errors import InputError
-from pretrial.network import (
+from pretrial.controller import network
+from pretrial.controller.network import (
     ACTIVATIONS,
     AGGREGATIONS,
     PopulationNetwork,
@@ -38,6 +37,7 @@ from pretrial.network import (
     spec_from_genome,
     stack_genomes,
 )
+from pretrial.errors import InputError
 
 TOL = {"rtol": 1e-12, "atol": 1e-12}
 

@@ -1,4 +1,4 @@
-"""The perturbed control loop (:class:`pretrial.perturb.Loop`) against control-engineering references.
+"""The perturbed control loop (:class:`pretrial.sim.perturb.Loop`) against control-engineering references.
 
 Each actuator and sensor element is checked on its own against its textbook or common-practice
 definition, then all of them together for the property sweeps rely on: a row of a batch behaves
@@ -15,8 +15,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal, stats
 
-from pretrial import streams
-from pretrial.perturb import PERTURBATIONS, Loop, spec_of, split_names
+from pretrial.sim import streams
+from pretrial.sim.perturb import PERTURBATIONS, Loop, spec_of, split_names
 from pretrial_envs import make_physics
 
 DT = 0.02  # pretrial/CartPole-v0's default control period

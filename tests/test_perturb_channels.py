@@ -17,12 +17,13 @@ import scipy.linalg
 import scipy.optimize
 from scipy import integrate, stats
 
-from pretrial import streams
-from pretrial.cli import main
-from pretrial.config import load_config
+from pretrial.analysis.lqr import design_lqr
+from pretrial.analysis.plan import load_plan
+from pretrial.cli.main import main
 from pretrial.errors import InputError
-from pretrial.lqr import design_lqr
-from pretrial.perturb import (
+from pretrial.evolution.config import load_config
+from pretrial.sim import streams
+from pretrial.sim.perturb import (
     PERTURBATIONS,
     Loop,
     apply_settings,
@@ -32,8 +33,7 @@ from pretrial.perturb import (
     split_delay,
     split_names,
 )
-from pretrial.plan import load_plan
-from pretrial.rollout import keyed_scenarios, run_episodes
+from pretrial.sim.rollout import keyed_scenarios, run_episodes
 from pretrial_envs import make_physics
 
 
@@ -514,7 +514,7 @@ def test_sweep_report_gives_channel_units_and_simulation_notes(tmp_path):
 def test_plain_gymnasium_env_refuses_within_period_values():
     import gymnasium as gym
 
-    from pretrial.generic import GymnasiumPlant
+    from pretrial.sim.plant import GymnasiumPlant
 
     if "testlab/Hold-v0" not in gym.registry:
         gym.register("testlab/Hold-v0", entry_point="gymnasium.envs.classic_control:PendulumEnv",

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from pretrial import plan as plan_mod
-from pretrial.cli import main
+from pretrial.analysis import plan as plan_mod
+from pretrial.cli.main import main
 from pretrial_envs import make_physics
 
 HEAD = """

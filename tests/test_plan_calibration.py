@@ -14,10 +14,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pretrial.calibrate_report import SCHEMA, VERSION, with_hash
-from pretrial.cli import main
+from pretrial.analysis.plan import load_plan
+from pretrial.calibration.report import SCHEMA, VERSION, with_hash
+from pretrial.cli.main import main
 from pretrial.errors import InputError
-from pretrial.plan import load_plan
 from pretrial_envs import make_physics
 
 
@@ -98,7 +98,7 @@ def test_a_calibration_of_another_plant_is_refused(tmp_path):
 
 
 def test_training_against_a_calibrated_plan_draws_whole_rows(tmp_path):
-    from pretrial.training import PlanDistribution
+    from pretrial.evolution.plan_training import PlanDistribution
 
     _calibration(tmp_path / "cal.json")
     plan_path = tmp_path / "plan.toml"

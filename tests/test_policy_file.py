@@ -18,8 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_network import library_outputs, make_config, random_genome
 
-from pretrial.errors import FileFormatError, InputError, PretrialError
-from pretrial.network import (
+from pretrial.controller.network import (
     IOMap,
     Policy,
     PopulationPolicy,
@@ -29,6 +28,7 @@ from pretrial.network import (
     save_policy,
     stack_policies,
 )
+from pretrial.errors import FileFormatError, InputError, PretrialError
 
 TOL = {"rtol": 1e-12, "atol": 1e-12}
 

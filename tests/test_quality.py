@@ -1,7 +1,7 @@
 """Loop quality: episodes that survive but misbehave fail, and the verdict reads every analysis.
 
 Outside references, named beside each check:
-- the sampled loop's gain margins come from ``pretrial.linear.loop_report``, which
+- the sampled loop's gain margins come from ``pretrial.analysis.linear.loop_report``, which
   tests/test_linear.py checks against python-control's ``stability_margins``;
 - a loop whose gain is past its linear upper margin, with a saturating actuator, settles
   into a limit cycle at the actuator limits (describing-function reasoning: common practice);
@@ -16,13 +16,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from pretrial.analysis.campaign import Campaign, linear_analysis, margins, requirements, verdict
+from pretrial.analysis.linear import loop_report
+from pretrial.analysis.plan import load_plan
+from pretrial.analysis.sweep import controlled
 from pretrial.errors import InputError
-from pretrial.linear import loop_report
-from pretrial.plan import load_plan
-from pretrial.quality import QUALITY_WORDS, QualityLimits
-from pretrial.rollout import keyed_scenarios, run_episodes
-from pretrial.sweep import Campaign, linear_analysis, margins, requirements, verdict
-from pretrial.sweep_run import controlled
+from pretrial.sim.quality import QUALITY_WORDS, QualityLimits
+from pretrial.sim.rollout import keyed_scenarios, run_episodes
 from pretrial_envs import make_physics
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -192,7 +192,7 @@ def test_quality_words_follow_the_envs_own():
 def test_envs_lists_the_regulated_quantities(capsys):
     import json
 
-    from pretrial.cli import main
+    from pretrial.cli.main import main
 
     assert main(["envs", "CartPole-v0", "--json"]) == 0
     doc = json.loads(capsys.readouterr().out)

@@ -61,7 +61,7 @@ def _flags(text: str) -> set[str]:
 
 def test_readme_cli_reference_matches_help():
     # the parser is the reference: every flag --help lists is in the README synopsis and back
-    from pretrial.cli import COMMANDS, build_parser
+    from pretrial.cli.main import COMMANDS, build_parser
 
     parser = build_parser()
     sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")

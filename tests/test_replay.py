@@ -20,9 +20,9 @@ import numpy as np
 import pytest
 from test_sweep import balancing_policy_file
 
-from pretrial import animation
-from pretrial.cli import main
+from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
+from pretrial.playback import animation
 from pretrial_envs import make_physics
 from pretrial_envs.core import holds_from
 

@@ -22,7 +22,7 @@ from PIL import Image
 
 from pretrial.console import CAUTIONS
 from pretrial.errors import FileFormatError, InputError
-from pretrial.report import Table, to_html, to_markdown, write_report, write_samples_csv
+from pretrial.report.sweep_report import Table, to_html, to_markdown, write_report, write_samples_csv
 
 EVIL = "<b>evil</b>"  # a hostile parameter name
 EVIL_WORD = "<script>x()</script>"  # a hostile failure word
@@ -364,7 +364,7 @@ def test_samples_csv(tmp_path):
 def test_baseline_copy_is_not_mutated():
     r = make_results(baseline=True)
     before = copy.deepcopy(r)
-    from pretrial.report import build_document
+    from pretrial.report.sweep_report import build_document
 
     build_document(r)
     assert r == before

@@ -16,10 +16,11 @@ from PIL import Image
 from scipy.stats import binomtest
 from test_report import make_results, samples
 
-from pretrial import sweep_plots, traces
-from pretrial.perturb import apply_settings
-from pretrial.replay import lqr_policy, run_replay
-from pretrial.report import build_document, to_markdown, write_report
+from pretrial.playback import traces
+from pretrial.playback.replay import lqr_policy, run_replay
+from pretrial.report import sweep_plots
+from pretrial.report.sweep_report import build_document, to_markdown, write_report
+from pretrial.sim.perturb import apply_settings
 from pretrial_envs import make_physics
 
 

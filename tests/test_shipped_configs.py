@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pytest
 
-from pretrial.cli import main, plan_beside
-from pretrial.sweep_run import controlled
+from pretrial.analysis.sweep import controlled
+from pretrial.cli.main import main, plan_beside
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 RUN_CONFIGS = sorted(CONFIGS.glob("*.toml"))

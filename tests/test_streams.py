@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from pretrial import streams
-from pretrial.rollout import Scenarios, draw_scenarios, run_episodes
+from pretrial.sim import streams
+from pretrial.sim.rollout import Scenarios, draw_scenarios, run_episodes
 from pretrial_envs import make_physics
 
 _M64 = (1 << 64) - 1

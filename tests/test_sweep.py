@@ -14,16 +14,16 @@ import scipy.linalg
 from scipy.stats import binomtest
 from test_network import make_config
 
-from pretrial import sweep
-from pretrial.cli import main
+from pretrial.analysis import campaign as sweep
+from pretrial.analysis.linear import loop_report
+from pretrial.analysis.lqr import design_lqr
+from pretrial.analysis.plan import Z2, episodes_needed, load_plan
+from pretrial.analysis.sweep import read_results
+from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
+from pretrial.controller.policy import IOMap, policy_from_genome, save_policy
 from pretrial.errors import InputError
 from pretrial.files import sha256_hex
-from pretrial.linear import loop_report
-from pretrial.lqr import design_lqr
-from pretrial.plan import Z2, episodes_needed, load_plan
-from pretrial.policy import IOMap, policy_from_genome, save_policy
-from pretrial.sweep_run import read_results
 from pretrial_envs import make_physics
 from pretrial_envs.core import jacobians
 
@@ -188,7 +188,7 @@ def test_wilson_vectorized_and_episodes_needed():
 # --------------------------------------------------------------------------- #
 def test_gain_margin_edge_agrees_with_linear_gain_margin(lqr_sweep):
     res, _ = lqr_sweep
-    # the continuous loop's lower gain margin from pretrial.linear.loop_report (checked against
+    # the continuous loop's lower gain margin from pretrial.analysis.linear.loop_report (checked against
     # python-control in tests/test_linear.py): below it the linearized loop is unstable.
     physics = make_physics("pretrial/CartPole-v0", start_spread={"x": 0.05, "theta": 0.05})
     lqr = design_lqr(physics)

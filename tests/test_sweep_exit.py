@@ -17,9 +17,9 @@ import pytest
 from scipy.stats import binomtest
 from test_network import make_config
 
-from pretrial import sweep_run
-from pretrial.cli import main
-from pretrial.policy import IOMap, policy_from_genome, save_policy
+from pretrial.analysis import sweep as sweep_run
+from pretrial.cli.main import main
+from pretrial.controller.policy import IOMap, policy_from_genome, save_policy
 from pretrial_envs import make_physics
 
 REPO = Path(__file__).resolve().parents[1]
@@ -155,8 +155,7 @@ def positions_policy_file(d: Path) -> Path:
 @pytest.fixture
 def no_episodes(monkeypatch):
     """Fail the test if any analysis starts (the refusal must come before the first episode)."""
-    from pretrial import sweep
-
+    from pretrial.analysis import campaign as sweep
     def refuse(*_args, **_kwargs):
         raise AssertionError("an analysis ran before the inputs were refused")
 

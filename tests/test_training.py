@@ -12,8 +12,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pretrial.plan import load_plan
-from pretrial.training import Objective, PlanDistribution, objective_fitness, parse_objective
+from pretrial.analysis.plan import load_plan
+from pretrial.evolution.plan_training import Objective, PlanDistribution, objective_fitness, parse_objective
 from pretrial_envs import make_physics
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -92,8 +92,8 @@ class _Scaled:
 
 
 def test_short_verdict_agrees_with_the_linear_loop():
-    from pretrial.sweep_run import controlled
-    from pretrial.training import short_verdict
+    from pretrial.analysis.sweep import controlled
+    from pretrial.evolution.plan_training import short_verdict
 
     ctl = controlled("lqr", str(ROOT / "configs" / "sweeps" / "cartpole.toml"))
     good = short_verdict(ctl.plan, ctl.physics, ctl.base_params, ctl.controller, _Serial(), 128, 99)
@@ -108,8 +108,8 @@ def test_short_verdict_agrees_with_the_linear_loop():
 
 
 def test_linear_shortfall_zero_for_the_lqr_and_whole_when_unstable():
-    from pretrial.sweep_run import controlled
-    from pretrial.training import linear_shortfall
+    from pretrial.analysis.sweep import controlled
+    from pretrial.evolution.plan_training import linear_shortfall
 
     ctl = controlled("lqr", str(ROOT / "configs" / "sweeps" / "cartpole.toml"))
     # the LQR's margins exceed the plan's 6 dB / 45 deg on both loops (the sweep shows 12.4 dB / 54.8 deg)
@@ -119,10 +119,10 @@ def test_linear_shortfall_zero_for_the_lqr_and_whole_when_unstable():
 
 
 def test_training_streams_never_meet_the_plans_own(tmp_path):
-    from pretrial import streams
-    from pretrial.config import load_config
-    from pretrial.evolution import _SCENARIO_STREAM, _scenarios, make_task
-    from pretrial.sweep import _SEED_KEYS, derive_seed
+    from pretrial.analysis.campaign import _SEED_KEYS, derive_seed
+    from pretrial.evolution.config import load_config
+    from pretrial.evolution.loop import _SCENARIO_STREAM, _scenarios, make_task
+    from pretrial.sim import streams
 
     plan_path = ROOT / "configs" / "sweeps" / "cartpole.toml"
     cfg_path = tmp_path / "c.toml"
@@ -141,7 +141,7 @@ def test_training_streams_never_meet_the_plans_own(tmp_path):
 def test_evolve_against_a_plan_records_the_predicted_verdict(tmp_path, capsys):
     import json
 
-    from pretrial.cli import main
+    from pretrial.cli.main import main
 
     cfg = tmp_path / "c.toml"
     cfg.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 4\nobjective = "cvar:0.5"\n'
@@ -176,8 +176,8 @@ def test_evolve_against_a_plan_records_the_predicted_verdict(tmp_path, capsys):
     ('plan = "PLAN"\n[task.randomize]\npole_mass = [0.08, 0.12]', "task.randomize"),
 ])
 def test_training_config_errors_name_the_key(tmp_path, text, needle):
-    from pretrial.config import load_config
     from pretrial.errors import InputError
+    from pretrial.evolution.config import load_config
 
     plan = ROOT / "configs" / "sweeps" / "cartpole.toml"
     path = tmp_path / "c.toml"

@@ -12,10 +12,10 @@ import textwrap
 
 import pytest
 
-from pretrial.cli import main
+from pretrial.cli.main import main
 from pretrial.errors import InputError
-from pretrial.execution import Executor, ProcessExecutor
-from pretrial.generic import check_workers_can_build
+from pretrial.sim.execution import Executor, ProcessExecutor
+from pretrial.sim.plant import check_workers_can_build
 
 PLANT = textwrap.dedent('''
     """A cart on a frictionless rail pushed by a force: x'' = u / m (double integrator)."""

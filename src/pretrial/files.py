@@ -11,7 +11,7 @@ import shutil
 from pathlib import Path
 from typing import Any
 
-from .errors import PretrialError
+from pretrial.errors import PretrialError
 
 #: Free space an output directory must have before a command starts writing into it. Measured: a checkpoint
 #: holds about 0.5 kB per genome (10 kB for 20 small genomes), so a 150-genome run checkpointed 20 times stays
