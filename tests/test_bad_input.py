@@ -404,7 +404,7 @@ def test_fuzz_plan_tomlish_text(tmp_path, tables):
 
 
 def _results_only_input_errors(path: Path) -> None:
-    from pretrial.analysis.sweep import read_results
+    from pretrial.analysis.results import read_results
 
     try:
         read_results(path)
@@ -804,7 +804,7 @@ _DROP = object()
     ({"required_success_rate": False}, "'required_success_rate'"),
 ])
 def test_results_of_another_schema_are_refused(tmp_path, changes, needle):
-    from pretrial.analysis.sweep import read_results
+    from pretrial.analysis.results import read_results
 
     good = tmp_path / "good.json"
     good.write_text(json.dumps(_results_doc()))
@@ -817,7 +817,7 @@ def test_results_of_another_schema_are_refused(tmp_path, changes, needle):
 
 
 def test_results_holding_only_a_schema_are_refused(tmp_path):
-    from pretrial.analysis.sweep import read_results
+    from pretrial.analysis.results import read_results
     from pretrial.files import canonical_json, sha256_hex
 
     path = tmp_path / "results.json"

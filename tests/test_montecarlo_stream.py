@@ -26,8 +26,8 @@ from pretrial.analysis.samples import exact_quantiles, order_statistics, sample_
 from pretrial.analysis.sweep import controlled
 from pretrial.cli.main import main
 from pretrial.evolution.plan_training import unit_to_value
-from pretrial.report import sweep_report as report
-from pretrial.report.sweep_report import write_samples_csv
+from pretrial.report import samples_csv as report
+from pretrial.report.samples_csv import write_samples_csv
 from pretrial.sim import streams
 from pretrial.sim.execution import Executor, ProcessExecutor
 

@@ -22,7 +22,9 @@ from PIL import Image
 
 from pretrial.console import CAUTIONS
 from pretrial.errors import FileFormatError, InputError
-from pretrial.report.sweep_report import Table, to_html, to_markdown, write_report, write_samples_csv
+from pretrial.report.document import Table, to_html, to_markdown
+from pretrial.report.samples_csv import write_samples_csv
+from pretrial.report.sweep_report import write_report
 
 EVIL = "<b>evil</b>"  # a hostile parameter name
 EVIL_WORD = "<script>x()</script>"  # a hostile failure word

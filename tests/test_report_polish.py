@@ -19,7 +19,8 @@ from test_report import make_results, samples
 from pretrial.playback import traces
 from pretrial.playback.replay import lqr_policy, run_replay
 from pretrial.report import sweep_plots
-from pretrial.report.sweep_report import build_document, to_markdown, write_report
+from pretrial.report.document import to_markdown
+from pretrial.report.sweep_report import build_document, write_report
 from pretrial.sim.perturb import apply_settings
 from pretrial_envs import make_physics
 

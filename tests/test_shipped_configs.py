@@ -15,7 +15,8 @@ from pathlib import Path
 import pytest
 
 from pretrial.analysis.sweep import controlled
-from pretrial.cli.main import main, plan_beside
+from pretrial.cli.main import main
+from pretrial.evolution.config import plan_beside
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 RUN_CONFIGS = sorted(CONFIGS.glob("*.toml"))

@@ -18,7 +18,7 @@ from pretrial.analysis import campaign as sweep
 from pretrial.analysis.linear import loop_report
 from pretrial.analysis.lqr import design_lqr
 from pretrial.analysis.plan import Z2, episodes_needed, load_plan
-from pretrial.analysis.sweep import read_results
+from pretrial.analysis.results import read_results
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
 from pretrial.controller.policy import IOMap, policy_from_genome, save_policy

@@ -443,7 +443,7 @@ def montecarlo(c: Campaign, seed: int, csv_path: Path | None = None, scratch: Pa
     histograms : SampleHistograms
         Score and varied values per outcome, for the report's plot.
     """
-    from pretrial.report.sweep_report import SamplesCSV
+    from pretrial.report.samples_csv import SamplesCSV
 
     n = c.plan.budgets["montecarlo_samples"]
     vary = c.plan.vary

@@ -9,7 +9,6 @@ place, so a failed or interrupted run leaves nothing behind.
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 import time
 from dataclasses import replace
@@ -37,7 +36,7 @@ from pretrial.calibration.fit import (
 from pretrial.calibration.report import SCHEMA, VERSION, with_hash, write_directory
 from pretrial.console import emit_json, jsonable, table
 from pretrial.errors import InputError
-from pretrial.files import sha256_hex
+from pretrial.files import check_new_dir, move_into_place, sha256_hex, staged
 from pretrial.sim.perturb import PERTURBATIONS
 
 #: default held-out share of segments for validation (every fifth segment; a tail of each when fewer than 5)
@@ -48,10 +47,10 @@ REPLICATES = 100
 
 def configure_cli(p: argparse.ArgumentParser) -> None:
     """Arguments of ``pretrial calibrate``."""
-    from pretrial.cli.main import _whole
+    from pretrial.cli.args import whole as whole_at_least
 
     def whole(text: str) -> int:
-        return _whole(text, 0)
+        return whole_at_least(text, 0)
 
     p.add_argument("logs", nargs="+", metavar="LOG.csv", help="bench logs: t, the env's states, its actions")
     p.add_argument("--env", required=True, metavar="ID", help="environment id (full or short)")
@@ -77,8 +76,8 @@ def configure_cli(p: argparse.ArgumentParser) -> None:
 
 def run_cli(args: argparse.Namespace) -> int:
     """Run ``pretrial calibrate``; returns the exit status."""
-    from pretrial.analysis.sweep import _check_out, staged
-    from pretrial.cli.main import parse_assignments, resolve_env_id
+    from pretrial.cli.args import parse_assignments
+    from pretrial.sim.plant import resolve_env_id
 
     env_id = resolve_env_id(args.env)
     options = parse_assignments(args.option, "--option")
@@ -95,7 +94,7 @@ def run_cli(args: argparse.Namespace) -> int:
     if refusal:
         raise InputError(refusal)
     out = Path(args.out) if args.out else _default_out(env_id)
-    _check_out(out)
+    check_new_dir(out)
     steps = max(1, int(round(args.window / physics.dt)))
     try:
         win = make_windows(fit_segs, steps)
@@ -111,9 +110,7 @@ def run_cli(args: argparse.Namespace) -> int:
     with staged(out) as stage:
         write_directory(stage, summary, set(physics.param_table.names),
                         {n: (model.spec(n).low, model.spec(n).high) for n in names}, plots)
-        if out.exists():
-            out.rmdir()  # empty (checked before the work started)
-        os.replace(stage, out)
+        move_into_place(stage, out)
     if args.json:
         emit_json(summary)
     else:

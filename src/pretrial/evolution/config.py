@@ -615,3 +615,15 @@ def dump_toml(data: dict[str, Any]) -> str:
 def _bare(key: str) -> str:
     # bare keys are ASCII letters, digits, '_' and '-' only
     return key if key.isascii() and key.replace("_", "").replace("-", "").isalnum() else _toml_value(key)
+
+
+def plan_beside(config_path: str | Path, name: str) -> Path | None:
+    """The sweep plan for a run config: ``sweeps/NAME.toml`` beside it, else the one for
+    the longest hyphen-prefix of NAME (``drone-pair-wide`` falls back to ``drone-pair``)."""
+    plans = Path(config_path).resolve().parent / "sweeps"
+    parts = name.split("-")
+    for n in range(len(parts), 0, -1):
+        plan = plans / f"{'-'.join(parts[:n])}.toml"
+        if plan.is_file():
+            return plan
+    return None

@@ -50,6 +50,7 @@ from pretrial.evolution.plan_training import (
     short_verdict,
 )
 from pretrial.files import atomic_write_text, check_writable_dir, write_json
+from pretrial.provenance import versions
 from pretrial.sim.execution import Executor
 from pretrial.sim.perturb import describe_values, diverged_warning, nominal_value
 from pretrial.sim.plant import check_workers_can_build
@@ -321,7 +322,7 @@ class Evolution:
         self.neat_config = _neat_config(self.ini_path)
         self.manifest = {
             "pretrial": __version__,
-            "versions": _versions(),
+            "versions": versions(),
             "seed": self.cfg.run.seed,
             "config": self.cfg.path,
             "config_sha256": self.cfg.content_hash(),
@@ -777,21 +778,5 @@ def _clock(seconds: float) -> str:
     h, rem = divmod(seconds, 3600)
     m, s = divmod(rem, 60)
     return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
-
-
-def _versions() -> dict[str, str]:
-    import gymnasium
-    import matplotlib
-    import neat
-    import scipy
-
-    return {
-        "python": sys.version.split()[0],
-        "numpy": np.__version__,
-        "scipy": scipy.__version__,
-        "gymnasium": gymnasium.__version__,
-        "neat-python": getattr(neat, "__version__", "2.x"),
-        "matplotlib": matplotlib.__version__,
-    }
 
 

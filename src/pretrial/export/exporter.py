@@ -27,22 +27,20 @@ operation count and memory as data.
 
 from __future__ import annotations
 
-import argparse
 import io as _io
 import json
 import keyword
 import os
 import re
-import sys
 import textwrap
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
 from pretrial import __version__
-from pretrial.console import CAUTIONS, emit_json, print_cautions, table
+from pretrial.console import table
 from pretrial.controller.policy import Policy
 from pretrial.errors import InputError
 from pretrial.export.program import FAULTS, Program, Syntax, build_program
@@ -285,7 +283,7 @@ def _count(n: int, word: str, plural: str = "") -> str:
     return f"{n} {word}" if n == 1 else f"{n} {plural or word + 's'}"
 
 
-def _num(x: float) -> str:
+def number_text(x: float) -> str:
     return f"{x:.6g}"
 
 
@@ -329,8 +327,8 @@ def _fault_lines(prog: Program, facts: EnvFacts, target: str, prefix: str, safe_
         phys, unit = facts.physical[k], facts.action_units[k]
         shown = "unknown"
         if phys is not None and facts.linear[k]:
-            shown = _num(phys[1] + value * (phys[2] - phys[0]) / 2) + ("" if unit in ("-", "?") else f" {unit}")
-        rows.append([str(k), facts.action_names[k], _num(value), shown])
+            shown = number_text(phys[1] + value * (phys[2] - phys[0]) / 2) + ("" if unit in ("-", "?") else f" {unit}")
+        rows.append([str(k), facts.action_names[k], number_text(value), shown])
     lines += _table_lines(["#", "name", "action", "physical"], rows)
     lines.append("CAUTION: the safe action is an open-loop fallback for a bad step, not a recovery: it holds no "
                  "position or attitude, so on persistent faults the plant drifts (a drone can tip and fall, a "
@@ -358,7 +356,7 @@ def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, pr
     if facts.params:
         lines.append("  env parameters (* = the value it was trained with, else nominal):")
         lines += _table_lines(["name", "value", "unit", ""],
-                              [[n, _num(v), u, "*" if trained else ""] for n, v, u, trained in facts.params])
+                              [[n, number_text(v), u, "*" if trained else ""] for n, v, u, trained in facts.params])
     else:
         lines.append(f"  env params: {json.dumps(policy.env_params, sort_keys=True)}")
     if facts.note:
@@ -375,8 +373,8 @@ def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, pr
                      f"{io.num_inputs} observations -> {io.num_outputs} actions, each block with its own state.")
     lines += ["", f"Observation obs[{sizes[0]} = {io.obs_dim}], in this order; network input = (obs - offset) * scale:"]
     lines += _table_lines(["#", "name", "unit", "offset", "scale"],
-                          [[str(i), facts.obs_names[i], facts.obs_units[i], _num(io.obs_offset[i]),
-                            _num(io.obs_scale[i])] for i in range(io.obs_dim)])
+                          [[str(i), facts.obs_names[i], facts.obs_units[i], number_text(io.obs_offset[i]),
+                            number_text(io.obs_scale[i])] for i in range(io.obs_dim)])
     lines += ["", f"Action action[{sizes[1]} = {io.action_dim}], in this order, each in [-1, 1]; "
               "action = clip(output * scale + offset, -1, 1):"]
     rows = []
@@ -386,9 +384,10 @@ def header_facts(policy: Policy, prog: Program, facts: EnvFacts, target: str, pr
         if phys is None:
             shown = "unknown"
         else:
-            shown = " / ".join(_num(v) for v in phys) + ("" if unit in ("-", "?") else f" {unit}") \
+            shown = " / ".join(number_text(v) for v in phys) + ("" if unit in ("-", "?") else f" {unit}") \
                 + (" (linear)" if facts.linear[k] else " (not linear)")
-        rows.append([str(k), facts.action_names[k], unit, _num(io.action_scale[k]), _num(io.action_offset[k]), shown])
+        rows.append([str(k), facts.action_names[k], unit, number_text(io.action_scale[k]),
+                     number_text(io.action_offset[k]), shown])
     lines += _table_lines(["#", "name", "unit", "scale", "offset", "physical at -1 / 0 / +1"], rows)
     lines += _fault_lines(prog, facts, target, prefix, safe_source or facts.safe_source)
     lines += [
@@ -434,7 +433,8 @@ def _syntax(to: str, precision: str, prefix: str) -> Syntax:
     return PythonSyntax()
 
 
-def _checked(to: str, precision: str, prefix: str) -> None:
+def check_export_options(to: str, precision: str, prefix: str) -> None:
+    """Refuse a target, precision or prefix the export cannot write (InputError naming the flag)."""
     _check_choice(to, TARGETS, "--to")
     _check_choice(precision, PRECISIONS, "--precision")
     check_prefix(prefix, "--prefix")
@@ -445,7 +445,7 @@ def _checked(to: str, precision: str, prefix: str) -> None:
 
 def step_cost(policy: Policy, to: str = "c", precision: str = "double") -> StepCost:
     """Operation count and memory of one exported step of ``policy`` (language-independent but for sizes)."""
-    _checked(to, precision, DEFAULT_PREFIX)
+    check_export_options(to, precision, DEFAULT_PREFIX)
     prog = build_program(policy, _syntax(to, precision, DEFAULT_PREFIX))
     return StepCost(prog.ops.as_dict(), dict(prog.memory_bytes))
 
@@ -485,7 +485,7 @@ def export_policy(policy: Policy, to: str, out_dir: str | os.PathLike[str], prec
         Bad ``to``/``precision``/``prefix``/``out_dir``/``safe_action``, a
         constant out of the float range, or an env that does not fit the policy.
     """
-    return _export(policy, to, out_dir, precision, prefix, sequences, steps, seed, safe_action)[0]
+    return write_export(policy, to, out_dir, precision, prefix, sequences, steps, seed, safe_action).files
 
 
 def _safe_action(policy: Policy, facts: EnvFacts, given: Any, flag: str) -> tuple[tuple[float, ...], str]:
@@ -498,10 +498,22 @@ def _safe_action(policy: Policy, facts: EnvFacts, given: Any, flag: str) -> tupl
                                            "check them, or export again with --safe-action.")
 
 
-def _export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision: str, prefix: str, sequences: int,
-            steps: int, seed: int, safe_action: Any = None, flag: str = "out_dir",
-            safe_flag: str = "safe_action") -> tuple[list[Path], Program, str]:
-    _checked(to, precision, prefix)
+class Exported(NamedTuple):
+    """What :func:`write_export` wrote: the files, the program they hold, and where the safe action came from."""
+
+    files: list[Path]
+    program: Program
+    safe_source: str
+
+
+def write_export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision: str, prefix: str,
+                 sequences: int, steps: int, seed: int, safe_action: Any = None, flag: str = "out_dir",
+                 safe_flag: str = "safe_action") -> Exported:
+    """:func:`export_policy` with every setting explicit and what was written (the CLI's entry).
+
+    ``flag``/``safe_flag`` name the output directory and safe action in error messages.
+    """
+    check_export_options(to, precision, prefix)
     if min(sequences, steps) < 1:
         raise InputError(f"golden file: sequences {sequences} and steps {steps} must be >= 1")
     if safe_action is not None:
@@ -539,8 +551,7 @@ def _export(policy: Policy, to: str, out_dir: str | os.PathLike[str], precision:
              f"{sequences} sequences x {steps} steps, then 3 fault sequences; numpy default_rng seed {seed}"
              + ("; observations rounded to float (the export's precision)." if single else ".")]
     files[f"{prefix}_golden.txt"] = golden_text(obs, actions, codes, about)
-    written = _write_export(out, files, flag)
-    return written, prog, source
+    return Exported(_write_export(out, files, flag), prog, source)
 
 
 def check_command(to: str, prefix: str, out_dir: Path) -> str:
@@ -552,49 +563,3 @@ def check_command(to: str, prefix: str, out_dir: Path) -> str:
     return f"{where}python3 {prefix}.py {prefix}_golden.txt"
 
 
-def configure_cli(parser: argparse.ArgumentParser) -> None:
-    """Arguments of ``pretrial export``."""
-    parser.add_argument("policy", help="policy file (champion.json) or run directory")
-    parser.add_argument("--to", required=True, choices=TARGETS, help="target language: c (C99) or python")
-    parser.add_argument("--out", required=True, metavar="DIR",
-                        help="output directory (created if missing; files an earlier export wrote are replaced, "
-                        "others never)")
-    parser.add_argument("--precision", choices=PRECISIONS, default="double",
-                        help="C real type (default double; the Python export computes in double)")
-    parser.add_argument("--prefix", default=DEFAULT_PREFIX, metavar="NAME",
-                        help=f"C identifier naming files, macros, struct and functions (default {DEFAULT_PREFIX})")
-    parser.add_argument("--safe-action", metavar="V[,V...]",
-                        help="action on a fault (NaN/inf observation or network output): one value in [-1, 1] per "
-                        "action, in action order (default the env's: zero command, hover thrust for the drones); "
-                        "write --safe-action=-0.5,0 when the first value is negative")
-    parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
-
-
-def run_cli(args: argparse.Namespace) -> int:
-    """Run ``pretrial export``."""
-    from pretrial.controller.policy import open_policy
-
-    _checked(args.to, args.precision, args.prefix)
-    safe = None if args.safe_action is None else parse_safe_action(args.safe_action)
-    policy = open_policy(args.policy)
-    files, prog, source = _export(policy, args.to, args.out, args.precision, args.prefix, GOLDEN_SEQUENCES,
-                                  GOLDEN_STEPS, GOLDEN_SEED, safe, "--out", "--safe-action")
-    if source.startswith("zeros:"):
-        print(f"pretrial: warning: safe action {source}", file=sys.stderr)
-    if args.json:
-        emit_json({"files": [str(f) for f in files], "operations": prog.ops.as_dict(),
-                   "memory_bytes": dict(prog.memory_bytes), "content_sha256": policy.content_hash,
-                   "safe_action": list(prog.safe_action), "cautions": list(CAUTIONS)})
-        return 0
-    lang = f"C99 ({args.precision})" if args.to == "c" else "Python"
-    print(f"exported policy {policy.content_hash[:16]} ({policy.env_id}) as {lang} to {args.out}:")
-    for f in files:
-        print(f"  {f}")
-    print(f"per step: {describe_ops(prog)}")
-    print(f"memory: {describe_memory(prog, 8 if args.precision == 'double' else 4)}")
-    print(f"on a fault (NaN/inf observation or network output): code 1 or 2 and the safe action "
-          f"{', '.join(map(_num, prog.safe_action))}, {source}")
-    print("check on the target's toolchain:")
-    print(f"  {check_command(args.to, args.prefix, Path(args.out))}")
-    print_cautions()
-    return 0

@@ -13,146 +13,55 @@ scripts, no links. Every text that came from the results is escaped.
 
 from __future__ import annotations
 
-import base64
-import csv
-import html
-import io
 import math
-import queue
 import re
-import threading
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 from pretrial.analysis.loop_margins import GAIN_SCAN_LIMIT
 from pretrial.analysis.samples import SampleHistograms, sample_histograms
-from pretrial.console import CAUTIONS, fmt_number
-from pretrial.errors import FileFormatError, InputError, PretrialError
+from pretrial.console import CAUTIONS
+from pretrial.errors import FileFormatError
 from pretrial.files import atomic_write_bytes, atomic_write_text
 from pretrial.report import sweep_plots
+from pretrial.report.csv_format import csv_text
+from pretrial.report.document import (
+    DASH,
+    INF,
+    Block,
+    Code,
+    Heading,
+    Image,
+    Items,
+    Para,
+    Table,
+    Verdict,
+    cell,
+    evidence,
+    interval,
+    num,
+    passed,
+    rate,
+    ratio,
+    to_html,
+    to_markdown,
+    word,
+)
+from pretrial.report.samples_csv import check_samples, varied_names
 
-#: keys of the Monte Carlo samples that are not varied names, in their CSV order
-SAMPLE_COLUMNS = ("seed", "success", "failure", "score")
 MARGIN_COLUMNS = ("name", "unit", "nominal", "low", "high", "low_ratio", "high_ratio", "low_failure",
                   "high_failure", "low_limit_reached", "high_limit_reached")
-DASH = "–"
-INF = "∞"
 
 
 # --------------------------------------------------------------------------- #
 # document blocks
 # --------------------------------------------------------------------------- #
-@dataclass
-class Heading:
-    level: int
-    text: str
-
-
-@dataclass
-class Para:
-    text: str
-
-
-@dataclass
-class Items:
-    items: list[str]
-
-
-@dataclass
-class Table:
-    headers: list[str]
-    rows: list[list[str]]
-
-
-@dataclass
-class Code:
-    label: str
-    command: str
-
-
-@dataclass
-class Image:
-    file: str
-    caption: str
-
-
-@dataclass
-class Verdict:
-    passed: bool | None
-    headline: str
-    lines: list[str] = field(default_factory=list)
-
-
-Block = Heading | Para | Items | Table | Code | Image | Verdict
 
 
 # --------------------------------------------------------------------------- #
 # number and word formatting (None never shows as "None")
 # --------------------------------------------------------------------------- #
-def num(value: Any, unit: str | None = None, digits: int = 4, none: str = DASH) -> str:
-    """A number with its unit; ``None`` becomes ``none`` (default "–")."""
-    if value is None:
-        return none
-    text = fmt_number(value, digits)
-    return f"{text} {unit}" if unit else text
-
-
-def ratio(value: Any) -> str:
-    return DASH if value is None else f"{fmt_number(value, 3)}×"
-
-
-def rate(value: Any) -> str:
-    """A success rate in per cent."""
-    return DASH if value is None else f"{fmt_number(100.0 * float(value), 4)} %"
-
-
-def word(value: Any) -> str:
-    return "none" if value in (None, "") else str(value)
-
-
-def passed(value: Any) -> str:
-    return {True: "pass", False: "FAIL"}.get(value, DASH)
-
-
-def cell(value: Any) -> str:
-    """Generic table cell for a JSON value."""
-    if value is None:
-        return DASH
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, (int, float)):
-        return num(value)
-    if isinstance(value, (list, tuple)):
-        return ", ".join(cell(v) for v in value)
-    if isinstance(value, dict):
-        return "; ".join(f"{k} = {cell(v)}" for k, v in value.items())
-    return str(value)
-
-
-def interval(ci: Sequence[Any] | None) -> str:
-    if not ci or len(ci) != 2:
-        return DASH
-    return f"{rate(ci[0])} – {rate(ci[1])}"
-
-
-def evidence(successes: Any, n: Any, ci: Sequence[Any] | None = None) -> str:
-    """``"19 of 20: 95 % [76.39 % – 99.11 %]"``: a count, its rate and its Wilson 95 % interval.
-
-    ``ci`` gives the bounds when the results hold them; otherwise they are computed
-    (:func:`pretrial.analysis.campaign.wilson_interval`).
-    """
-    if successes is None or not n:
-        return DASH
-    if ci is None or len(ci) != 2 or None in ci:
-        from pretrial.analysis.campaign import wilson_interval
-
-        lo, hi = wilson_interval(int(successes), int(n))
-        ci = [float(lo), float(hi)]
-    return f"{cell(successes)} of {cell(n)}: {rate(successes / n)} [{interval(ci)}]"
 
 
 def _units(results: Mapping[str, Any]) -> dict[str, str]:
@@ -666,90 +575,6 @@ def build_document(results: Mapping[str, Any], images: Mapping[str, str] | None 
 # --------------------------------------------------------------------------- #
 # renderers
 # --------------------------------------------------------------------------- #
-_MD_SPECIAL = re.compile(r"([\\`*\[\]<>|#])")
-_LINE_BREAKS = re.compile("[\r\n\x0b\x0c\x1c-\x1e\x85\u2028\u2029]")  # whatever str.splitlines splits on
-
-
-def _md(text: str) -> str:
-    """Backslash-escape Markdown syntax so names like ``<b>`` show literally and cannot break a table."""
-    return _LINE_BREAKS.sub(" ", _MD_SPECIAL.sub(r"\\\1", str(text)))
-
-
-def to_markdown(blocks: Sequence[Block]) -> str:
-    """Render the blocks as Markdown (images referenced by their file name beside report.md)."""
-    parts = []
-    for b in blocks:
-        if isinstance(b, Heading):
-            parts.append(f"{'#' * b.level} {_md(b.text)}")
-        elif isinstance(b, Verdict):
-            parts.append("\n".join([f"> **VERDICT: {b.headline}**", *(f"> {_md(line)}" for line in b.lines)]))
-        elif isinstance(b, Para):
-            parts.append(_md(b.text))
-        elif isinstance(b, Items):
-            parts.append("\n".join(f"- {_md(i)}" for i in b.items))
-        elif isinstance(b, Table):
-            lines = ["| " + " | ".join(_md(h) for h in b.headers) + " |", "|" + "---|" * len(b.headers)]
-            lines += ["| " + " | ".join(_md(c) for c in row) + " |" for row in b.rows]
-            parts.append("\n".join(lines))
-        elif isinstance(b, Code):
-            fence = "`" * max(3, 1 + max((len(r) for r in re.findall(r"`+", b.command)), default=0))
-            parts.append(f"{_md(b.label)}:\n\n{fence}\n{b.command}\n{fence}")
-        elif isinstance(b, Image):
-            parts.append(f"![{_md(b.caption)}]({b.file})")
-    return "\n\n".join(parts) + "\n"
-
-
-_CSS = """
-body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;max-width:72em;margin:1.5em auto;padding:0 1em;
-color:#1a1a1a;line-height:1.45}
-h1{font-size:1.6em}h2{margin-top:1.8em;border-bottom:1px solid #ccc;padding-bottom:.2em}h3{margin-top:1.2em}
-.verdict{border:3px solid;border-radius:6px;padding:.8em 1.2em;margin:1em 0}
-.verdict .head{font-size:1.8em;font-weight:700;letter-spacing:.05em}
-.pass{border-color:#1b7f3b;background:#e9f7ee}.pass .head{color:#1b7f3b}
-.fail{border-color:#b3261e;background:#fdecea}.fail .head{color:#b3261e}
-.none{border-color:#777;background:#f2f2f2}
-table{border-collapse:collapse;margin:.6em 0;font-size:.92em}
-th,td{border:1px solid #bbb;padding:.25em .6em;text-align:left;vertical-align:top}th{background:#f0f0f0}
-td.fail{color:#b3261e;font-weight:700;background:none}
-pre{background:#f6f6f6;border:1px solid #ddd;padding:.5em .8em;overflow-x:auto;margin:.2em 0 .9em}
-.label{margin:.5em 0 .1em}
-figure{margin:1em 0}img{max-width:100%;height:auto;border:1px solid #eee}figcaption{font-size:.9em;color:#555}
-"""
-
-
-def to_html(blocks: Sequence[Block], images: Mapping[str, bytes] | None = None, title: str = "pretrial sweep report"
-            ) -> str:
-    """Render the blocks as one self-contained HTML page (``images``: file name -> PNG bytes to embed)."""
-    images = images or {}
-    esc = html.escape
-    parts = []
-    for b in blocks:
-        if isinstance(b, Heading):
-            parts.append(f"<h{b.level}>{esc(b.text)}</h{b.level}>")
-        elif isinstance(b, Verdict):
-            kind = {True: "pass", False: "fail"}.get(b.passed, "none")
-            lines = "".join(f"<p>{esc(line)}</p>" for line in b.lines)
-            parts.append(f'<div class="verdict {kind}"><div class="head">VERDICT: {esc(b.headline)}</div>'
-                         f"{lines}</div>")
-        elif isinstance(b, Para):
-            parts.append(f"<p>{esc(b.text)}</p>")
-        elif isinstance(b, Items):
-            parts.append("<ul>" + "".join(f"<li>{esc(i)}</li>" for i in b.items) + "</ul>")
-        elif isinstance(b, Table):
-            head = "".join(f"<th>{esc(h)}</th>" for h in b.headers)
-            body = "".join("<tr>" + "".join(
-                f'<td class="fail">{esc(c)}</td>' if c == "FAIL" else f"<td>{esc(c)}</td>" for c in row) + "</tr>"
-                for row in b.rows)
-            parts.append(f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
-        elif isinstance(b, Code):
-            parts.append(f'<p class="label">{esc(b.label)}:</p><pre><code>{esc(b.command)}</code></pre>')
-        elif isinstance(b, Image) and b.file in images:
-            data = base64.b64encode(images[b.file]).decode("ascii")
-            parts.append(f'<figure><img alt="{esc(b.caption)}" src="data:image/png;base64,{data}">'
-                         f"<figcaption>{esc(b.caption)}</figcaption></figure>")
-    body = "\n".join(parts)
-    return (f'<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n<title>{esc(title)}</title>\n'
-            f"<style>{_CSS}</style>\n</head>\n<body>\n{body}\n</body>\n</html>\n")
 
 
 # --------------------------------------------------------------------------- #
@@ -758,31 +583,6 @@ def to_html(blocks: Sequence[Block], images: Mapping[str, bytes] | None = None, 
 #: significant digits of the numbers in margins.csv: a bisection edge like 0.1 * 0.1 prints as 0.01,
 #: not 0.010000000000000002 (the exact values are in results.json and the replay commands)
 MARGIN_DIGITS = 12
-
-
-def _csv_value(v: Any, digits: int | None = None) -> str:
-    """One CSV cell: floats exactly (``repr``) or to ``digits`` significant digits; None empty."""
-    if hasattr(v, "item"):
-        v = v.item()
-    if v is None:
-        return ""
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            return "" if math.isnan(v) else ("inf" if v > 0 else "-inf")
-        return repr(v) if digits is None else f"{v:.{digits}g}"
-    return str(v)
-
-
-def _csv_text(headers: Sequence[str] | None, rows: Sequence[Sequence[Any]], digits: int | None = None) -> str:
-    """CSV lines: the headers (None: no header line), then the rows."""
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
-    if headers is not None:
-        writer.writerow(headers)
-    writer.writerows([_csv_value(v, digits) for v in row] for row in rows)
-    return buf.getvalue()
 
 
 def write_margins_csv(path: str | Path, results: Mapping[str, Any]) -> bool:
@@ -800,121 +600,8 @@ def write_margins_csv(path: str | Path, results: Mapping[str, Any]) -> bool:
         return False
     headers = (["controller"] if base else []) + list(MARGIN_COLUMNS)
     rows = [([label] if base else []) + [m.get(k) for k in MARGIN_COLUMNS] for label, entries in sets for m in entries]
-    atomic_write_text(path, _csv_text(headers, rows, MARGIN_DIGITS))
+    atomic_write_text(path, csv_text(headers, rows, MARGIN_DIGITS))
     return True
-
-
-def _sample_names(samples: Mapping[str, Any]) -> list[str]:
-    return [k for k in samples if k not in SAMPLE_COLUMNS]
-
-
-def check_samples(samples: Mapping[str, Any]) -> int:
-    """Number of Monte Carlo samples; InputError when a column is missing or the lengths differ."""
-    missing = [k for k in SAMPLE_COLUMNS if k not in samples]
-    if missing:
-        raise InputError(f"Monte Carlo samples: missing column(s) {', '.join(missing)}")
-    lengths = {k: len(np.atleast_1d(v)) for k, v in samples.items()}
-    if len(set(lengths.values())) > 1:
-        raise InputError("Monte Carlo samples: columns differ in length ("
-                         + ", ".join(f"{k} {n}" for k, n in lengths.items()) + ")")
-    return next(iter(lengths.values()), 0)
-
-
-def _sample_headers(names: Sequence[str], units: Mapping[str, str] | None) -> list[str]:
-    units = units or {}
-    return [f"{n} [{units[n]}]" if units.get(n) else n for n in names] + list(SAMPLE_COLUMNS)
-
-
-def _sample_rows(samples: Mapping[str, Any], names: Sequence[str]) -> list[tuple[Any, ...]]:
-    columns = [np.atleast_1d(np.asarray(samples[k])).tolist() for k in [*names, *SAMPLE_COLUMNS]]
-    return list(zip(*columns))
-
-
-def write_samples_csv(path: str | Path, samples: Mapping[str, Any], units: Mapping[str, str] | None = None) -> None:
-    """The Monte Carlo samples as CSV: one column per varied name, then seed, success, failure, score.
-
-    A varied column is headed ``name [unit]`` when ``units`` gives it a unit (plain ``name`` otherwise);
-    success is ``true``/``false``; floats are written exactly (``repr``). Written atomically;
-    :class:`SamplesCSV` writes the same bytes a block of rows at a time.
-    """
-    check_samples(samples)
-    names = _sample_names(samples)
-    atomic_write_text(path, _csv_text(_sample_headers(names, units), _sample_rows(samples, names)))
-
-
-class SamplesCSV:
-    """``montecarlo.csv`` written a block of samples at a time, as the blocks finish.
-
-    The bytes equal :func:`write_samples_csv` of all blocks joined. A background thread formats
-    and writes each block while the caller runs the next (formatting 10^7 rows takes about a
-    minute); at most one block waits for it. The file is written in place (not atomically): write
-    it into a directory that is renamed into place when complete.
-
-    Parameters
-    ----------
-    path : Path
-    names : sequence of str
-        The varied names, in column order.
-    units : mapping, optional
-        Unit of each varied name, for its header.
-    """
-
-    #: rows formatted at a time (bounds the text held in memory)
-    ROWS = 8192
-
-    def __init__(self, path: str | Path, names: Sequence[str], units: Mapping[str, str] | None = None):
-        self.path = Path(path)
-        self.columns = [*names, *SAMPLE_COLUMNS]
-        self._names = list(names)
-        try:
-            self._file = open(self.path, "w", encoding="utf-8", newline="")
-        except OSError as exc:
-            raise PretrialError(f"{self.path}: cannot write ({exc.strerror})") from None
-        self._error: BaseException | None = None
-        self._put(_csv_text(_sample_headers(self._names, units), []))
-        self._queue: queue.Queue[dict[str, np.ndarray] | None] = queue.Queue(maxsize=1)
-        self._thread = threading.Thread(target=self._drain, name="montecarlo.csv", daemon=True)
-        self._thread.start()
-
-    def __enter__(self) -> SamplesCSV:
-        return self
-
-    def __exit__(self, exc_type: type[BaseException] | None, *exc: object) -> None:
-        self.close(report=exc_type is None)  # an error already on its way wins over the writer's
-
-    def close(self, report: bool = True) -> None:
-        """Write what is queued, close the file; raise the writer's error (a full disk) if ``report``."""
-        if self._thread.is_alive():
-            self._queue.put(None)
-            self._thread.join()
-        self._file.close()
-        if report and self._error is not None:
-            raise self._error
-
-    def write(self, block: Mapping[str, Any]) -> None:
-        """Queue a block's rows: one array per varied name plus "seed", "success", "failure", "score"."""
-        if self._error is not None:
-            raise self._error
-        part = {k: np.atleast_1d(np.asarray(block[k])) for k in self.columns}
-        check_samples(part)
-        self._queue.put(part)
-
-    def _drain(self) -> None:
-        while (block := self._queue.get()) is not None:
-            if self._error is not None:
-                continue  # keep taking blocks, so the caller never waits on a dead writer
-            try:
-                for lo in range(0, len(block["score"]), self.ROWS):
-                    part = {k: v[lo:lo + self.ROWS] for k, v in block.items()}
-                    self._put(_csv_text(None, _sample_rows(part, self._names)))
-            except BaseException as exc:  # handed to the caller's thread
-                self._error = exc
-
-    def _put(self, text: str) -> None:
-        try:
-            self._file.write(text)
-        except OSError as exc:
-            raise PretrialError(f"{self.path}: write failed ({exc.strerror})") from None
 
 
 # --------------------------------------------------------------------------- #
@@ -947,7 +634,7 @@ def _histograms(samples: Mapping[str, Any] | SampleHistograms | None) -> SampleH
     if samples is None or isinstance(samples, SampleHistograms):
         return samples
     check_samples(samples)
-    return sample_histograms(lambda: [samples], ["score", *_sample_names(samples)])
+    return sample_histograms(lambda: [samples], ["score", *varied_names(samples)])
 
 
 def write_plots(results: Mapping[str, Any], out_dir: Path,
@@ -1038,3 +725,35 @@ def write_report(results: dict, out_dir: Path, samples: Mapping[str, Any] | Samp
     png = {f: (out_dir / f).read_bytes() for f in images}
     atomic_write_bytes(out_dir / "report.html", to_html(blocks, png).encode("utf-8"))
     return [*paths, out_dir / "report.md", out_dir / "report.html"]
+
+
+def rebuild_report(path: str | Path, out_dir: str | Path | None = None) -> list[Path]:
+    """Rebuild a sweep's ``margins.csv``, plots, ``report.md`` and ``report.html`` from its ``results.json``.
+
+    Parameters
+    ----------
+    path : path-like
+        The sweep directory or its ``results.json`` (checked: schema, version and content hash).
+    out_dir : path-like, optional
+        Where to write (default: the sweep directory itself, each file replaced atomically).
+        The Monte Carlo plot is drawn from ``montecarlo.csv`` beside the results when it is there.
+
+    Returns
+    -------
+    list of Path
+        Every file written.
+    """
+    from pretrial.analysis.results import SweepResults
+    from pretrial.analysis.samples import sample_histograms
+    from pretrial.report.samples_csv import read_sample_blocks
+
+    res = SweepResults.read(path)
+    assert res.directory is not None
+    out = Path(out_dir) if out_dir is not None else res.directory
+    mc = res.doc.get("montecarlo")
+    csv_path = res.directory / "montecarlo.csv"
+    samples = None
+    if mc and csv_path.is_file():
+        names = ["score", *[v["name"] for v in mc.get("varied") or []]]
+        samples = sample_histograms(lambda: read_sample_blocks(csv_path), names)
+    return write_report(res.doc, out, samples)

@@ -1,4 +1,8 @@
-"""The slower generic path: any gymnasium env with Box spaces as a batch plant.
+"""Plants by env id: a pretrial physics core, or any gymnasium env through the slower generic path.
+
+:func:`env_id_of` resolves what a user typed (a full or short pretrial id, a gymnasium
+id, or ``module:id``); :func:`build_plant` makes the batch plant, with errors naming where
+the id and options came from.
 
 Environments built on pretrial's physics core step a whole batch in a few
 numpy calls. Any other gymnasium env with Box observation and action spaces
@@ -144,6 +148,55 @@ def make_plant(env_id: str, **options: Any) -> Physics:
             raise InputError(str(exc)) from None
         return GymnasiumPlant(env_id, **options)
     return kind(**options)
+
+
+def resolve_env_id(name: str) -> str:
+    """Accept a full id (``pretrial/CartPole-v0``) or its short form (``CartPole-v0``)."""
+    import pretrial_envs
+
+    ids = pretrial_envs.env_ids()
+    if name in ids:
+        return name
+    for env_id in ids:
+        if env_id.split("/", 1)[-1].lower() == name.lower():
+            return env_id
+    try:
+        pretrial_envs.physics_type(name)  # also imports the module of a module:id
+        return name
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
+
+
+def env_id_of(name: str) -> str:
+    """A pretrial env id (full or short, which wins over a gymnasium id of the same name) or a gymnasium id."""
+    import gymnasium as gym
+
+    try:
+        return resolve_env_id(name)
+    except InputError:
+        if name.split(":", 1)[-1] in gym.registry:  # resolve_env_id has imported the module of a module:id
+            return name
+        raise
+
+
+def build_plant(env_id: str, options: dict[str, Any] | None = None, where: str | None = None) -> Physics:
+    """:func:`make_plant` with its errors as one-line :class:`InputError` naming ``where`` (default the env id).
+
+    Parameters
+    ----------
+    env_id : str
+        A resolved id (:func:`env_id_of`).
+    options : dict, optional
+        The env's keyword options.
+    where : str, optional
+        What the message names first, e.g. ``"plan.toml: scenario.options"``.
+    """
+    try:
+        return make_plant(env_id, **(options or {}))
+    except InputError as exc:
+        raise InputError(f"{where}: {exc.message}" if where else exc.message) from None
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{where or env_id}: {exc}") from None
 
 
 def check_workers_can_build(physics: Any, executor: Any) -> None:
