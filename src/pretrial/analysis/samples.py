@@ -7,7 +7,7 @@ bins span the whole range) reads a scratch copy of the numeric columns back from
 temporary file (:class:`ColumnStore`), block by block.
 
 Every function here gives the same numbers as its one-shot counterpart (scipy's samplers drawing
-all rows at once, ``numpy.quantile``, ``numpy.histogram``); tests/test_montecarlo_stream.py checks each.
+all rows at once, ``numpy.quantile``, ``numpy.histogram``); tests/analysis/test_montecarlo_stream.py checks each.
 """
 
 from __future__ import annotations

@@ -14,35 +14,14 @@ from collections.abc import Callable
 from pathlib import Path
 
 import pytest
-from test_sweep import balancing_policy_file
+from helpers import balancing_policy_file, cli_refused, fuzz_toml, scalars, snapshot
 
 from pretrial.cli.main import main
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 PLAN = REPO / "configs" / "sweeps" / "cartpole.toml"
 DRONE_PLAN = REPO / "configs" / "sweeps" / "drone-pair.toml"
 CONFIG = REPO / "configs" / "cartpole.toml"
-
-
-def snapshot(root: Path) -> dict[str, bytes | None]:
-    """Every entry under ``root`` with its bytes (None for directories), hidden ones included."""
-    return {str(p.relative_to(root)): (None if p.is_dir() else p.read_bytes()) for p in sorted(root.rglob("*"))}
-
-
-def refused(capsys, argv: list[str]) -> str:
-    """Run ``pretrial ARGV``; assert the contract; return the one error line."""
-    capsys.readouterr()
-    try:
-        code = main(argv)
-    except SystemExit as exc:  # argparse usage errors
-        code = exc.code
-    out, err = capsys.readouterr()
-    lines = err.strip().splitlines()
-    assert code == 2, (argv, code, out, err)
-    assert len(lines) == 1, err
-    assert lines[0].startswith("pretrial"), err
-    assert "error:" in lines[0] and "Traceback" not in out + err
-    return lines[0]
 
 
 @pytest.fixture(scope="module")
@@ -140,7 +119,7 @@ def test_bad_file_in_every_slot(capsys, work, policy, slot, kind):
     suffix, argv_of = _slots(policy, work / "out")[slot]
     bad = kind(files, suffix)
     before = snapshot(work)
-    line = refused(capsys, argv_of(bad))
+    line = cli_refused(capsys, argv_of(bad))
     assert bad.name in line, line  # the error names the file
     assert snapshot(work) == before  # nothing written, nothing half-made
 
@@ -161,14 +140,14 @@ def test_bad_file_in_every_slot(capsys, work, policy, slot, kind):
 )
 def test_replay_bad_setting(capsys, work, policy, setting, needle):
     before = snapshot(work)
-    line = refused(capsys, ["replay", str(policy), "--set", setting, "--csv", str(work / "trace.csv")])
+    line = cli_refused(capsys, ["replay", str(policy), "--set", setting, "--csv", str(work / "trace.csv")])
     assert needle in line, line
     assert snapshot(work) == before
 
 
 @pytest.mark.parametrize("start", ["nan,0,0,0", "0,inf,0,0", "theta=nan", "1,2,3", "x=1e999", "speed=0.1"])
 def test_replay_bad_start(capsys, work, policy, start):
-    line = refused(capsys, ["replay", str(policy), "--start", start])
+    line = cli_refused(capsys, ["replay", str(policy), "--start", start])
     assert "--start" in line, line
 
 
@@ -232,7 +211,7 @@ def test_bad_plan_values(capsys, work, policy, command, old, new, needle):
         argv = ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "out"), "--workers", "1"]
     else:
         argv = ["replay", str(policy), "--plan", str(plan)]
-    line = refused(capsys, argv)
+    line = cli_refused(capsys, argv)
     assert "plan.toml" in line and needle in line, line
     assert snapshot(work) == before
 
@@ -241,17 +220,17 @@ def test_bad_plan_values(capsys, work, policy, command, old, new, needle):
 # a policy that does not fit
 # --------------------------------------------------------------------------- #
 def test_policy_for_another_env(capsys, work, policy):
-    line = refused(capsys, ["sweep", str(policy), "--plan", str(DRONE_PLAN), "--out", str(work / "o"),
+    line = cli_refused(capsys, ["sweep", str(policy), "--plan", str(DRONE_PLAN), "--out", str(work / "o"),
                             "--workers", "1"])
     assert "CartPole" in line and "DronePair" in line, line
-    line = refused(capsys, ["replay", str(policy), "--plan", str(DRONE_PLAN)])
+    line = cli_refused(capsys, ["replay", str(policy), "--plan", str(DRONE_PLAN)])
     assert "CartPole" in line and "DronePair" in line, line
     assert not (work / "o").exists()
 
 
 def test_policy_whose_inputs_do_not_fit(capsys, work, policy):
     plan = _plan_with(work, "[scenario.start]", "[scenario.options]\npoles = 2\n\n[scenario.start]")
-    line = refused(capsys, ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "o"), "--workers", "1"])
+    line = cli_refused(capsys, ["sweep", str(policy), "--plan", str(plan), "--out", str(work / "o"), "--workers", "1"])
     assert "poles" in line, line
 
 
@@ -266,7 +245,7 @@ def test_policy_whose_input_count_was_edited_consistently(capsys, work, policy):
     bad = work / "cut.json"
     bad.write_text(json.dumps(doc))
     for argv in (["replay", str(bad)], ["export", str(bad), "--to", "python", "--out", str(work / "x")]):
-        assert "cut.json" in refused(capsys, argv)
+        assert "cut.json" in cli_refused(capsys, argv)
     assert not (work / "x").exists()
 
 
@@ -295,25 +274,26 @@ def test_policy_whose_input_count_was_edited_consistently(capsys, work, policy):
 )
 def test_other_arguments(capsys, work, argv, needle):
     before = snapshot(work)
-    assert needle in refused(capsys, argv)
+    assert needle in cli_refused(capsys, argv)
     assert snapshot(work) == before
 
 
 @pytest.mark.parametrize("prefix", ["1policy", "my-policy", "int", "", "x" * 200])
 def test_export_bad_prefix(capsys, work, policy, prefix):
     out = work / "out"
-    assert "--prefix" in refused(capsys, ["export", str(policy), "--to", "c", "--out", str(out), "--prefix", prefix])
+    argv = ["export", str(policy), "--to", "c", "--out", str(out), "--prefix", prefix]
+    assert "--prefix" in cli_refused(capsys, argv)
     assert not out.exists()
 
 
 def test_outputs_that_cannot_be_written(capsys, work, policy):
     (work / "afile").write_text("notes\n")
     before = snapshot(work)
-    assert "afile" in refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile")])
-    assert "afile" in refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile" / "s")])
-    assert "afile" in refused(capsys, ["export", str(policy), "--to", "c", "--out", str(work / "afile")])
-    assert "afile" in refused(capsys, ["evolve", str(CONFIG), "--out", str(work / "afile" / "run")])
-    assert "afile" in refused(capsys, ["replay", str(policy), "--csv", str(work / "afile" / "t.csv")])
+    assert "afile" in cli_refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile")])
+    assert "afile" in cli_refused(capsys, ["sweep", "lqr", "--plan", str(PLAN), "--out", str(work / "afile" / "s")])
+    assert "afile" in cli_refused(capsys, ["export", str(policy), "--to", "c", "--out", str(work / "afile")])
+    assert "afile" in cli_refused(capsys, ["evolve", str(CONFIG), "--out", str(work / "afile" / "run")])
+    assert "afile" in cli_refused(capsys, ["replay", str(policy), "--csv", str(work / "afile" / "t.csv")])
     assert snapshot(work) == before
 
 
@@ -343,7 +323,6 @@ def test_existing_output_is_never_overwritten(capsys, work, policy):
 # --------------------------------------------------------------------------- #
 from hypothesis import HealthCheck, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
-from test_config import _fuzz_toml, _scalars  # noqa: E402
 
 from pretrial.errors import InputError, PretrialError  # noqa: E402
 
@@ -359,7 +338,7 @@ _PLAN_KEYS = sorted({
     "normal", "sobol", "linear", "montecarlo",
 })
 _plan_values = st.recursive(
-    st.one_of(_scalars, st.sampled_from(["pole_mass", "actuator_gain", "ratio", "normal", "sobol", "margins",
+    st.one_of(scalars, st.sampled_from(["pole_mass", "actuator_gain", "ratio", "normal", "sobol", "margins",
                                          "pretrial/CartPole-v0", "x"])),
     lambda inner: st.one_of(st.lists(inner, max_size=3),
                             st.dictionaries(st.sampled_from(_PLAN_KEYS), inner, max_size=3)),
@@ -397,7 +376,7 @@ def test_fuzz_plan_tomlish_text(tmp_path, tables):
     lines = ["[scenario]", 'env = "pretrial/CartPole-v0"', "episodes = 80"] if "scenario" not in tables else []
     for name, table in tables.items():
         lines.append(f"[{name.strip()}]")
-        lines += [f"{k} = {_fuzz_toml(v)}" for k, v in table.items()]
+        lines += [f"{k} = {fuzz_toml(v)}" for k, v in table.items()]
     path = tmp_path / "plan.toml"
     path.write_text("\n".join(lines), encoding="utf-8")
     _plan_only_input_errors(path)
@@ -444,7 +423,7 @@ def test_results_with_numbers_json_does_not_allow(tmp_path, text):
 
 def test_resume_into_another_out_is_refused(capsys, work):
     (work / "run").mkdir()
-    line = refused(capsys, ["evolve", str(CONFIG), "--resume", str(work / "run"), "--out", str(work / "elsewhere")])
+    line = cli_refused(capsys, ["evolve", str(CONFIG), "--resume", str(work / "run"), "--out", str(work / "elsewhere")])
     assert "--out" in line and "--resume" not in line.split(":")[0]
     assert not (work / "elsewhere").exists()
 
@@ -458,7 +437,7 @@ def test_neat_settings_it_cannot_breed_with(capsys, work):
         '[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 0.2\n\n'
         "[neat]\npop_size = 6\ncompatibility_threshold = 1e-9\n\n[run]\ngenerations = 3\nworkers = 1\n"
     )
-    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    line = cli_refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
     assert "crowded.toml" in line and "compatibility_threshold" in line and "--resume" not in line
     assert "population size 6 " in line  # neat-python's words about the user's settings
     assert not (work / "run").exists()
@@ -482,7 +461,7 @@ def test_neat_settings_it_cannot_breed_with(capsys, work):
 ])
 def test_extreme_but_finite_values(capsys, work, argv, needle):
     before = snapshot(work)
-    assert needle in refused(capsys, argv)
+    assert needle in cli_refused(capsys, argv)
     assert snapshot(work) == before
 
 
@@ -508,7 +487,7 @@ def _config_with(tmp: Path, text: str) -> Path:
 def test_bad_config_values_write_nothing(capsys, work, text, needle):
     config = _config_with(work, text)
     before = snapshot(work)
-    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--workers", "1", "--quiet"])
+    line = cli_refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--workers", "1", "--quiet"])
     assert "run.toml" in line and needle in line, line
     assert snapshot(work) == before  # no run directory
 
@@ -516,7 +495,7 @@ def test_bad_config_values_write_nothing(capsys, work, text, needle):
 def test_config_horizon_has_the_plans_upper_limit(capsys, work):
     config = work / "long.toml"
     config.write_text('[task]\nenv = "pretrial/CartPole-v0"\nhorizon = 1e308\n')
-    assert "task.horizon" in refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    assert "task.horizon" in cli_refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
     assert not (work / "run").exists()
 
 
@@ -535,7 +514,7 @@ def test_deeply_nested_toml(capsys, work, policy, slot, nesting):
     with pytest.raises((RecursionError, tomllib.TOMLDecodeError)):  # what the library itself does with it
         tomllib.loads(bad.read_text())
     before = snapshot(work)
-    line = refused(capsys, _slots(policy, work / "out")[slot][1](bad))
+    line = cli_refused(capsys, _slots(policy, work / "out")[slot][1](bad))
     assert "deep.toml" in line, line
     assert snapshot(work) == before
 
@@ -551,7 +530,7 @@ def test_replay_never_replaces_its_policy(capsys, work, policy, kind):
     before = snapshot(work)
     for out in (own, link, hard):
         for force in ([], ["--force"]):
-            line = refused(capsys, ["replay", str(own), f"--{kind}", str(out), *force])
+            line = cli_refused(capsys, ["replay", str(own), f"--{kind}", str(out), *force])
             assert f"--{kind}" in line and "input" in line, line
     assert snapshot(work) == before
 
@@ -563,8 +542,8 @@ def test_replay_never_replaces_its_plan_or_a_run_directorys_champion(capsys, wor
     plan = work / "plan.csv"
     shutil.copy(PLAN, plan)
     before = snapshot(work)
-    assert "input" in refused(capsys, ["replay", str(run), "--csv", str(run / "champion.json"), "--force"])
-    assert "input" in refused(capsys, ["replay", str(policy), "--plan", str(plan), "--csv", str(plan), "--force"])
+    assert "input" in cli_refused(capsys, ["replay", str(run), "--csv", str(run / "champion.json"), "--force"])
+    assert "input" in cli_refused(capsys, ["replay", str(policy), "--plan", str(plan), "--csv", str(plan), "--force"])
     assert snapshot(work) == before
 
 
@@ -572,9 +551,9 @@ def test_replay_refuses_an_existing_output_unless_forced(capsys, work, policy):
     kept = work / "notes.csv"
     kept.write_text("measured by hand, keep\n")
     before = snapshot(work)
-    line = refused(capsys, ["replay", str(policy), "--csv", str(kept)])
+    line = cli_refused(capsys, ["replay", str(policy), "--csv", str(kept)])
     assert "notes.csv" in line and "--force" in line
-    assert "same file" in refused(capsys, ["replay", str(policy), "--csv", str(work / "t.csv"),
+    assert "same file" in cli_refused(capsys, ["replay", str(policy), "--csv", str(work / "t.csv"),
                                            "--gif", str(work / "t.csv")])
     assert snapshot(work) == before
     capsys.readouterr()
@@ -587,7 +566,7 @@ def test_replay_refuses_an_existing_output_unless_forced(capsys, work, policy):
     ["envs", "CartPole-v0", "--option", "poles=2", "--option", "poles=1"],
 ])
 def test_a_name_given_twice(capsys, work, argv):
-    assert "given twice" in refused(capsys, argv)
+    assert "given twice" in cli_refused(capsys, argv)
 
 
 # --------------------------------------------------------------------------- #
@@ -607,7 +586,7 @@ def test_malformed_dask_address(capsys, work, command, address):
     argv = (["evolve", str(CONFIG), "--out", str(out)] if command == "evolve"
             else ["sweep", "lqr", "--plan", str(PLAN), "--out", str(out)])
     before = snapshot(work)
-    line = refused(capsys, [*argv, "--dask", address])
+    line = cli_refused(capsys, [*argv, "--dask", address])
     assert f"--dask {address!r}" in line and "not a scheduler address" in line, line
     assert snapshot(work) == before  # no run or sweep directory
 
@@ -621,12 +600,12 @@ def test_a_config_may_not_choose_a_remote_scheduler(capsys, work):
     config = work / "remote.toml"
     config.write_text(_with_run_key(CONFIG.read_text(), 'dask = "tcp://203.0.113.9:8786"'))
     before = snapshot(work)
-    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
+    line = cli_refused(capsys, ["evolve", str(config), "--out", str(work / "run")])
     assert "remote.toml" in line and "tcp://203.0.113.9:8786" in line and "--trust-config-dask" in line, line
     # confirmed on the command line, the config's address is used (and checked like --dask)
     config.write_text(_with_run_key(CONFIG.read_text(), 'dask = "tcp://"'))
     pytest.importorskip("dask.distributed", reason="dask.distributed is not installed (pretrial[cluster])")
-    line = refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--trust-config-dask"])
+    line = cli_refused(capsys, ["evolve", str(config), "--out", str(work / "run"), "--trust-config-dask"])
     assert "not a scheduler address" in line, line
     assert snapshot(work) == {**before, "remote.toml": config.read_bytes()}
 
@@ -752,7 +731,7 @@ def test_resume_of_a_damaged_run_directory(capsys, work, finished_run, damage, n
     marker = work / "pickle-was-loaded"
     damage(run, marker)
     before = snapshot(work)
-    line = refused(capsys, ["evolve", str(config), "--resume", str(run)])
+    line = cli_refused(capsys, ["evolve", str(config), "--resume", str(run)])
     assert needle in line, line
     assert not marker.exists()  # no pickle from outside checkpoints/ was ever loaded
     assert snapshot(work) == before  # nothing modified

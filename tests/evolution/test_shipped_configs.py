@@ -18,7 +18,7 @@ from pretrial.analysis.sweep import controlled
 from pretrial.cli.main import main
 from pretrial.evolution.config import plan_beside
 
-CONFIGS = Path(__file__).resolve().parents[1] / "configs"
+CONFIGS = Path(__file__).resolve().parents[2] / "configs"
 RUN_CONFIGS = sorted(CONFIGS.glob("*.toml"))
 PLANS = sorted((CONFIGS / "sweeps").glob("*.toml"))
 

@@ -14,15 +14,14 @@ the order of summation, the clamps and the tie/NaN rules are the library's.
 from __future__ import annotations
 
 import math
-import random
 from contextlib import contextmanager
-from pathlib import Path
 from unittest import mock
 
 import neat
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, assume, given, settings
+from helpers import library_outputs, library_outputs_or_skip, make_config, random_genome
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from neat.innovation import InnovationTracker
 
@@ -45,113 +44,6 @@ TOL = {"rtol": 1e-12, "atol": 1e-12}
 # --------------------------------------------------------------------------- #
 # neat-python genomes (also used by test_policy_file.py)
 # --------------------------------------------------------------------------- #
-def config_text(feed_forward: bool, num_inputs: int = 3, num_outputs: int = 2, activations: str = " ".join(ACTIVATIONS),
-                aggregations: str = " ".join(AGGREGATIONS), num_hidden: int = 1) -> str:
-    """A neat-python config with high structural mutation rates."""
-    return f"""
-[NEAT]
-fitness_criterion = max
-fitness_threshold = 1e9
-pop_size = 10
-reset_on_extinction = False
-no_fitness_termination = True
-
-[DefaultGenome]
-num_inputs = {num_inputs}
-num_outputs = {num_outputs}
-num_hidden = {num_hidden}
-feed_forward = {feed_forward}
-initial_connection = partial_direct 0.5
-activation_default = random
-activation_mutate_rate = 0.3
-activation_options = {activations}
-aggregation_default = random
-aggregation_mutate_rate = 0.2
-aggregation_options = {aggregations}
-bias_init_mean = 0.0
-bias_init_stdev = 1.0
-bias_max_value = 5.0
-bias_min_value = -5.0
-bias_mutate_power = 0.5
-bias_mutate_rate = 0.7
-bias_replace_rate = 0.1
-response_init_mean = 1.0
-response_init_stdev = 0.5
-response_max_value = 3.0
-response_min_value = -3.0
-response_mutate_power = 0.3
-response_mutate_rate = 0.5
-response_replace_rate = 0.1
-weight_init_mean = 0.0
-weight_init_stdev = 1.0
-weight_max_value = 4.0
-weight_min_value = -4.0
-weight_mutate_power = 0.5
-weight_mutate_rate = 0.8
-weight_replace_rate = 0.1
-enabled_default = True
-enabled_mutate_rate = 0.1
-conn_add_prob = 0.7
-conn_delete_prob = 0.1
-node_add_prob = 0.5
-node_delete_prob = 0.1
-compatibility_disjoint_coefficient = 1.0
-compatibility_weight_coefficient = 0.5
-single_structural_mutation = False
-structural_mutation_surer = default
-
-[DefaultSpeciesSet]
-compatibility_threshold = 3.0
-
-[DefaultStagnation]
-species_fitness_func = max
-max_stagnation = 20
-species_elitism = 2
-
-[DefaultReproduction]
-elitism = 2
-survival_threshold = 0.2
-min_species_size = 2
-"""
-
-
-def make_config(path: Path, feed_forward: bool, **kwargs) -> neat.Config:
-    path.write_text(config_text(feed_forward, **kwargs))
-    return neat.Config(neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet,
-                       neat.DefaultStagnation, str(path))
-
-
-def random_genome(config: neat.Config, seed: int, mutations: int = 30) -> neat.DefaultGenome:
-    """A genome grown by neat-python's own mutation operators from Python's ``random`` seeded with ``seed``."""
-    gc = config.genome_config
-    gc.innovation_tracker = InnovationTracker()
-    gc.node_indexer = None  # node keys depend on this genome only
-    random.seed(seed)
-    genome = neat.DefaultGenome(seed)
-    genome.configure_new(gc)
-    for _ in range(mutations):
-        genome.mutate(gc)
-    return genome
-
-
-def library_outputs(genome, config, inputs: np.ndarray) -> np.ndarray:
-    """neat-python's outputs for inputs (steps, B, n_in): one library network per scenario, state carried."""
-    kind = neat.nn.FeedForwardNetwork if config.genome_config.feed_forward else neat.nn.RecurrentNetwork
-    nets = [kind.create(genome, config) for _ in range(inputs.shape[1])]
-    return np.array([[net.activate(list(x)) for net, x in zip(nets, step, strict=True)] for step in inputs.tolist()])
-
-
-def library_outputs_or_skip(genome, config, inputs: np.ndarray) -> np.ndarray:
-    """As :func:`library_outputs`, discarding the example where the library itself fails.
-
-    neat-python raises OverflowError for ``z ** 2`` / ``z ** 3`` of a huge value (the compiled
-    network returns inf there, a documented deviation), so there is nothing to compare.
-    """
-    try:
-        return library_outputs(genome, config, inputs)
-    except OverflowError:
-        assume(False)
-        raise
 
 
 def compiled_outputs(net, inputs: np.ndarray) -> np.ndarray:

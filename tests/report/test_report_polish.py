@@ -1,7 +1,7 @@
 """What a reader of a sweep report and a replay plot sees: intervals beside every rate, plain tick
 labels, short wrapped titles, target lines and tolerance bands, tidy numbers in margins.csv.
 
-The results dicts are the synthetic ones of tests/test_report.py; intervals are checked against
+The results dicts are the synthetic ones of tests/report/test_report.py; intervals are checked against
 scipy.stats.binomtest(k, n).proportion_ci(method="wilson") (Wilson 1927), an outside reference.
 """
 
@@ -12,9 +12,9 @@ import csv
 import io
 
 import numpy as np
+from helpers import make_results, samples
 from PIL import Image
 from scipy.stats import binomtest
-from test_report import make_results, samples
 
 from pretrial.playback import traces
 from pretrial.playback.replay import lqr_policy, run_replay

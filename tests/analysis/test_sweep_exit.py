@@ -14,15 +14,15 @@ from pathlib import Path
 import neat
 import numpy as np
 import pytest
+from helpers import make_config, snapshot
 from scipy.stats import binomtest
-from test_network import make_config
 
 from pretrial.analysis import sweep as sweep_run
 from pretrial.cli.main import main
 from pretrial.controller.policy import IOMap, policy_from_genome, save_policy
 from pretrial_envs import make_physics
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 # the continuous-loop margins of the LQR cart-pole only: no episodes, a fraction of a second
 LINEAR_PLAN = """
@@ -77,10 +77,6 @@ def sweep_code(argv: list[str]) -> int:
         return main(argv)
     except SystemExit as exc:  # argparse's own exits (--help)
         return int(exc.code or 0)
-
-
-def snapshot(root: Path) -> dict[str, bytes | None]:
-    return {str(p.relative_to(root)): (None if p.is_dir() else p.read_bytes()) for p in sorted(root.rglob("*"))}
 
 
 # --------------------------------------------------------------------------- #

@@ -10,12 +10,12 @@ from __future__ import annotations
 import copy
 import csv
 import io
-import math
 import re
 from html.parser import HTMLParser
 
 import numpy as np
 import pytest
+from helpers import EVIL, EVIL_WORD, make_results, samples, wilson
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from PIL import Image
@@ -25,127 +25,6 @@ from pretrial.errors import FileFormatError, InputError
 from pretrial.report.document import Table, to_html, to_markdown
 from pretrial.report.samples_csv import write_samples_csv
 from pretrial.report.sweep_report import write_report
-
-EVIL = "<b>evil</b>"  # a hostile parameter name
-EVIL_WORD = "<script>x()</script>"  # a hostile failure word
-
-
-def wilson(k: int, n: int, z: float = 1.959964) -> tuple[float, float]:
-    # Wilson (1927), "Probable inference...", JASA 22:209, score interval
-    p = k / n
-    centre = (p + z * z / (2 * n)) / (1 + z * z / n)
-    half = z / (1 + z * z / n) * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
-    return centre - half, centre + half
-
-
-def points(values, successes, n=20, required=0.8):
-    out = []
-    for v, k in zip(values, successes):
-        lo, hi = wilson(k, n)
-        out.append({"value": v, "episodes": n, "successes": k, "success_rate": k / n, "lower_bound": lo,
-                    "upper_bound": hi, "pass": lo >= required, "failure_modes": {"pole_fell": n - k}, "seed": 7})
-    return out
-
-
-def response(gain: float, dt: float | None = None):
-    # synthetic loop L(s) = gain / (s (s + 1)) (continuous) or its value at s = exp(j w dt) (sampled)
-    w = np.geomspace(0.05, 50.0 if dt is None else math.pi / dt, 120)
-    s = 1j * w if dt is None else (np.exp(1j * w * dt) - 1) / dt
-    L = gain / (s * (s + 1))
-    return {"omega": w.tolist(), "channels": {"force": {"re": L.real.tolist(), "im": L.imag.tolist()}}}
-
-
-def linear_entry(pm: float, gm_db: float | None):
-    return {"channel": "force", "gain_margin_low": 0.0, "gain_margin_high": None if gm_db is None else 10 ** (
-        gm_db / 20), "gain_margin_db": gm_db, "phase_margin_deg": pm, "delay_margin_s": 0.3, "disk_margin": 0.9,
-        "disk_gain_low": 0.38, "disk_gain_high": 2.6, "disk_phase_deg": 48.0, "crossover_rad_s": 1.2}
-
-
-def part(scale: float = 1.0, verdict: str = "fail"):
-    """The per-controller keys of a results dict (policy or baseline)."""
-    lo, hi = wilson(1950, 2000)
-    return {
-        "margins": [
-            {"name": "pole_mass", "unit": "kg", "nominal": 0.1, "low": 0.02, "high": 0.35 * scale,
-             "low_ratio": 0.2, "high_ratio": 3.5 * scale, "low_failure": None, "high_failure": "off_track",
-             "low_limit_reached": True, "high_limit_reached": False, "range": [0.02, 1.0],
-             "points": points([0.02, 0.05, 0.1, 0.2, 0.35, 0.5], [20, 20, 20, 19, 17, 3]),
-             "replay_low": None,
-             "replay_high": "pretrial replay runs/a/champion.json --set pole_mass=0.37 --seed 123 --episodes 20"},
-            {"name": "track_offset", "unit": "m", "nominal": 0.0, "low": -0.4, "high": 0.3, "low_ratio": None,
-             "high_ratio": None, "low_failure": "pole_fell", "high_failure": "pole_fell",
-             "low_limit_reached": False, "high_limit_reached": False, "range": [-1.0, 1.0],
-             "points": points([-0.5, -0.4, 0.0, 0.3, 0.4], [4, 18, 20, 17, 2]),
-             "replay_low": "pretrial replay runs/a/champion.json --set track_offset=-0.41 --seed 5 --episodes 20",
-             "replay_high": "pretrial replay runs/a/champion.json --set track_offset=0.31 --seed 6 --episodes 20"},
-            {"name": EVIL, "unit": "N", "nominal": 1.0, "low": 0.5, "high": 2.0, "low_ratio": 0.5,
-             "high_ratio": 2.0, "low_failure": EVIL_WORD, "high_failure": None, "low_limit_reached": False,
-             "high_limit_reached": False, "range": [0.1, 4.0], "points": [], "replay_low": None, "replay_high": None},
-        ],
-        "montecarlo": {
-            "samples": 2000, "successes": 1950, "success_rate": 0.975, "ci95": [lo, hi],
-            "failure_modes": {"pole_fell": 40, "off_track": 10},
-            "varied": [{"name": "pole_mass", "unit": "kg", "distribution": "uniform", "low": 0.05, "high": 0.3}],
-            "score_quantiles": {"0.01": -0.2, "0.05": 0.1, "0.5": 0.8},
-            "worst": [
-                {"values": {"pole_mass": 0.29}, "seed": 987654321, "score": -0.4, "success": False,
-                 "failure": "pole_fell",
-                 "replay": "pretrial replay runs/a/champion.json --set pole_mass=0.29 --seed 987654321"},
-                {"values": {"pole_mass": 0.28}, "seed": 11, "score": 0.5, "success": True, "failure": None,
-                 "replay": "pretrial replay runs/a/champion.json --set pole_mass=0.28 --seed 11"}],
-            "samples_file": "montecarlo.csv"},
-        "worstcase": {"method": "scipy.optimize.differential_evolution", "evaluations": 300, "episodes": 8,
-                      "score": -0.8, "values": {"pole_mass": 0.3}, "seed": 42, "success_rate": 0.0,
-                      "failure": "pole_fell",
-                      "replay": "pretrial replay runs/a/champion.json --set pole_mass=0.3 --seed 42 --episodes 8"},
-        "sensitivity": {"method": "Sobol (scipy, Saltelli 2010)", "score": "episode score", "samples": 1024,
-                        "indices": [{"name": "pole_mass", "S1": 0.4, "S1_conf": 0.05, "ST": 0.5, "ST_conf": 0.06}]},
-        "success_map": {"x": "pole_mass", "y": "track_offset", "x_unit": "kg", "y_unit": "m",
-                        "x_values": [0.05, 0.1, 0.2, 0.3], "y_values": [-0.3, 0.0, 0.3],
-                        "success_rate": [[1.0, 1.0, 0.7, 0.2], [1.0, 1.0, 0.9, 0.5], [0.9, 0.8, 0.6, 0.1]],
-                        "episodes": 20},
-        "linear": [linear_entry(63.0 * scale, None)],
-        "linear_sampled": [],
-        "linear_details": {
-            "continuous": {"linearizable": True, "reason": None, "notes": ["synthetic loop"], "stable": True,
-                           "equilibrium_state": [0, 0, 0, 0], "equilibrium_action": [0],
-                           "multi_loop_disk_margin": None, "response": response(1.5 * scale)},
-            "sampled": {"linearizable": False, "reason": "saturated: the output is at the actuator limit",
-                        "notes": [], "stable": None, "dt": 0.02, "delay_steps": 0, "response": None}},
-        "integrator_check": {"nominal": {"integrator": "rk4", "substeps": 1, "success_rate": 1.0, "mean_score": 0.8},
-                             "variants": [{"integrator": "euler", "substeps": 4, "success_rate": 0.95,
-                                           "mean_score": 0.79}],
-                             "flagged": False, "note": "largest change 0.05 in success rate"},
-        "requirements": [
-            {"name": "success_rate", "required": 0.95, "measured": 0.975, "pass": True},
-            {"name": "margin pole_mass high_ratio", "required": 4.0, "measured": 3.5 * scale,
-             "pass": 3.5 * scale >= 4.0},
-            {"name": "gain_margin_db force", "required": 6.0, "measured": None, "pass": True},
-            {"name": "integrator_check", "required": "no change", "measured": "no change", "pass": True}],
-        "verdict": verdict,
-    }
-
-
-def make_results(baseline: bool = False):
-    r = {"schema": "pretrial.sweep", "schema_version": 1,
-         "policy": {"kind": "file", "path": "runs/a/champion.json", "content_sha256": "ab" * 32},
-         "env": {"id": "pretrial/CartPole-v0", "options": {"poles": 1}, "params": {}},
-         "plan": {"path": "configs/sweeps/cartpole.toml", "content_sha256": "cd" * 32, "resolved": {}},
-         "seed": 0, "required_success_rate": 0.8, "episodes_per_point": 20, **part(),
-         "baseline": None, "cautions": list(CAUTIONS), "content_sha256": "ef" * 32}
-    if baseline:
-        r["baseline"] = {"kind": "lqr", "controller": {
-            "kind": "lqr", "gain": {"units": "N per state unit", "rows": {"force": {"x": -1.0, "theta": 30.0}}},
-            "q": {"x": 1.0, "theta": 10.0}, "r": {"force": 0.1}, "notes": []}, **part(1.3, "pass")}
-    return r
-
-
-def samples(n: int = 200):
-    rng = np.random.default_rng(0)
-    m = rng.uniform(0.05, 0.3, n)
-    ok = m < 0.27
-    return {"pole_mass": m, "seed": np.arange(n), "success": ok,
-            "failure": np.where(ok, "", "pole_fell"), "score": np.where(ok, 0.8, -0.3) + 0.1 * rng.standard_normal(n)}
 
 
 @pytest.fixture(scope="module")

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from test_bad_input import refused
+from helpers import cli_refused
 
 from pretrial import limits
 from pretrial.cli.main import main
@@ -94,14 +94,14 @@ def test_start_spread_must_be_a_table():
 def test_the_same_dt_words_from_every_entry_point(capsys, tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     words = limits.DT.allowed()
-    assert words in refused(capsys, ["envs", "CartPole-v0", "--option", "dt=1e-320"])
+    assert words in cli_refused(capsys, ["envs", "CartPole-v0", "--option", "dt=1e-320"])
     config = tmp_path / "c.toml"
     config.write_text(BASE + "[task.options]\ndt = 1e-320\n")
-    assert words in refused(capsys, ["evolve", str(config), "--out", str(tmp_path / "run")])
+    assert words in cli_refused(capsys, ["evolve", str(config), "--out", str(tmp_path / "run")])
     plan = tmp_path / "p.toml"
     plan.write_text('[scenario]\nenv = "pretrial/CartPole-v0"\n[scenario.options]\ndt = 1e-320\n')
-    assert words in refused(capsys, ["replay", "lqr", "--plan", str(plan)])
-    line = refused(capsys, ["replay", "lqr", "--env", "CartPole-v0", "--set", "control_period_s=1e-320"])
+    assert words in cli_refused(capsys, ["replay", "lqr", "--plan", str(plan)])
+    line = cli_refused(capsys, ["replay", "lqr", "--env", "CartPole-v0", "--set", "control_period_s=1e-320"])
     assert "control_period_s" in line and words in line
     assert set(tmp_path.iterdir()) == {config, plan}  # no run directory
 
@@ -128,8 +128,8 @@ def test_horizon_has_the_same_bounds_in_config_and_plan(tmp_path):
     ["replay", "lqr", "--env", "CartPole-v0", "--seed", "18446744073709551616"],
 ])
 def test_seed_flags_take_the_config_range(capsys, tmp_path, argv):
-    argv = [str(Path(__file__).parents[1] / "configs" / "cartpole.toml") if a == "CONFIG" else a for a in argv]
-    line = refused(capsys, argv)
+    argv = [str(Path(__file__).parents[2] / "configs" / "cartpole.toml") if a == "CONFIG" else a for a in argv]
+    line = cli_refused(capsys, argv)
     assert "--seed" in line and limits.SEED.allowed() in line
 
 
@@ -153,7 +153,7 @@ def test_config_seed_past_uint64_is_refused(tmp_path):
 # --------------------------------------------------------------------------- #
 def test_replay_caps_recorded_steps(capsys):
     # 1000 episodes x 20000 periods (a 400 s episode at 0.02 s): 2e7 recorded periods
-    line = refused(capsys, ["replay", "lqr", "--env", "CartPole-v0", "--episodes", "1000", "--set",
+    line = cli_refused(capsys, ["replay", "lqr", "--env", "CartPole-v0", "--episodes", "1000", "--set",
                              "control_period_s=0.0005"])
     assert "1000 episodes x 20000 control periods" in line and f"{limits.RECORDED_STEPS.high:.3g}" in line
 
@@ -162,7 +162,7 @@ def test_evolve_caps_integration_steps_before_writing(capsys, tmp_path):
     config = tmp_path / "big.toml"
     config.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 1000\n\n[neat]\npop_size = 1000\n\n'
                       "[run]\ngenerations = 100000\nworkers = 1\n")
-    line = refused(capsys, ["evolve", str(config), "--out", str(tmp_path / "run")])
+    line = cli_refused(capsys, ["evolve", str(config), "--out", str(tmp_path / "run")])
     # CartPole: 10 s / 0.02 s = 500 periods, 2 substeps
     assert "100000 generations x 1000 genomes x 1000 episodes x 500 control periods x 2 substeps" in line
     assert "1e+14 integration steps" in line and "big.toml" in line

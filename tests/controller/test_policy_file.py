@@ -14,9 +14,9 @@ import os
 import neat
 import numpy as np
 import pytest
+from helpers import library_outputs, make_config, random_genome
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from test_network import library_outputs, make_config, random_genome
 
 from pretrial.controller.network import (
     IOMap,

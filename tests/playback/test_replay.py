@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from test_sweep import balancing_policy_file
+from helpers import balancing_policy_file
 
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS

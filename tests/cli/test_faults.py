@@ -27,6 +27,7 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
+from helpers import snapshot
 
 from pretrial import files
 from pretrial.analysis import sweep as sweep_run
@@ -39,7 +40,7 @@ from pretrial.sim import execution
 from pretrial.sim.execution import DaskExecutor, Executor, ProcessExecutor
 from pretrial.sim.signals import Terminated, stop_on_signals
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 CARTPOLE_PLAN = ROOT / "configs" / "sweeps" / "cartpole.toml"
 PRETRIAL = [sys.executable, "-m", "pretrial"]
 ENV = {**os.environ, "MPLBACKEND": "Agg"}
@@ -56,10 +57,6 @@ def write_config(path: Path, checkpoint_every: int = 1, pop_size: int = 20) -> P
         f"[run]\ngenerations = {GENERATIONS}\nseed = 11\ncheckpoint_every = {checkpoint_every}\n"
     )
     return path
-
-
-def snapshot(root: Path) -> dict[str, bytes | None]:
-    return {str(p.relative_to(root)): (None if p.is_dir() else p.read_bytes()) for p in sorted(root.rglob("*"))}
 
 
 def wait_for(condition: Callable[[], object], timeout: float, what: str) -> None:

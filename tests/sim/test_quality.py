@@ -2,7 +2,7 @@
 
 Outside references, named beside each check:
 - the sampled loop's gain margins come from ``pretrial.analysis.linear.loop_report``, which
-  tests/test_linear.py checks against python-control's ``stability_margins``;
+  tests/analysis/test_linear.py checks against python-control's ``stability_margins``;
 - a loop whose gain is past its linear upper margin, with a saturating actuator, settles
   into a limit cycle at the actuator limits (describing-function reasoning: common practice);
 - a constant bias b on a state-feedback command u = -K s + b moves the equilibrium to
@@ -25,7 +25,7 @@ from pretrial.sim.quality import QUALITY_WORDS, QualityLimits
 from pretrial.sim.rollout import keyed_scenarios, run_episodes
 from pretrial_envs import make_physics
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 CARTPOLE_PLAN = ROOT / "configs" / "sweeps" / "cartpole.toml"
 
 

@@ -7,12 +7,10 @@ import math
 import shlex
 from pathlib import Path
 
-import neat
 import numpy as np
 import pytest
-import scipy.linalg
+from helpers import balancing_policy_file
 from scipy.stats import binomtest
-from test_network import make_config
 
 from pretrial.analysis import campaign as sweep
 from pretrial.analysis.linear import loop_report
@@ -21,11 +19,9 @@ from pretrial.analysis.plan import Z2, episodes_needed, load_plan
 from pretrial.analysis.results import read_results
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
-from pretrial.controller.policy import IOMap, policy_from_genome, save_policy
 from pretrial.errors import InputError
 from pretrial.files import sha256_hex
 from pretrial_envs import make_physics
-from pretrial_envs.core import jacobians
 
 SCHEMA_KEYS = ("schema", "schema_version", "policy", "env", "plan", "seed", "required_success_rate",
                "episodes_per_point", "margins", "montecarlo", "worstcase", "sensitivity", "success_map", "linear",
@@ -103,41 +99,6 @@ def lqr_sweep(tmp_path_factory) -> tuple[dict, Path]:
     return json.loads((out / "results.json").read_text(encoding="utf-8")), out
 
 
-def balancing_policy_file(d: Path) -> Path:
-    """A cart-pole policy file: one identity output node, u = -K x with K from scipy's DARE.
-
-    Shared with tests/test_replay.py (its ``policy_file`` fixture).
-    """
-    physics = make_physics("pretrial/CartPole-v0")
-    p = physics.param_table.resolve({})
-    a, b = jacobians(physics, np.zeros(4), np.zeros(1), p)
-    # zero-order-hold discretization by the block matrix exponential (Van Loan's method)
-    m = np.zeros((5, 5))
-    m[:4, :4], m[:4, 4:] = a, b
-    e = scipy.linalg.expm(m * physics.dt)
-    ad, bd = e[:4, :4], e[:4, 4:]
-    q, r = np.diag([1.0, 0.1, 10.0, 0.1]), np.array([[0.01]])
-    x = scipy.linalg.solve_discrete_are(ad, bd, q, r)
-    k = np.linalg.solve(r + bd.T @ x @ bd, bd.T @ x @ ad)[0]  # force [N] = -k . state
-    cfg = make_config(d / "neat.ini", True, num_inputs=4, num_outputs=1, activations="identity",
-                      aggregations="sum", num_hidden=0)
-    genome = neat.DefaultGenome(0)
-    node = neat.genes.DefaultNodeGene(0)
-    node.bias, node.response, node.activation, node.aggregation = 0.0, 1.0, "identity", "sum"
-    genome.nodes[0] = node
-    scale = physics.obs_scale
-    for i in range(4):
-        conn = neat.genes.DefaultConnectionGene((-(i + 1), 0), innovation=i + 1)
-        # network input i is obs_i / scale_i and the action is force / max_force (10 N)
-        conn.weight, conn.enabled = float(-k[i] / 10.0 * scale[i]), True
-        genome.connections[conn.key] = conn
-    io = IOMap(4, 1, obs_scale=[1.0 / s for s in scale])
-    policy = policy_from_genome(genome, cfg, env_id="pretrial/CartPole-v0", env_options=physics.options(), io=io)
-    path = d / "linear.json"
-    save_policy(path, policy)
-    return path
-
-
 def replay(capsys, command: str) -> dict:
     words = shlex.split(command)
     assert words[:2] == ["pretrial", "replay"]
@@ -189,7 +150,7 @@ def test_wilson_vectorized_and_episodes_needed():
 def test_gain_margin_edge_agrees_with_linear_gain_margin(lqr_sweep):
     res, _ = lqr_sweep
     # the continuous loop's lower gain margin from pretrial.analysis.linear.loop_report (checked against
-    # python-control in tests/test_linear.py): below it the linearized loop is unstable.
+    # python-control in tests/analysis/test_linear.py): below it the linearized loop is unstable.
     physics = make_physics("pretrial/CartPole-v0", start_spread={"x": 0.05, "theta": 0.05})
     lqr = design_lqr(physics)
     gm_low = loop_report(physics, lqr, None).channels[0].gain_margin_low

@@ -1,7 +1,7 @@
 """Training for the verdict: objectives and the plan's dispersions as a training distribution.
 
 References: the Wilson (1927) score interval (``sweep.wilson_interval``, checked against scipy in
-tests/test_sweep.py); conditional value at risk as the mean of the worst share of outcomes
+tests/analysis/test_sweep.py); conditional value at risk as the mean of the worst share of outcomes
 (Rockafellar & Uryasev 2000, for a finite sample of equally likely outcomes).
 """
 
@@ -16,7 +16,7 @@ from pretrial.analysis.plan import load_plan
 from pretrial.evolution.plan_training import Objective, PlanDistribution, objective_fitness, parse_objective
 from pretrial_envs import make_physics
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 @pytest.mark.parametrize(("text", "kind", "alpha"), [("mean", "mean", 1.0), ("cvar:0.2", "cvar", 0.2),
@@ -97,12 +97,12 @@ def test_short_verdict_agrees_with_the_linear_loop():
 
     ctl = controlled("lqr", str(ROOT / "configs" / "sweeps" / "cartpole.toml"))
     good = short_verdict(ctl.plan, ctl.physics, ctl.base_params, ctl.controller, _Serial(), 128, 99)
-    # the LQR meets the plan (tests/test_quality.py, the sweep itself): the short form must say so too
+    # the LQR meets the plan (tests/sim/test_quality.py, the sweep itself): the short form must say so too
     assert good["verdict"] == "pass" and good["met"] == good["judged"] >= 5
     assert good["montecarlo"]["samples"] == 128
     assert not any(r["name"].startswith("margin ") for r in good["requirements"])
     # at a tenth of its gain the sampled loop is unstable (lower gain margin 0.24, from pretrial.linear,
-    # checked against python-control in tests/test_linear.py)
+    # checked against python-control in tests/analysis/test_linear.py)
     bad = short_verdict(ctl.plan, ctl.physics, ctl.base_params, _Scaled(ctl.controller, 0.1), _Serial(), 64, 99)
     assert bad["verdict"] == "fail" and bad["met"] < good["met"]
 

@@ -4,7 +4,7 @@ References:
 
 * neat-python 2.0 (``neat.nn.FeedForwardNetwork`` / ``RecurrentNetwork``): the golden actions equal the
   library's own networks (``test_golden_actions_are_neat_pythons``), so "exported code == numpy policy"
-  below also means "exported code == neat-python". pretrial's numpy network (tests/test_network.py ties it
+  below also means "exported code == neat-python". pretrial's numpy network (tests/controller/test_network.py ties it
   to the library) is the reference the exports are compared with, within 1e-12 (double) / 1e-5 (float).
 * ISO C99 (ISO/IEC 9899:1999) as the system compiler enforces it with ``-std=c99 -pedantic-errors``; the
   compiler's own ``sizeof`` checks the memory figures.
@@ -27,9 +27,9 @@ from pathlib import Path
 import neat
 import numpy as np
 import pytest
+from helpers import library_outputs, make_config, random_genome
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from test_network import library_outputs, make_config, random_genome
 
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS

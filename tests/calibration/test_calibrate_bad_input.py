@@ -6,7 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from test_bad_input import refused, snapshot
+from helpers import cli_refused, snapshot
 
 HEADER = "t,x,x_dot,theta,theta_dot,force\n"
 GOOD = [f"{0.02 * k:.2f},0.0,0.0,0.01,0.0,{10.0 if k % 2 else -10.0}\n" for k in range(30)]
@@ -21,7 +21,7 @@ def log(tmp_path: Path, text: str, name: str = "log.csv") -> str:
 
 def check(capsys, tmp_path: Path, argv: list[str], *words: str) -> str:
     before = snapshot(tmp_path)
-    line = refused(capsys, ["calibrate", *argv, "--out", str(tmp_path / "out")])
+    line = cli_refused(capsys, ["calibrate", *argv, "--out", str(tmp_path / "out")])
     assert snapshot(tmp_path) == before  # nothing written, not even a hidden directory
     for w in words:
         assert w in line, line

@@ -21,6 +21,7 @@ import gymnasium as gym
 import matplotlib.pyplot as plt
 import numpy as np
 import pytest
+from helpers import snapshot
 
 import pretrial_envs
 from pretrial.cli.main import main
@@ -46,11 +47,6 @@ def write_config(path: Path, *, env: str = "pretrial/CartPole-v0", seed: int = 7
         f"[run]\ngenerations = {generations}\nseed = {seed}\ncheckpoint_every = 1\n{run_extra}"
     )
     return path
-
-
-def snapshot(root: Path) -> dict[str, bytes | None]:
-    """Every entry under ``root`` (None for directories) with its bytes: to prove nothing changed."""
-    return {str(p.relative_to(root)): (None if p.is_dir() else p.read_bytes()) for p in sorted(root.rglob("*"))}
 
 
 def run_cli(argv: list[str]) -> int:

@@ -8,12 +8,12 @@ same there).
 
 from __future__ import annotations
 
-import math
 import tomllib
 from pathlib import Path
 
 import neat
 import pytest
+from helpers import ENVS, fuzz_toml, scalars
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -317,40 +317,12 @@ _KEYS = sorted(
      "start_scale", "num_inputs", "pop_size", "bogus", "epsiodes"}
     | set(neat_key_sections())
 )
-_ENVS = ["pretrial/CartPole-v0", "pretrial/DronePair-v0", "pretrial/GantryCrane-v0", "CartPole-v1", "x"]
 
-_scalars = st.one_of(
-    st.integers(min_value=-(2**63), max_value=2**63 - 1),
-    st.sampled_from([0, 1, 2, 3, 50, -1]),
-    st.floats(allow_nan=True, allow_infinity=True),
-    st.booleans(),
-    st.text(max_size=12),
-    st.sampled_from(_ENVS + ["tanh", "auto", "full", "rk4", "euler", "shared", "whole", "%", "\n", "positions"]),
-)
 _values = st.recursive(
-    _scalars,
+    scalars,
     lambda inner: st.one_of(st.lists(inner, max_size=3), st.dictionaries(st.sampled_from(_KEYS), inner, max_size=4)),
     max_leaves=12,
 )
-
-
-def _fuzz_toml(v) -> str:
-    """TOML inline syntax for generated values (independent of the code under test)."""
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "nan"
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return repr(v)
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, str):
-        return '"' + "".join(c if c.isprintable() and c not in '"\\' else f"\\u{ord(c):04x}" for c in v) + '"'
-    if isinstance(v, list):
-        return "[" + ", ".join(_fuzz_toml(x) for x in v) + "]"
-    return "{" + ", ".join(f"{k} = {_fuzz_toml(x)}" for k, x in v.items()) + "}"
 
 
 _tables = st.dictionaries(
@@ -361,17 +333,17 @@ _tables = st.dictionaries(
 
 
 @_FUZZ
-@given(_tables, st.sampled_from(_ENVS + [None]), st.text(max_size=20))
+@given(_tables, st.sampled_from(ENVS + [None]), st.text(max_size=20))
 def test_fuzz_tomlish_text(tmp_path, tables, env, junk):
     lines = []
     if env is not None:
         lines += ["[task]", f'env = "{env}"']
     for name, table in tables.items():
         if name == "task" and env is not None:
-            lines += [f"{k} = {_fuzz_toml(v)}" for k, v in table.items() if k != "env"]
+            lines += [f"{k} = {fuzz_toml(v)}" for k, v in table.items() if k != "env"]
             continue
         lines.append(f"[{name}]")
-        lines += [f"{k} = {_fuzz_toml(v)}" for k, v in table.items()]
+        lines += [f"{k} = {fuzz_toml(v)}" for k, v in table.items()]
     lines.append(junk)  # sometimes valid, mostly not
     _load_expecting_only_input_errors(write(tmp_path, "\n".join(lines)))
 
@@ -381,10 +353,10 @@ _OPTION_KEYS = ["poles", "observe", "dt", "substeps", "integrator", "time_limit"
 
 
 @_FUZZ
-@given(st.sampled_from(_ENVS[:3]), st.dictionaries(st.sampled_from(_OPTION_KEYS), _values, max_size=4))
+@given(st.sampled_from(ENVS[:3]), st.dictionaries(st.sampled_from(_OPTION_KEYS), _values, max_size=4))
 def test_fuzz_env_options(tmp_path, env, options):
     # the env's keyword arguments reach its constructor: whatever it objects to must come back as InputError
-    body = "\n".join(f"{k} = {_fuzz_toml(v)}" for k, v in options.items())
+    body = "\n".join(f"{k} = {fuzz_toml(v)}" for k, v in options.items())
     _load_expecting_only_input_errors(write(tmp_path, f'[task]\nenv = "{env}"\n[task.options]\n{body}\n'))
 
 
@@ -414,7 +386,7 @@ def test_randomize_ramp_is_read_and_resolved(tmp_path):
 def test_dump_toml_round_trips_awkward_strings(tmp_path):
     # control characters, quotes and backslashes in a string the config accepts verbatim
     awkward = "tcp://a\\b\"c\u0007d\te\u007ff\u00e9"
-    cfg = load_config(write(tmp_path, BASE_TASK + f"[run]\ndask = {_fuzz_toml(awkward)}\n"))
+    cfg = load_config(write(tmp_path, BASE_TASK + f"[run]\ndask = {fuzz_toml(awkward)}\n"))
     assert cfg.run.dask == awkward
     assert tomllib.loads(dump_toml(cfg.to_dict())) == cfg.to_dict()
 
