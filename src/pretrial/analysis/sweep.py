@@ -11,16 +11,21 @@ error or Ctrl-C never leaves a partial sweep directory behind.
 
 from __future__ import annotations
 
-import sys
+import platform
+import time
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from pretrial import __version__
 from pretrial.analysis.plan import Plan, load_plan
-from pretrial.analysis.results import SCHEMA, SCHEMA_VERSION, seal, write_results
+from pretrial.analysis.results import SCHEMA, SCHEMA_VERSION, SweepResults, seal, write_results
 from pretrial.console import CAUTIONS, Progress
 from pretrial.errors import InputError
-from pretrial.files import move_into_place, staged, write_json
+from pretrial.files import check_new_dir, move_into_place, staged, write_json
+from pretrial.log import warn as log_warning
+from pretrial.provenance import versions
 from pretrial.sim.perturb import diverged_warning
 from pretrial.sim.plant import build_plant, check_workers_can_build, env_id_of
 from pretrial_envs.core import Physics
@@ -74,12 +79,13 @@ def _scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str
     return env, options, start
 
 
-def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -> Controlled:
+def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, policy: Any = None
+               ) -> Controlled:
     """Resolve POLICY (a file, a run directory or ``lqr``), the plan's scenario and ``--env``.
 
     The LQR baseline is designed on the plan's model (its ``[scenario.params]``)
     with the plan's ``[baseline]`` weights; it is not told what a sweep point
-    or a ``--set`` changes.
+    or a ``--set`` changes. ``policy``, when given, is the loaded policy (``policy_arg`` then labels it).
     """
     plan_env, plan_options, plan_start = _scenario_head(plan_path) if plan_path else (None, {}, {})
     if plan_env is not None:
@@ -88,7 +94,7 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -
         except InputError as exc:
             raise InputError(f"{plan_path}: scenario.env: {exc.message}") from None
     where = f"{plan_path}: scenario.options" if plan_path else "--env"
-    if policy_arg == LQR:
+    if policy_arg == LQR and policy is None:
         name = env or plan_env
         if name is None:
             where_env = f"{plan_path}: scenario.env: " if plan_path else ""
@@ -99,7 +105,7 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None) -
     else:
         from pretrial.controller.policy import open_policy
 
-        policy = open_policy(policy_arg)
+        policy = open_policy(policy_arg) if policy is None else policy
         env_id = policy.env_id
         named = env or plan_env
         if named is not None and env_id_of(named) != env_id:
@@ -165,8 +171,10 @@ class Prepared:
     baseline: Any | None  # the LQR baseline designed on the plan's model, when asked for
 
 
-def prepare(policy_arg: str, plan_path: str, baseline: bool = False) -> Prepared:
+def prepare(policy_arg: str, plan_path: str, baseline: bool = False, policy: Any = None) -> Prepared:
     """Check that POLICY, the plan and the baseline fit together, before any work starts.
+
+    ``policy``, when given, is the loaded policy under test (``policy_arg`` then labels it).
 
     Raises
     ------
@@ -175,7 +183,7 @@ def prepare(policy_arg: str, plan_path: str, baseline: bool = False) -> Prepared
         baseline itself; a baseline the plant cannot have (the LQR design needs the full state
         observed and a plant linearizable at its target).
     """
-    ctl = controlled(policy_arg, plan_path)
+    ctl = controlled(policy_arg, plan_path, policy=policy)
     if ctl.plan is None:  # pragma: no cover - plan_path is required
         raise InputError("--plan: a sweep needs a plan")
     lqr = None
@@ -228,8 +236,8 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     for who, part in (("", results), ("LQR baseline", results.get("baseline") or {})):
         d = part.get("diverged")
         if d:
-            print(f"{diverged_warning(d['episodes'], d['where'], context=who)}; replay one: {d['first']['replay']}",
-                  file=sys.stderr)
+            first = d["first"]["replay"]
+            log_warning(f"{diverged_warning(d['episodes'], d['where'], context=who)}; replay one: {first}")
     results["cautions"] = list(CAUTIONS)
     trained = (getattr(ctl.controller, "training", None) or {}).get("plan") or {}
     if trained.get("content_sha256") == plan.content_hash():
@@ -261,3 +269,65 @@ def write_outputs(out: Path, results: dict[str, Any], samples: Any, manifest: di
 # --------------------------------------------------------------------------- #
 
 
+def default_out(plan: str, policy_arg: str) -> Path:
+    """``sweeps/<plan>-<policy>-<UTC time>``: where a sweep goes when no directory is named."""
+    who = "lqr" if policy_arg == LQR else Path(policy_arg).stem if Path(policy_arg).suffix else Path(policy_arg).name
+    stamp = time.strftime("%Y%m%d-%H%M%S", time.gmtime())
+    return Path("sweeps") / f"{Path(plan).stem}-{who}-{stamp}"
+
+
+def run_sweep(policy: Any, plan: str | Path, out: str | Path | None = None, *, baseline: bool = False,
+              workers: int | str | None = "auto", dask: str | None = None, log: Any = None, progress: bool = False,
+              command: Sequence[str] = ()) -> tuple[SweepResults, list[Path]]:
+    """Run a plan on a controller and write the sweep directory; the command's and the API's one path.
+
+    Parameters
+    ----------
+    policy : path-like, ``"lqr"`` or Policy
+        A policy file, a run directory (its champion), the LQR baseline, or a loaded policy (written
+        into the sweep directory as ``policy.json``, which its replay commands name).
+    plan : path-like
+        The sweep plan (TOML).
+    out : path-like, optional
+        A new (or empty) directory; default :func:`default_out`.
+    baseline : bool
+        Also run the plan on the LQR baseline, side by side.
+    workers, dask
+        Where the episodes run (:func:`pretrial.sim.execution.make_executor`).
+    log : callable, optional
+        Receives progress lines.
+    progress : bool
+        Show a progress bar on stderr.
+    command : sequence of str
+        The command line recorded in ``manifest.json``.
+
+    Returns
+    -------
+    (SweepResults, list of Path)
+        The results, and every file of the sweep directory.
+    """
+    from pretrial.controller.policy import Policy, save_policy
+    from pretrial.sim.execution import make_executor
+
+    plan = str(plan)
+    loaded = policy if isinstance(policy, Policy) else None
+    out_dir = Path(out) if out is not None else default_out(plan, "policy.json" if loaded else str(policy))
+    check_new_dir(out_dir)
+    label = str(out_dir / "policy.json") if loaded is not None else str(policy)
+    prepared = prepare(label, plan, baseline, policy=loaded)  # refused now, not after the policy's sweep
+    started = time.time()
+    with staged(out_dir) as stage:
+        if loaded is not None:
+            save_policy(stage / "policy.json", loaded)
+        with make_executor(workers, dask) as executor:
+            results, samples = sweep(label, plan, executor, baseline=baseline, log=log, progress=progress,
+                                     prepared=prepared, stage=stage)
+            ex = executor.describe()
+        manifest = {
+            "pretrial": __version__, "platform": platform.platform(), "command": list(command),
+            "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)),
+            "seconds": round(time.time() - started, 3), "executor": ex, "results_sha256": results["content_sha256"],
+            "versions": versions(),
+        }
+        files = write_outputs(out_dir, results, samples, manifest, stage)
+    return SweepResults(results, out_dir), files

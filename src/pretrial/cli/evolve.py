@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 from pathlib import Path
-from typing import Any
 
 from pretrial.cli.args import limit_arg, whole, workers_arg
 from pretrial.console import emit_json, fmt_number
@@ -29,28 +28,19 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import dataclasses
     import time
 
-    from pretrial.evolution.config import load_config
+    from pretrial.evolution.config import load_config, with_overrides, with_plan
     from pretrial.evolution.loop import Evolution
     from pretrial.sim.execution import make_executor
 
     cfg = load_config(args.config)
     if getattr(args, "plan", None):
-        cfg = _with_plan(cfg, args.plan)
+        cfg = with_plan(cfg, args.plan)
+    if args.dask is None:
+        _check_config_dask(cfg.path, cfg.run.dask, args.trust_config_dask)
+    cfg = with_overrides(cfg, seed=args.seed, generations=args.generations, workers=args.workers, dask=args.dask)
     run = cfg.run
-    if args.seed is not None:
-        run = dataclasses.replace(run, seed=args.seed)
-    if args.generations is not None:
-        run = dataclasses.replace(run, generations=args.generations)
-    if args.workers is not None:
-        run = dataclasses.replace(run, workers=args.workers)
-    if args.dask is not None:
-        run = dataclasses.replace(run, dask=args.dask)
-    else:
-        _check_config_dask(cfg.path, run.dask, args.trust_config_dask)
-    cfg = dataclasses.replace(cfg, run=run)
     if args.resume:
         run_dir = Path(args.resume)
         if args.out and Path(args.out).resolve() != run_dir.resolve():
@@ -95,23 +85,6 @@ def run(args: argparse.Namespace) -> int:
     print(f"  pretrial replay {run_dir} --gif {run_dir}/replay.gif")
     print(f"  pretrial sweep {run_dir} --plan {shown} --baseline lqr")
     return 0
-
-
-def _with_plan(cfg: Any, plan: str) -> Any:
-    """``cfg`` training against the plan at ``plan`` (``--plan``: a path from the working directory)."""
-    import dataclasses
-
-    if not Path(plan).is_file():
-        raise InputError(f"--plan {plan}: no such file")
-    if cfg.task.randomize:
-        raise InputError(f"--plan {plan}: {cfg.path} has [task.randomize]; with a plan its [[vary]] dispersions are "
-                         "the training distribution: move those ranges into the plan")
-    task = dataclasses.replace(cfg.task, plan=str(Path(plan).resolve()))
-    new = dataclasses.replace(cfg, task=task)
-    from pretrial.evolution.loop import load_training_plan
-
-    load_training_plan(new)  # every plan error now, before anything is written
-    return new
 
 
 def _check_config_dask(path: str, address: str | None, trusted: bool) -> None:

@@ -14,6 +14,7 @@ from collections.abc import Callable, Sequence
 
 from pretrial import __version__
 from pretrial.errors import PretrialError
+from pretrial.log import install_cli_handler
 from pretrial.sim.signals import EXIT_INTERRUPTED, EXIT_TERMINATED, Terminated, stop_on_signals
 
 # --------------------------------------------------------------------------- #
@@ -82,6 +83,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     # what the manifest records: the words actually given, also when main() is called with a list
     args.argv = list(sys.argv[1:] if argv is None else argv)
+    install_cli_handler()
     try:
         with stop_on_signals():
             return int(args._run(args) or 0)

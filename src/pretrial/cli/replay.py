@@ -12,9 +12,8 @@ from pretrial.cli.args import limit_arg, parse_assignments
 from pretrial.console import emit_json, fmt_number, print_cautions, table
 from pretrial.errors import InputError, PretrialError
 from pretrial.files import check_output_file, same_file
-from pretrial.playback.replay import LQR, Replay, check_settings, prepare, run_replay, summary
+from pretrial.playback.replay import LQR, Replay, replay, summary
 from pretrial.sim.perturb import diverged_warning
-from pretrial.sim.quality import QualityLimits
 
 
 def _value(v: float | None, never: bool = False) -> str:
@@ -127,22 +126,8 @@ def run(args: argparse.Namespace) -> int:
     if args.mp4 is not None:
         animation.check_mp4()
     settings = parse_assignments(args.set, "--set")
-    max_steps = None
-    if getattr(args, "plan", None):
-        from pretrial.analysis.sweep import controlled
-
-        ctl = controlled(args.policy, args.plan, args.env)
-        policy, env_id, digest = ctl.controller, ctl.env_id, ctl.policy_hash
-        setup = check_settings(ctl.physics, ctl.base_params, settings)
-        if ctl.plan is not None and ctl.plan.horizon is not None:
-            max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
-    else:
-        policy, setup, env_id, digest = prepare(args.policy, args.env, settings)
-    quality = ctl.plan.quality if getattr(args, "plan", None) and ctl.plan is not None else QualityLimits()
-    rep = run_replay(policy, setup, episodes=args.episodes, seed=args.seed, start=args.start,
-                     policy_label=args.policy, env_id=env_id, policy_hash=digest, max_steps=max_steps,
-                     quality=quality)
-    rep.plan = getattr(args, "plan", None)
+    rep = replay(args.policy, env=args.env, plan=getattr(args, "plan", None), settings=settings,
+                 episodes=args.episodes, seed=args.seed, start=args.start)
     trace, steps, params = rep.outcome.trace, rep.outcome.steps[0], rep.scenarios.params
     note = rep.setup.words() or "nominal"
     blew_up = rep.outcome.failure_counts().get("diverged", 0)
@@ -153,7 +138,7 @@ def run(args: argparse.Namespace) -> int:
             traces.write_trace_csv(args.csv, rep.physics, trace, params, steps)
             rep.files["csv"] = args.csv
         if args.plot:
-            title = f"{args.policy} on {env_id}: {note}"
+            title = f"{args.policy} on {rep.env_id}: {note}"
             traces.plot_traces(args.plot, rep.physics, trace, params, steps, title)
             rep.files["plot"] = args.plot
         for kind in ("gif", "mp4"):

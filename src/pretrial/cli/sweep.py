@@ -3,18 +3,13 @@
 from __future__ import annotations
 
 import argparse
-import platform
 import sys
-import time
 from pathlib import Path
 from typing import Any
 
-from pretrial import __version__
-from pretrial.analysis.sweep import LQR, prepare, sweep, write_outputs
+from pretrial.analysis.sweep import LQR, run_sweep
 from pretrial.cli.args import workers_arg
 from pretrial.console import emit_json, fmt_number, print_cautions, table
-from pretrial.files import check_new_dir, staged
-from pretrial.provenance import versions
 
 #: exit status of ``pretrial sweep`` by verdict, so a pipeline can gate on it
 EXIT_PASS = 0
@@ -29,12 +24,6 @@ EPILOG = """exit status:
   2  bad input (one-line error; nothing written)
   130  interrupted (Ctrl-C; no partial sweep directory)
   143  terminated (SIGTERM, e.g. from timeout or a batch scheduler; no partial sweep directory)"""
-
-
-def _default_out(plan: str, policy_arg: str) -> Path:
-    who = "lqr" if policy_arg == LQR else Path(policy_arg).stem if Path(policy_arg).suffix else Path(policy_arg).name
-    stamp = time.strftime("%Y%m%d-%H%M%S", time.gmtime())
-    return Path("sweeps") / f"{Path(plan).stem}-{who}-{stamp}"
 
 
 def configure(p: argparse.ArgumentParser) -> None:
@@ -52,32 +41,16 @@ def configure(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``pretrial sweep``."""
-    from pretrial.sim.execution import make_executor
-
-    out = Path(args.out) if args.out else _default_out(args.plan, args.policy)
-    check_new_dir(out)
-    baseline = args.baseline == LQR
-    prepared = prepare(args.policy, args.plan, baseline)  # refused now, not after the policy's sweep
     quiet = args.json
-    log = (lambda _l: None) if quiet else (lambda line: print(line, flush=True))
-    started = time.time()
-    with staged(out) as stage:
-        with make_executor(args.workers, args.dask) as executor:
-            results, samples = sweep(args.policy, args.plan, executor, baseline=baseline, log=log,
-                                     progress=not quiet and sys.stderr.isatty(), prepared=prepared, stage=stage)
-            ex = executor.describe()
-        manifest = {
-            "pretrial": __version__, "platform": platform.platform(),
-            "command": ["pretrial", *getattr(args, "argv", [])], "started_utc": time.strftime(
-                "%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)), "seconds": round(time.time() - started, 3),
-            "executor": ex, "results_sha256": results["content_sha256"], "versions": versions(),
-        }
-        files = write_outputs(out, results, samples, manifest, stage)
+    res, files = run_sweep(args.policy, args.plan, args.out, baseline=args.baseline == LQR, workers=args.workers,
+                           dask=args.dask, log=None if quiet else (lambda line: print(line, flush=True)),
+                           progress=not quiet and sys.stderr.isatty(), command=["pretrial", *getattr(args, "argv", [])])
+    assert res.directory is not None
     if args.json:
-        emit_json({**results, "directory": str(out), "files": [str(f) for f in files]})
+        emit_json({**res.doc, "directory": str(res.directory), "files": [str(f) for f in files]})
     else:
-        print_results(results, out)
-    return exit_code(results)
+        print_results(res.doc, res.directory)
+    return exit_code(res.doc)
 
 
 def exit_code(results: dict[str, Any]) -> int:

@@ -627,3 +627,33 @@ def plan_beside(config_path: str | Path, name: str) -> Path | None:
         if plan.is_file():
             return plan
     return None
+
+
+def with_plan(cfg: Config, plan: str | Path, label: str = "--plan") -> Config:
+    """``cfg`` training against the plan at ``plan`` (a path from the working directory).
+
+    Every plan error is raised now (InputError naming ``label`` or the plan), before anything is written.
+    """
+    import dataclasses
+
+    if not Path(plan).is_file():
+        raise InputError(f"{label} {plan}: no such file")
+    if cfg.task.randomize:
+        raise InputError(f"{label} {plan}: {cfg.path} has [task.randomize]; with a plan its [[vary]] dispersions are "
+                         "the training distribution: move those ranges into the plan")
+    task = dataclasses.replace(cfg.task, plan=str(Path(plan).resolve()))
+    new = dataclasses.replace(cfg, task=task)
+    from pretrial.evolution.loop import load_training_plan
+
+    load_training_plan(new)  # every plan error now, before anything is written
+    return new
+
+
+def with_overrides(cfg: Config, *, seed: int | None = None, generations: int | None = None,
+                   workers: int | str | None = None, dask: str | None = None) -> Config:
+    """``cfg`` with the given ``[run]`` settings replaced (None keeps the config's)."""
+    import dataclasses
+
+    given = {"seed": seed, "generations": generations, "workers": workers, "dask": dask}
+    return dataclasses.replace(cfg, run=dataclasses.replace(cfg.run, **{k: v for k, v in given.items()
+                                                                        if v is not None}))

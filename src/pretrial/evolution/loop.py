@@ -25,7 +25,6 @@ import json
 import math
 import platform
 import random
-import sys
 import time
 import tomllib
 from collections.abc import Callable, Sequence
@@ -50,6 +49,7 @@ from pretrial.evolution.plan_training import (
     short_verdict,
 )
 from pretrial.files import atomic_write_text, check_writable_dir, write_json
+from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
 from pretrial.sim.execution import Executor
 from pretrial.sim.perturb import describe_values, diverged_warning, nominal_value
@@ -276,7 +276,7 @@ class Evolution:
     def __init__(self, cfg: Config, run_dir: Path, executor: Executor, log: Callable[[str], None] = print,
                  command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None):
         self.cfg = cfg
-        self.warn = warn or (lambda line: print(line, file=sys.stderr, flush=True))
+        self.warn = warn or log_warning
         self._warnings = 0
         self.run_dir = run_dir
         self.executor = executor

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import shlex
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -133,7 +134,8 @@ def lqr_policy(setup: Setup) -> BatchPolicy:
         raise InputError(f"lqr: {exc}") from None
 
 
-def prepare(policy_arg: str, env: str | None, settings: dict[str, Any]) -> tuple[BatchPolicy, Setup, str, str | None]:
+def prepare(policy_arg: str, env: str | None, settings: dict[str, Any], policy: Any = None
+            ) -> tuple[BatchPolicy, Setup, str, str | None]:
     """Controller, plant setup, env id and policy hash for a POLICY argument and ``--env``/``--set``.
 
     Raises
@@ -141,6 +143,8 @@ def prepare(policy_arg: str, env: str | None, settings: dict[str, Any]) -> tuple
     InputError
         ``lqr`` without ``--env``; a policy that does not fit the named env
         (naming both); an unknown setting or value; an unreadable policy.
+
+    ``policy``, when given, is the loaded policy (``policy_arg`` then only labels it).
     """
     if policy_arg == LQR:
         if env is None:
@@ -150,7 +154,7 @@ def prepare(policy_arg: str, env: str | None, settings: dict[str, Any]) -> tuple
         return lqr_policy(setup), setup, env_id, None
     from pretrial.controller.policy import open_policy
 
-    policy = open_policy(policy_arg)
+    policy = open_policy(policy_arg) if policy is None else policy
     env_id = policy.env_id if env is None else env_id_of(env)
     if env_id == policy.env_id:
         physics, base = build_plant(env_id, dict(policy.env_options)), dict(policy.env_params)
@@ -243,6 +247,57 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
         metrics.update(quality_metrics(physics, outcome.quality))
     return Replay(policy_label, policy_hash, env_id or physics.env_id, setup, int(seed), scenarios, outcome, metrics,
                   start_state, start)
+
+
+def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: str | Path | None = None,
+           settings: dict[str, Any] | None = None, episodes: int = 1, seed: int = 0,
+           start: str | None = None) -> Replay:
+    """Replay a controller: ``episodes`` recorded episodes of seed ``seed`` under named settings.
+
+    Parameters
+    ----------
+    policy : path-like, ``"lqr"`` or Policy
+        A policy file, a run directory (its champion), the LQR baseline (needs ``env`` or ``plan``),
+        or a loaded :class:`~pretrial.controller.policy.Policy`.
+    env : str, optional
+        Environment id (full or short, gymnasium, or ``module:id``); must fit the policy.
+    plan : path-like, optional
+        Run under a sweep plan's scenario (env options, params, start ranges, horizon, quality
+        limits, LQR weights), as a sweep report's replay commands do.
+    settings : dict, optional
+        Physics parameters, generic perturbations or ``control_period_s`` by name.
+    episodes, seed : int
+        The same episodes a sweep draws for that seed.
+    start : str, optional
+        An exact start state (numbers in state order, or ``name=value`` pairs).
+
+    Returns
+    -------
+    Replay
+        With the recorded trace, the outcome and the task and loop-quality metrics.
+    """
+    settings = dict(settings or {})
+    label = policy if isinstance(policy, str) else str(policy) if isinstance(policy, Path) else "<in-memory policy>"
+    loaded = None if isinstance(policy, (str, Path)) else policy
+    max_steps = None
+    quality = QualityLimits()
+    if plan is not None:
+        from pretrial.analysis.sweep import controlled
+
+        ctl = controlled(str(policy) if loaded is None else label, str(plan), env, policy=loaded)
+        controller, env_id, digest = ctl.controller, ctl.env_id, ctl.policy_hash
+        setup = check_settings(ctl.physics, ctl.base_params, settings)
+        if ctl.plan is not None:
+            quality = ctl.plan.quality
+            if ctl.plan.horizon is not None:
+                max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
+    else:
+        controller, setup, env_id, digest = prepare(str(policy) if loaded is None else label, env, settings,
+                                                    policy=loaded)
+    rep = run_replay(controller, setup, episodes=episodes, seed=seed, start=start, policy_label=label, env_id=env_id,
+                     policy_hash=digest, max_steps=max_steps, quality=quality)
+    rep.plan = None if plan is None else str(plan)
+    return rep
 
 
 # --------------------------------------------------------------------------- #

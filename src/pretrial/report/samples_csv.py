@@ -171,12 +171,12 @@ def read_sample_blocks(path: str | Path, rows: int = 65536) -> Iterator[dict[str
                 cols = list(zip(*chunk))
                 block = {n: np.array([_float(v) for v in cols[i]]) for i, n in enumerate(varied)}
                 k = len(varied)
-                block["seed"] = np.array([int(v) for v in cols[k]], dtype=np.int64)
+                block["seed"] = np.array([int(v) for v in cols[k]], dtype=np.uint64)  # seeds span 64 bits
                 if any(v not in ("true", "false") for v in cols[k + 1]):
                     raise ValueError("success must be true or false")
                 block["success"] = np.array([v == "true" for v in cols[k + 1]])
                 block["failure"] = np.array(cols[k + 2], dtype=object)
                 block["score"] = np.array([_float(v) for v in cols[k + 3]])
-            except ValueError as exc:
+            except (ValueError, OverflowError) as exc:
                 raise InputError(f"{p}: near line {reader.line_num}: {exc}") from None
             yield block
