@@ -50,10 +50,15 @@ def _mix(z: np.ndarray) -> np.ndarray:
 
 def uniform(keys: np.ndarray, counter: int, dim: int) -> np.ndarray:
     """Uniform draws in (0, 1], shape (len(keys), dim), for draw number ``counter``."""
+    return _uniform(keys, counter, dim, lanes_first=False)
+
+
+def _uniform(keys: np.ndarray, counter: int, dim: int, lanes_first: bool) -> np.ndarray:
+    # lane j of key i; lanes_first gives the transpose, (dim, len(keys)), whose lanes are contiguous
     with np.errstate(over="ignore"):
-        base = keys.astype(np.uint64)[:, None] + np.uint64(counter) * _STEP
-        lanes = (np.arange(1, dim + 1, dtype=np.uint64) * _GOLDEN)[None, :]
-        bits = _mix(base + lanes)
+        base = keys.astype(np.uint64) + np.uint64(counter) * _STEP
+        lanes = np.arange(1, dim + 1, dtype=np.uint64) * _GOLDEN
+        bits = _mix(base[None, :] + lanes[:, None] if lanes_first else base[:, None] + lanes[None, :])
     return ((bits >> np.uint64(11)).astype(np.float64) + 1.0) * _INV_2_53
 
 
@@ -70,30 +75,33 @@ def check_version(version: object) -> int:
 
 def normal(keys: np.ndarray, counter: int, dim: int, *, version: int) -> np.ndarray:
     """Standard normal draws, shape (len(keys), dim), for draw number ``counter`` in stream ``version``."""
+    # The lanes of uniform(keys, counter, 2 h), drawn lane-major so that every step below runs over
+    # contiguous memory (row-major, each operation would loop over rows of h values); same floats.
     if check_version(version) == 1:
-        # sqrt(-2 ln u1) cos(2 pi u2), in place into the uniforms' own buffers (the same floats)
-        u = uniform(keys, counter, 2 * dim)
-        r = np.log(u[:, :dim])
+        u = _uniform(keys, counter, 2 * dim, lanes_first=True)
+        r = u[:dim]
+        np.log(r, out=r)
         r *= -2.0
-        np.sqrt(r, out=r)
-        angle = u[:, dim:]
+        np.sqrt(r, out=r)  # sqrt(-2 ln u1)
+        angle = u[dim:]
         angle *= _TWO_PI
         np.cos(angle, out=angle)
-        r *= angle
-        return r
+        r *= angle  # times cos(2 pi u2)
+        return np.ascontiguousarray(r.T)
     half = (dim + 1) // 2
-    u = uniform(keys, counter, 2 * half)
-    r = np.log(u[:, :half])
+    u = _uniform(keys, counter, 2 * half, lanes_first=True)
+    r = u[:half]
+    np.log(r, out=r)
     r *= -2.0
     np.sqrt(r, out=r)
-    angle = u[:, half:]
+    angle = u[half:]
     angle *= _TWO_PI
-    out = np.empty((len(u), 2 * half))
-    np.cos(angle, out=out[:, :half])
-    np.sin(angle, out=out[:, half:])
-    out[:, :half] *= r
-    out[:, half:] *= r
-    return out[:, :dim] if dim != 2 * half else out
+    out = np.empty((2 * half, len(keys)))
+    np.cos(angle, out=out[:half])
+    np.sin(angle, out=out[half:])
+    out[:half] *= r
+    out[half:] *= r
+    return np.ascontiguousarray(out[:dim].T)
 
 
 #: draw number of the start-state draws (the control loop's counters, 2 per step, never reach it)
