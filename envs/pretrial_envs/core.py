@@ -504,6 +504,28 @@ class Physics:
         """Column ``name`` of ``params`` (N, P) as an (N,) view."""
         return params[:, self.param_table.index(name)]
 
+    def batch_constants(self, params: Array, build: Callable[[Array], Any]) -> Any:
+        """``build(params)``, kept while the same read-only array that owns its data comes back.
+
+        The rollout engine and the vector env pass one such array every step, so
+        values derived from the parameters alone (sums of masses, which loss terms
+        are on) are formed once per batch instead of at every derivative
+        evaluation (4 per RK4 substep). Any other array is built afresh each call.
+        A plant uses one ``build`` per instance.
+        """
+        cached = self.__dict__.get("_batch_constants")
+        if cached is not None and cached[0] is params:
+            return cached[1]
+        values = build(params)
+        if not params.flags.writeable and params.base is None:
+            self.__dict__["_batch_constants"] = (params, values)
+        return values
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = self.__dict__.copy()
+        state.pop("_batch_constants", None)  # a cache, not configuration: never pickled
+        return state
+
     # ----------------------------------------------------------- to implement
     def derivatives(self, state: Array, force: Array, params: Array) -> Array:
         """Time derivative of ``state`` (N, S) under ``force`` (N, A) in physical units."""

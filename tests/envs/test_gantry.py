@@ -595,3 +595,98 @@ def test_draw_shows_crane_parts(hoist):
     # the load is drawn where the state puts it
     np.testing.assert_allclose(circles[0].center, (-2.0 + math.sin(0.3), -math.cos(0.3)), atol=1e-12)
     assert any("wind" in t.get_text() for t in ax.texts)
+
+
+# --------------------------------------------------------------------------- #
+# The in-place derivatives against the plain closed-form expressions
+# --------------------------------------------------------------------------- #
+def _closed_form(physics: GantryPhysics, state: np.ndarray, force: np.ndarray, params: np.ndarray):
+    """The module docstring's free-body result written as plain numpy expressions (no buffers reused).
+
+    Fixed rope: ``(M + m sin^2 phi) x'' = F - q cos(phi) + sin(phi) K``, ``T = K - m sin(phi) x''``
+    with ``K = m (g cos(phi) + l phi'^2) + f_r`` (the classical cart-pendulum result, e.g.
+    Ogata, Modern Control Engineering, inverted-pendulum example -- from memory); with the hoist
+    ``K = m (g cos(phi) + l phi'^2 - l'') + f_r`` and the drive's tension limits.
+    """
+    p = {name: params[:, i] for i, name in enumerate(physics.param_table.names)}
+    g, big_m, m = p["gravity"], p["trolley_mass"], p["load_mass"]
+    xd, phi, w = state[:, 1], state[:, 2], state[:, 3]
+    s, c = np.sin(phi), np.cos(phi)
+    ln, ld = (state[:, 4], state[:, 5]) if physics.hoist else (p["rope_length"], None)
+    mu = p["trolley_coulomb"]
+    f_net = force[:, 0] - p["trolley_friction"] * xd
+    if mu.any():
+        f_net = f_net - mu * (big_m + m) * g * np.tanh(xd / COULOMB_SMOOTHING_SPEED)
+    q = -p["rope_damping"] * w / ln
+    k = p["load_drag"]
+    f_r, f_t = 0.0, q
+    if k.any():
+        vx = xd + ln * w * c - p["wind_speed"]
+        vy = ln * w * s
+        if ld is not None:
+            vx, vy = vx + ld * s, vy - ld * c
+        kv = k * np.sqrt(vx * vx + vy * vy)
+        fx, fy = -kv * vx, -kv * vy
+        f_r, f_t = fx * s - fy * c, q + fx * c + fy * s
+    denom = big_m + m * s * s
+    base = g * c + ln * w * w
+    if ld is None:
+        big_k = m * base + f_r
+        xdd = (f_net - q * c + s * big_k) / denom
+        return xdd, (f_t / m - g * s - xdd * c) / ln, None, big_k - m * s * xdd
+    tau = p["hoist_time_constant"]
+    stop = 4.0 * tau  # HOIST_STOP_TIME_CONSTANTS
+    v_ref = np.clip(force[:, 1], (p["min_rope_length"] - ln) / stop, (p["max_rope_length"] - ln) / stop)
+    ldd = (v_ref - ld) / tau
+    big_k = m * (base - ldd) + f_r
+    xdd = (f_net - q * c + s * big_k) / denom
+    tension = big_k - m * s * xdd
+    held = np.clip(tension, 0.0, p["max_hoist_force"])
+    sat = held != tension
+    xdd_s = (f_net + held * s - q * c) / big_m
+    xdd = np.where(sat, xdd_s, xdd)
+    ldd = np.where(sat, base - xdd_s * s + (f_r - held) / m, ldd)
+    return xdd, (f_t / m - g * s - xdd * c - 2.0 * ld * w) / ln, ldd, tension
+
+
+@pytest.mark.parametrize("hoist", [False, True])
+@pytest.mark.parametrize("losses", ["none", "viscous", "all"])
+@pytest.mark.parametrize("n", [1, 7, 300])
+def test_derivatives_equal_closed_form_bit_for_bit(hoist, losses, n):
+    # Same expressions in the same order, so equal floats, not merely close ones; on random
+    # states, forces and parameters (read-only parameter arrays, as the rollout passes them,
+    # exercise the per-batch constants; writable ones are formed afresh).
+    rng = np.random.default_rng(11 + n)
+    physics = GantryPhysics(hoist=hoist)
+    table = physics.param_table
+    for writeable in (True, False):
+        params = _params(physics, n)
+        for name in ("trolley_mass", "load_mass", "rope_length", "gravity"):
+            params[:, table.index(name)] = rng.uniform(table[name].low, min(table[name].high, 50.0), n)
+        if losses == "none":
+            for name in LOSSLESS:
+                params[:, table.index(name)] = 0.0
+        elif losses == "viscous":
+            params[:, table.index("trolley_coulomb")] = 0.0
+            params[:, table.index("load_drag")] = 0.0
+        else:
+            params[:, table.index("wind_speed")] = rng.uniform(-10, 10, n)
+            params[:, table.index("load_drag")] = rng.uniform(0, 1, n)
+        params[:, table.index("max_hoist_force")] = rng.uniform(1.0, 60.0, n)  # some rows saturate
+        params = np.ascontiguousarray(params) if writeable else np.asfortranarray(params)
+        params.setflags(write=writeable)
+        for _ in range(3):  # again with the same read-only array: the kept constants
+            state = rng.normal(0, 1.5, (n, physics.state_dim))
+            force = rng.uniform(-30, 30, (n, physics.action_dim))
+            if hoist:
+                state[:, 4] = rng.uniform(0.1, 2.0, n)
+            xdd, phidd, ldd, tension = _closed_form(physics, state, force, params)
+            d = physics.derivatives(state, force, params)
+            np.testing.assert_array_equal(d[:, 1], xdd)
+            np.testing.assert_array_equal(d[:, 3], phidd)
+            np.testing.assert_array_equal(d[:, 0], state[:, 1])
+            np.testing.assert_array_equal(d[:, 2], state[:, 3])
+            if hoist:
+                np.testing.assert_array_equal(d[:, 5], ldd)
+                np.testing.assert_array_equal(d[:, 4], state[:, 5])
+            np.testing.assert_array_equal(physics.rope_tension(state, force, params), tension)

@@ -60,12 +60,13 @@ def test_uniform_passes_ks_in_open_closed_unit_interval():
     assert stats.kstest(along, "uniform").pvalue > 1e-3
 
 
-def test_normal_passes_ks_against_scipy_norm():
+@pytest.mark.parametrize("version", streams.STREAM_VERSIONS)
+def test_normal_passes_ks_against_scipy_norm(version):
     keys = streams.scenario_keys(2, 20_000)
-    z = streams.normal(keys, 3, 5)
+    z = streams.normal(keys, 3, 5, version=version)
     assert np.all(np.isfinite(z))
     assert stats.kstest(z.ravel(), "norm").pvalue > 1e-3  # reference: scipy.stats.norm
-    along = np.concatenate([streams.normal(keys[:2], c, 3).ravel() for c in range(2000)])
+    along = np.concatenate([streams.normal(keys[:2], c, 3, version=version).ravel() for c in range(2000)])
     assert stats.kstest(along, "norm").pvalue > 1e-3
     # moments with their standard errors: mean 1/sqrt(n), variance sqrt(2/n), fourth moment 3 +- sqrt(96/n)
     x = z.ravel()
@@ -78,7 +79,8 @@ def test_normal_passes_ks_against_scipy_norm():
 def test_draws_are_a_pure_function_of_key_counter_dim():
     keys = streams.scenario_keys(3, 50)
     rng = np.random.default_rng(0)
-    for fn in (streams.uniform, streams.normal):
+    normals = [lambda k, c, d, v=v: streams.normal(k, c, d, version=v) for v in streams.STREAM_VERSIONS]
+    for fn in (streams.uniform, *normals):
         full = fn(keys, 11, 4)
         perm = rng.permutation(len(keys))
         np.testing.assert_array_equal(fn(keys[perm], 11, 4), full[perm])  # any order of the batch
@@ -90,11 +92,12 @@ def test_draws_are_a_pure_function_of_key_counter_dim():
         assert not np.array_equal(fn(keys, 12, 4), full)
 
 
-def test_counters_lanes_and_keys_are_uncorrelated():
+@pytest.mark.parametrize("version", streams.STREAM_VERSIONS)
+def test_counters_lanes_and_keys_are_uncorrelated(version):
     keys = streams.scenario_keys(4, 40_000)
     n = len(keys)
-    z0 = streams.normal(keys, 0, 4)
-    z1 = streams.normal(keys, 1, 4)
+    z0 = streams.normal(keys, 0, 4, version=version)
+    z1 = streams.normal(keys, 1, 4, version=version)
     pairs = [(z0[:, 0], z1[:, 0]), (z0[:, 1], z1[:, 1])]  # same lane, next counter (next step)
     pairs += [(z0[:, i], z0[:, j]) for i in range(4) for j in range(i + 1, 4)]  # lanes of one draw
     pairs += [(z0[:-1, 0], z0[1:, 0])]  # neighbouring keys of a batch
@@ -103,8 +106,43 @@ def test_counters_lanes_and_keys_are_uncorrelated():
     for a, b in pairs:
         assert abs(np.corrcoef(a, b)[0, 1]) < bound(n)
     # neighbouring counters of one key (consecutive steps of one scenario)
-    along = np.array([streams.normal(keys[:1], c, 1)[0, 0] for c in range(4001)])
+    along = np.array([streams.normal(keys[:1], c, 1, version=version)[0, 0] for c in range(4001)])
     assert abs(np.corrcoef(along[:-1], along[1:])[0, 1]) < bound(4000)
+
+
+@pytest.mark.parametrize("dim", [1, 2, 3, 4, 7])
+def test_normal_versions_are_the_box_muller_transform(dim):
+    # Box & Muller (1958): from independent uniforms u1, u2 in (0, 1], sqrt(-2 ln u1) cos(2 pi u2)
+    # and sqrt(-2 ln u1) sin(2 pi u2) are two independent standard normals. Version 1 keeps the
+    # cosine of `dim` pairs; version 2 both halves of ceil(dim / 2) pairs. Written out plainly here.
+    keys = streams.scenario_keys(5, 300)
+    u = streams.uniform(keys, 9, 2 * dim)
+    v1 = np.sqrt(-2.0 * np.log(u[:, :dim])) * np.cos(2.0 * np.pi * u[:, dim:])
+    np.testing.assert_array_equal(streams.normal(keys, 9, dim, version=1), v1)  # the draws recorded results used
+    h = (dim + 1) // 2
+    u = streams.uniform(keys, 9, 2 * h)
+    r = np.sqrt(-2.0 * np.log(u[:, :h]))
+    both = np.concatenate([r * np.cos(2.0 * np.pi * u[:, h:]), r * np.sin(2.0 * np.pi * u[:, h:])], axis=1)
+    np.testing.assert_array_equal(streams.normal(keys, 9, dim, version=2), both[:, :dim])
+
+
+def test_normal_version_2_pair_halves_are_independent():
+    # The two halves of a Box-Muller pair share their radius; they are still independent normals
+    # (Box & Muller 1958): uncorrelated, and their squares too (a shared radius would correlate those).
+    keys = streams.scenario_keys(6, 40_000)
+    z = streams.normal(keys, 0, 2, version=2)
+    assert abs(np.corrcoef(z[:, 0], z[:, 1])[0, 1]) < bound(len(keys))
+    # var(z^2) = 2 for a standard normal, so the sample correlation's standard error is still 1/sqrt(n)
+    assert abs(np.corrcoef(z[:, 0] ** 2, z[:, 1] ** 2)[0, 1]) < bound(len(keys))
+    # the radius alone is chi with 2 degrees of freedom (reference: scipy.stats.chi)
+    assert stats.kstest(np.hypot(z[:, 0], z[:, 1]), stats.chi(2).cdf).pvalue > 1e-3
+
+
+@pytest.mark.parametrize("bad", [0, 3, "2", 1.5, True, None])
+def test_unknown_stream_version_is_refused_in_one_line(bad):
+    keys = streams.scenario_keys(0, 3)
+    with pytest.raises(ValueError, match=r"^stream_version: .* not one of 1, 2$"):
+        streams.normal(keys, 0, 2, version=bad)
 
 
 def test_scenario_keys():
@@ -222,7 +260,8 @@ def test_scenario_in_a_batch_equals_it_alone_cartpole(noise):
         assert not np.array_equal(clean.trace["obs"], batch.trace["obs"])
 
 
-def test_scenario_in_a_batch_equals_it_alone_drone_pair_gusts():
+@pytest.mark.parametrize("version", streams.STREAM_VERSIONS)
+def test_scenario_in_a_batch_equals_it_alone_drone_pair_gusts(version):
     drone = make_physics("pretrial/DronePair-v0")
     mass, g, max_thrust = (drone.param_table[n].nominal for n in ("mass", "gravity", "max_thrust"))
     hover = 2.0 * mass * g / (2.0 * max_thrust) - 1.0  # two rotors carry m g: (a + 1) max_thrust / 2 = m g / 2
@@ -230,14 +269,36 @@ def test_scenario_in_a_batch_equals_it_alone_drone_pair_gusts():
     gains = np.zeros((2, 4, drone.obs_dim))
     gains[:, :, 1] = -0.05  # a little height feedback so that sensor noise matters
     policy = FeedbackPolicy(gains, np.full((2, 4), hover))
-    batch = run_episodes(drone, policy, sc, max_steps=150, record=True)
+    batch = run_episodes(drone, policy, sc, max_steps=150, record=True, stream_version=version)
     gust = batch.trace["state"][:, :, 16:18]
     assert np.std(gust) > 0.1  # the gust process is running
     assert not np.array_equal(gust[:, 0], gust[:, 1])  # and differs between scenarios
     np.testing.assert_array_equal(batch.returns[0], batch.returns[1])  # two identical policies, same draws
     for i in (0, 3, 4):
-        alone = run_episodes(drone, policy, sc.subset(slice(i, i + 1)), max_steps=150, record=True)
+        alone = run_episodes(drone, policy, sc.subset(slice(i, i + 1)), max_steps=150, record=True,
+                             stream_version=version)
         _assert_same_episode(batch, alone, i)
+
+
+def test_stream_version_changes_only_the_random_draws():
+    # Sensor noise and gusts are drawn from the version's normals; a scenario without them runs
+    # the same episode in every version, and one with them runs another draw of the same process.
+    drone = make_physics("pretrial/DronePair-v0")
+    sc = draw_scenarios(drone, 4, 8, ranges={"gust_std": (0.5, 2.0)},
+                        fixed={"sensor_noise_std": np.array([0.0, 0.02, 0.0, 0.02])})
+    sc.params[:2, drone.param_table.index("gust_std")] = 0.0  # rows 0: no randomness at all; 1: noise; 2, 3: gusts
+    policy = ConstantPolicy(1, drone.action_dim, 0.2)
+    runs = [run_episodes(drone, policy, sc, max_steps=60, record=True, stream_version=v)
+            for v in streams.STREAM_VERSIONS]
+    a, b = (r.trace["state"] for r in runs)
+    np.testing.assert_array_equal(a[:, 0], b[:, 0])
+    for row in (2, 3):
+        assert not np.array_equal(a[:, row], b[:, row])
+    oa, ob = (r.trace["obs"] for r in runs)
+    np.testing.assert_array_equal(oa[:, 0], ob[:, 0])
+    assert not np.array_equal(oa[:, 1], ob[:, 1])
+    with pytest.raises(ValueError, match=r"^stream_version: 3 not one of 1, 2$"):
+        run_episodes(drone, policy, sc, max_steps=5, stream_version=3)
 
 
 def test_dropping_finished_policies_changes_no_result():

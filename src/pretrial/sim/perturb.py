@@ -436,6 +436,9 @@ class Loop:
         (``sensor_bias.theta``); missing names take their nominal.
     keys : (n,) uint64 array
         Scenario keys for the random streams (see :mod:`pretrial.sim.streams`).
+    stream_version : int
+        Version of the normal draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`): 1, what results
+        recorded without a version were made with, unless the caller names another.
 
     Raises
     ------
@@ -450,8 +453,10 @@ class Loop:
     plant's ``transition(..., **loop.plant_inputs())``.
     """
 
-    def __init__(self, physics: Physics, values: Mapping[str, np.ndarray], keys: np.ndarray):
+    def __init__(self, physics: Physics, values: Mapping[str, np.ndarray], keys: np.ndarray,
+                 stream_version: int = 1):
         self.physics = physics
+        self.stream_version = streams.check_version(stream_version)
         n = len(keys)
         self.n = n
         self.keys = keys
@@ -553,7 +558,10 @@ class Loop:
         if not self._any_sensor:
             return obs
         counter = _STREAMS * step + _SENSOR_STREAM
-        out = obs + self.bias + self.noise_std * streams.normal(self.keys, counter, obs.shape[1])
+        noise = streams.normal(self.keys, counter, obs.shape[1], version=self.stream_version)
+        noise *= self.noise_std
+        out = obs + self.bias
+        out += noise  # (obs + bias) + noise_std n, without a third temporary
         if self._any_quantum:
             with np.errstate(over="ignore", invalid="ignore"):
                 rounded = np.round(out / self._safe_quantum) * self._safe_quantum
@@ -645,4 +653,5 @@ class Loop:
     def plant_noise(self, step: int) -> np.ndarray | None:
         """Standard normal draws for the plant's disturbance processes, or None."""
         k = self.physics.noise_dim
-        return streams.normal(self.keys, _STREAMS * step + _PLANT_STREAM, k) if k else None
+        return (streams.normal(self.keys, _STREAMS * step + _PLANT_STREAM, k, version=self.stream_version)
+                if k else None)

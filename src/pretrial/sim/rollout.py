@@ -150,6 +150,7 @@ def run_episodes(
     record: bool = False,
     score: bool = False,
     quality: QualityLimits | None = None,
+    stream_version: int = 1,
 ) -> Outcome:
     """Run every policy of ``policy`` on every scenario until all rows end.
 
@@ -172,13 +173,16 @@ def run_episodes(
         survived but chattered, saturated, kept growing, did not settle or kept
         an offset is a failure with that word (codes after the env's own words),
         and its score is 0 (on the line between passing and failing).
+    stream_version : int
+        Version of the sensor-noise and gust draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`);
+        1, the draws of results recorded without a version, unless the caller names another.
     """
     g, s = policy.n_policies, len(scenarios)
     rows = g * s
     params = np.asfortranarray(np.tile(scenarios.params, (g, 1)))  # contiguous parameter columns
     params.setflags(write=False)  # fixed for the run: plants may keep constants derived from it
     keys = np.tile(scenarios.keys, g)
-    loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys)
+    loop = Loop(physics, {k: np.tile(v, g) for k, v in scenarios.perturb.items()}, keys, stream_version)
     state = np.tile(scenarios.start, (g, 1))
     limit = physics.max_steps if max_steps is None else int(max_steps)
     # a plant that declares no limits (e.g. a plain gymnasium env) has no slack and may not map actions to forces

@@ -8,6 +8,19 @@ pure function of ``(scenario key, step, channel)``: a counter-based generator
 built from the splitmix64 finalizer (Steele, Lea & Flood 2014, "Fast
 splittable pseudorandom number generators") and the Box-Muller transform.
 Scenario keys themselves come from numpy's ``SeedSequence``.
+
+Normal draws come in stream versions (:data:`STREAM_VERSIONS`), and whoever
+creates a stream names its version, so that a recorded result replays with the
+draws it was made with:
+
+* version 1: draw ``j`` of ``dim`` is ``sqrt(-2 ln u_j) cos(2 pi u_{dim+j})``
+  from ``2 dim`` uniforms; the sine half of each Box-Muller pair is dropped;
+* version 2: both halves of each pair (Box & Muller 1958): from ``2 h``
+  uniforms, ``h = ceil(dim / 2)``, draw ``j < h`` is ``r_j cos(2 pi u_{h+j})``
+  and draw ``h + j`` is ``r_j sin(2 pi u_{h+j})`` with ``r_j = sqrt(-2 ln u_j)``:
+  half the uniforms, logarithms and square roots of version 1.
+
+Uniform draws are the same in every version.
 """
 
 from __future__ import annotations
@@ -37,17 +50,58 @@ def _mix(z: np.ndarray) -> np.ndarray:
 
 def uniform(keys: np.ndarray, counter: int, dim: int) -> np.ndarray:
     """Uniform draws in (0, 1], shape (len(keys), dim), for draw number ``counter``."""
+    return _uniform(keys, counter, dim, lanes_first=False)
+
+
+def _uniform(keys: np.ndarray, counter: int, dim: int, lanes_first: bool) -> np.ndarray:
+    # lane j of key i; lanes_first gives the transpose, (dim, len(keys)), whose lanes are contiguous
     with np.errstate(over="ignore"):
-        base = keys.astype(np.uint64)[:, None] + np.uint64(counter) * _STEP
-        lanes = (np.arange(1, dim + 1, dtype=np.uint64) * _GOLDEN)[None, :]
-        bits = _mix(base + lanes)
+        base = keys.astype(np.uint64) + np.uint64(counter) * _STEP
+        lanes = np.arange(1, dim + 1, dtype=np.uint64) * _GOLDEN
+        bits = _mix(base[None, :] + lanes[:, None] if lanes_first else base[:, None] + lanes[None, :])
     return ((bits >> np.uint64(11)).astype(np.float64) + 1.0) * _INV_2_53
 
 
-def normal(keys: np.ndarray, counter: int, dim: int) -> np.ndarray:
-    """Standard normal draws, shape (len(keys), dim), for draw number ``counter``."""
-    u = uniform(keys, counter, 2 * dim)
-    return np.sqrt(-2.0 * np.log(u[:, :dim])) * np.cos(_TWO_PI * u[:, dim:])
+#: the normal-draw stream versions (see the module docstring); 1 is what results recorded before versions used
+STREAM_VERSIONS = (1, 2)
+
+
+def check_version(version: object) -> int:
+    """``version`` as an int if it is one of :data:`STREAM_VERSIONS`, else a one-line ValueError."""
+    if isinstance(version, bool) or not isinstance(version, (int, np.integer)) or version not in STREAM_VERSIONS:
+        raise ValueError(f"stream_version: {version!r} not one of {', '.join(map(str, STREAM_VERSIONS))}")
+    return int(version)
+
+
+def normal(keys: np.ndarray, counter: int, dim: int, *, version: int) -> np.ndarray:
+    """Standard normal draws, shape (len(keys), dim), for draw number ``counter`` in stream ``version``."""
+    # The lanes of uniform(keys, counter, 2 h), drawn lane-major so that every step below runs over
+    # contiguous memory (row-major, each operation would loop over rows of h values); same floats.
+    if check_version(version) == 1:
+        u = _uniform(keys, counter, 2 * dim, lanes_first=True)
+        r = u[:dim]
+        np.log(r, out=r)
+        r *= -2.0
+        np.sqrt(r, out=r)  # sqrt(-2 ln u1)
+        angle = u[dim:]
+        angle *= _TWO_PI
+        np.cos(angle, out=angle)
+        r *= angle  # times cos(2 pi u2)
+        return np.ascontiguousarray(r.T)
+    half = (dim + 1) // 2
+    u = _uniform(keys, counter, 2 * half, lanes_first=True)
+    r = u[:half]
+    np.log(r, out=r)
+    r *= -2.0
+    np.sqrt(r, out=r)
+    angle = u[half:]
+    angle *= _TWO_PI
+    out = np.empty((2 * half, len(keys)))
+    np.cos(angle, out=out[:half])
+    np.sin(angle, out=out[half:])
+    out[:half] *= r
+    out[half:] *= r
+    return np.ascontiguousarray(out[:dim].T)
 
 
 #: draw number of the start-state draws (the control loop's counters, 2 per step, never reach it)
