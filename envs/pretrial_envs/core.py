@@ -859,7 +859,7 @@ def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: 
 # --------------------------------------------------------------------------- #
 # gymnasium front doors
 # --------------------------------------------------------------------------- #
-class _Renderer:
+class Renderer:
     """matplotlib renderer shared by the single and vector envs."""
 
     def __init__(self, physics: Physics, mode: str | None):
@@ -940,7 +940,7 @@ class PhysicsEnv(gym.Env):
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
         self.metadata = {**self.metadata, "render_fps": int(round(1.0 / self.physics.dt))}
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(1)
         self._steps = np.zeros(1, dtype=np.int64)
@@ -1053,7 +1053,7 @@ class PhysicsVectorEnv(VectorEnv):
         if render_mode is not None and render_mode not in self.metadata["render_modes"]:
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(self.num_envs)
         self._steps = np.zeros(self.num_envs, dtype=np.int64)

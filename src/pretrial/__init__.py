@@ -10,11 +10,10 @@ The Python API (numpydoc in :mod:`pretrial.api`; the README's "Python API" shows
 Each takes paths or loaded objects; bad input raises :class:`InputError` with a one-line message.
 """
 
-__version__ = "0.1.0"
-
 from pretrial.analysis.results import SweepResults
 from pretrial.api import Run, evolve, export_policy, load_policy, read_sweep, replay, sweep
 from pretrial.errors import FileFormatError, InputError, PretrialError
+from pretrial.version import __version__
 
 __all__ = [
     "FileFormatError",

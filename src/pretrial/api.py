@@ -79,8 +79,9 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
     Run
         The run directory and the summary; ``run.champion`` is the evolved policy.
     """
-    from pretrial.evolution.config import Config, load_config, with_overrides, with_plan
+    from pretrial.evolution.config import Config, load_config, with_overrides
     from pretrial.evolution.loop import Evolution
+    from pretrial.evolution.task import with_plan
     from pretrial.sim.execution import make_executor
 
     cfg = config if isinstance(config, Config) else load_config(config)

@@ -15,8 +15,9 @@ from scipy.stats import binomtest
 from pretrial.analysis import campaign as sweep
 from pretrial.analysis.linear import loop_report
 from pretrial.analysis.lqr import design_lqr
-from pretrial.analysis.plan import Z2, episodes_needed, load_plan
+from pretrial.analysis.plan import episodes_needed, load_plan
 from pretrial.analysis.results import read_results
+from pretrial.analysis.stats import Z2
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
 from pretrial.errors import InputError

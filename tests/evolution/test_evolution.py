@@ -28,7 +28,8 @@ from pretrial.cli.main import main
 from pretrial.controller.policy import load_policy, policy_from_genome
 from pretrial.evolution import checkpoint
 from pretrial.evolution.config import load_config
-from pretrial.evolution.loop import Evolution, _scenarios, make_task
+from pretrial.evolution.loop import Evolution
+from pretrial.evolution.task import make_task, training_scenarios
 from pretrial.sim.execution import Executor
 from pretrial.sim.rollout import draw_scenarios, run_episodes
 from pretrial_envs import ParamSpec, ParamTable, Physics
@@ -441,9 +442,9 @@ def test_randomize_ramp_widens_the_ranges_from_nominal(tmp_path):
     assert ramped.ranges(10) == ramped.ranges(None) == plain.ranges(3) == plain.randomize
     physics = ramped.physics()
     col = physics.param_table.index("cart_mass")
-    first = _scenarios(ramped, 6, 7, 1, 0, generation=0)
+    first = training_scenarios(ramped, 6, 7, 1, 0, generation=0)
     assert np.all(first.params[:, col] == 1.0) and np.all(first.perturb["sensor_noise_std"] == 0.0)
     # past the ramp a generation draws exactly what it would have drawn without one
-    late = [_scenarios(t, 6, 7, 1, 12, generation=12) for t in (ramped, plain)]
+    late = [training_scenarios(t, 6, 7, 1, 12, generation=12) for t in (ramped, plain)]
     assert np.array_equal(late[0].params, late[1].params)
     assert np.array_equal(late[0].perturb["sensor_noise_std"], late[1].perturb["sensor_noise_std"])

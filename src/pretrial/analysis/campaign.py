@@ -25,9 +25,9 @@ from typing import Any
 
 import numpy as np
 
-from pretrial.analysis.plan import Z2, Plan, Vary
+from pretrial.analysis.plan import MARGIN_BRACKET, Plan, Vary, unit_to_value
 from pretrial.analysis.samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
-from pretrial.evolution.plan_training import unit_to_value
+from pretrial.analysis.stats import derive_seed, wilson_interval
 from pretrial.sim import streams
 from pretrial.sim.execution import Executor
 from pretrial.sim.perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
@@ -43,27 +43,6 @@ WORST_LISTED = 10
 #: integrator check: changes above these flag a policy that exploits the solver (our thresholds)
 INTEGRATOR_RATE_TOLERANCE = 0.02
 INTEGRATOR_SCORE_TOLERANCE = 0.02
-
-
-def wilson_interval(successes: np.ndarray | int, n: np.ndarray | int) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson (1927) score interval at 95% for ``successes`` out of ``n``.
-
-    Returns (lower, upper); with all n succeeding the lower bound is n / (n + z^2).
-    """
-    k = np.asarray(successes, dtype=float)
-    n = np.asarray(n, dtype=float)
-    p = k / n
-    denom = 1.0 + Z2 / n
-    centre = (p + Z2 / (2 * n)) / denom
-    half = math.sqrt(Z2) * np.sqrt(p * (1 - p) / n + Z2 / (4 * n * n)) / denom
-    lo = np.where(k == 0, 0.0, centre - half)
-    hi = np.where(k == n, 1.0, centre + half)
-    return lo, hi
-
-
-def derive_seed(seed: int, *key: int) -> int:
-    """A 64-bit seed for one analysis of a plan (a pure function of the plan seed)."""
-    return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
 
 
 @dataclass
@@ -260,10 +239,6 @@ class _Search:
         return (v - self.start) / (self.end - self.start)
 
 
-#: outward bracketing steps, as fractions of the way from the nominal to the range end
-_BRACKET = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0)
-
-
 def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
     """One-at-a-time margins: bracket outward from nominal, then bisect to the plan's tolerance.
 
@@ -310,12 +285,12 @@ def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
         if not points[s.vary.name][s.start].passed:
             s.passed, s.failed, s.done = None, s.start, True  # fails at nominal: no margin
     # bracket: every search's outward points in one batch
-    run([(s.vary.name, s.at(f)) for s in searches if not s.done for f in _BRACKET])
+    run([(s.vary.name, s.at(f)) for s in searches if not s.done for f in MARGIN_BRACKET])
     for s in searches:
         if s.done:
             continue
         s.passed = s.start
-        for f in _BRACKET:
+        for f in MARGIN_BRACKET:
             p = points[s.vary.name][s.at(f)]
             if not p.passed:
                 s.failed = p.value
@@ -613,7 +588,7 @@ def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
 class _Drawn:
     """A varied name's distribution as ``scipy.stats.sobol_indices`` asks for one: its inverse CDF only.
 
-    The mapping is :func:`pretrial.evolution.plan_training.unit_to_value`, the one Monte Carlo and training use.
+    The mapping is :func:`pretrial.analysis.plan.unit_to_value`, the one Monte Carlo and training use.
     """
 
     vary: Vary
@@ -878,23 +853,3 @@ def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_
     return res, samples
 
 
-def planned_episodes(plan: Plan, physics: Physics) -> int:
-    """A rough count of the episodes a plan runs (for the progress bar)."""
-    b = plan.budgets
-    d = len(plan.vary)
-    n = 0
-    run = set(plan.analyses)
-    if "margins" in run:
-        rounds = len(_BRACKET) + max(1, math.ceil(math.log2(1 / (16 * b["tolerance"]))) + 1)
-        n += plan.episodes * d * (1 + 2 * rounds)
-    if "montecarlo" in run:
-        n += b["montecarlo_samples"]
-    if "worstcase" in run:
-        n += b["worstcase_episodes"] * b["worstcase_population"] * d * (b["worstcase_iterations"] + 1)
-    if "sensitivity" in run:
-        n += b["sensitivity_samples"] * (d + 2) * b["sensitivity_episodes"]
-    if "map" in run:
-        n += b["map_points"] ** 2 * b.get("map_episodes", plan.episodes)
-    if "integrator_check" in run:
-        n += 3 * plan.episodes
-    return max(n, 1)

@@ -152,9 +152,9 @@ def dispersion_toml(summary: dict[str, Any], bounds: dict[str, tuple[float, floa
 # --------------------------------------------------------------------------- #
 def _grid(rows: int, cols: int, size: tuple[float, float]):
     """A figure (the project's own, :func:`pretrial.report.plots._figure`) with a rows x cols grid of axes."""
-    from pretrial.report.plots import _figure
+    from pretrial.report.plots import new_figure
 
-    fig = _figure(*size)
+    fig = new_figure(*size)
     return fig, fig.subplots(rows, cols, squeeze=False)
 
 

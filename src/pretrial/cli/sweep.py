@@ -123,7 +123,7 @@ def print_results(results: dict[str, Any], out: Path) -> None:
 
 def _rate_text(rate: float, n: int) -> str:
     """``"97.50% (39 of 40; 95% interval 87.12% to 99.56%)"``: a rate with its Wilson interval."""
-    from pretrial.analysis.campaign import wilson_interval
+    from pretrial.analysis.stats import wilson_interval
 
     k = round(rate * n)  # the rates stored are k / n exactly
     lo, hi = wilson_interval(k, n)

@@ -324,9 +324,9 @@ def metric_summary(metric: EpisodeMetric) -> dict[str, Any]:
 def success_interval(successes: int, episodes: int) -> list[float]:
     """Wilson 95% interval [lo, hi] of ``successes`` of ``episodes``.
 
-    See :func:`~pretrial.analysis.campaign.wilson_interval`.
+    See :func:`~pretrial.analysis.stats.wilson_interval`.
     """
-    from pretrial.analysis.campaign import wilson_interval
+    from pretrial.analysis.stats import wilson_interval
 
     lo, hi = wilson_interval(successes, episodes)
     return [float(lo), float(hi)]

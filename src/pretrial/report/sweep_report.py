@@ -156,7 +156,7 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
                      f"from its {cal['replicates']} bootstrap replicates, so their correlations are kept")
     if results.get("content_sha256"):
         items.append(f"results content sha256 {results['content_sha256']}")
-    from pretrial.sim.perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated)
+    from pretrial.sim.perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated
 
     varied = [v.get("name") for v in ((plan.get("resolved") or {}).get("vary") or [])]
     items += [f"simulated: {note}" for note in simulation_notes(varied)]
