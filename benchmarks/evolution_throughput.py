@@ -11,7 +11,7 @@ carry a hidden node or more), each on the same number of episodes of at most
     per episode ``gymnasium.make("CartPole-v1")`` stepped one step at a time with
     ``action = 1 if net.activate(obs)[0] > 0 else 0`` until terminated or truncated;
 (b) pretrial: ``stack_genomes`` -> ``PopulationPolicy`` (``IOMap(4, 1)``) ->
-    ``pretrial.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
+    ``pretrial.sim.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
     gymnasium's (forward Euler, dt 0.02 s, one substep, 10 s, gravity 9.8,
     frictionless). Its action is the tanh output times ``max_force`` rather than
     a bang-bang push, so episode lengths differ a little between the paths.
@@ -32,7 +32,15 @@ survives long keeps all finished rows of (b) stepping, so a population of
 random genomes (most episodes over in ~15 steps) is (b)'s hardest case, and
 one whose genomes all balance for 500 steps its easiest.
 
-The last line is ``ratio: N``, (b) over (a) in useful env-steps per second.
+The same comparison is printed for 1 and ``--episodes`` episodes per genome,
+with (b) on gymnasium's physics and on pretrial's cart-pole defaults (RK4, 2
+substeps, Florian friction: 8 derivative evaluations per step against (a)'s
+one Euler step); (a) is gymnasium's CartPole-v1 in every row. Then (b)'s time
+per control step is split into a fixed part and a part per row (two batch
+sizes of 40 steps with no row ending): the fixed part is what small batches pay.
+
+The last line is ``ratio: N``, (b) over (a) in useful env-steps per second, for
+``--episodes`` episodes per genome on gymnasium's physics.
 Target: N >= 30; the product's bar (DESIGN.md) is 100.
 """
 
@@ -56,10 +64,10 @@ import gymnasium  # noqa: E402
 import neat  # noqa: E402
 import numpy as np  # noqa: E402
 
-from pretrial.config import neat_defaults  # noqa: E402
-from pretrial.network import stack_genomes  # noqa: E402
-from pretrial.policy import IOMap, PopulationPolicy  # noqa: E402
-from pretrial.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
+from pretrial.controller.network import stack_genomes  # noqa: E402
+from pretrial.controller.policy import IOMap, PopulationPolicy  # noqa: E402
+from pretrial.evolution.config import neat_defaults  # noqa: E402
+from pretrial.sim.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
 from pretrial_envs.cartpole import CartPolePhysics  # noqa: E402
 
 HORIZON = 500  # CartPole-v1's max_episode_steps; pretrial: 10 s at dt 0.02
@@ -118,24 +126,83 @@ def by_hand(genomes: list[Any], config: neat.Config, episodes: int, seed: int,
 
 
 def with_pretrial(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, episodes: int,
-                  seed: int) -> tuple[Outcome, float]:
-    """pretrial's batched evaluation of all genomes. Returns (outcome, seconds)."""
+                  seed: int, base_params: dict[str, float] | None = GYM_PARAMS) -> tuple[Outcome, float]:
+    """pretrial's batched evaluation of all genomes (physics overrides ``base_params``). Returns (outcome, seconds)."""
     t0 = time.perf_counter()
     policy = PopulationPolicy(stack_genomes(genomes, config), IOMap(4, 1))
-    scenarios = draw_scenarios(physics, episodes, seed, base_params=GYM_PARAMS)
+    scenarios = draw_scenarios(physics, episodes, seed, base_params=base_params)
     outcome = run_episodes(physics, policy, scenarios, max_steps=HORIZON)
     return outcome, time.perf_counter() - t0
+
+
+def per_step_costs(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, seed: int,
+                   steps: int = 40, scenarios: tuple[int, int] = (1, 16)) -> tuple[float, float]:
+    """(b)'s time per control step split into a fixed part and a part per row: (seconds, seconds per row).
+
+    Runs the population for ``steps`` control periods on two batch sizes (``len(genomes)``
+    times each of ``scenarios``) with gravity and force at 0, so that no row ends and every step
+    carries the whole batch; the straight line through the two per-step times gives both parts.
+    """
+    still = {**GYM_PARAMS, "gravity": 0.0, "max_force": 0.0}
+    policy = PopulationPolicy(stack_genomes(genomes, config), IOMap(4, 1))
+    per_step = []
+    for s in scenarios:
+        batch = draw_scenarios(physics, s, seed, base_params=still)
+        run_episodes(physics, policy, batch, max_steps=steps)  # warm-up
+        times = []
+        for _ in range(5):
+            t0 = time.perf_counter()
+            out = run_episodes(physics, policy, batch, max_steps=steps)
+            times.append(time.perf_counter() - t0)
+        if int(out.steps.min()) != steps:
+            raise RuntimeError("per_step_costs: a row ended early, the split would be wrong")
+        per_step.append(min(times) / steps)
+    rows = [len(genomes) * s for s in scenarios]
+    per_row = (per_step[1] - per_step[0]) / (rows[1] - rows[0])
+    return per_step[0] - per_row * rows[0], per_row
+
+
+def compare(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, base: dict[str, float] | None,
+            episodes: int, seed: int, hand: tuple[int, float, float, int], repeats: int, label: str,
+            detail: bool) -> float:
+    """(b) beside the already-timed hand loop ``hand``; prints a summary, returns the ratio of useful steps/s."""
+    g = len(genomes)
+    with_pretrial(genomes, config, physics, episodes, seed, base)  # warm-up: first-call allocations and caches
+    runs = [with_pretrial(genomes, config, physics, episodes, seed, base) for _ in range(max(1, repeats))]
+    outcome = runs[0][0]
+    t_b = statistics.median(t for _, t in runs)
+    useful_b = int(outcome.steps.sum())
+    computed_b = outcome.steps.size * int(outcome.steps.max())  # every row is stepped until the last one ends
+    steps_a, t_a, setup_a, done_a = hand
+    rate_a = steps_a / t_a
+    rate_b = useful_b / t_b
+    if detail:
+        rate_a_no_setup = steps_a / (t_a - setup_a)
+        print(f"(a) by hand, neat-python + gymnasium: {done_a} of {g} genomes, {done_a * episodes} episodes, "
+              f"{steps_a:,} steps (mean {steps_a / (done_a * episodes):.1f} per episode) in {t_a:.3f} s")
+        print(f"    {rate_a:12,.0f} env-steps/s   ({setup_a / t_a:.0%} of the time in gymnasium.make + reset; "
+              f"without it {rate_a_no_setup:,.0f} env-steps/s)")
+        print(f"(b) pretrial run_episodes, one core, {label}: {g} genomes, {g * episodes} episodes, "
+              f"{useful_b:,} useful steps (mean {useful_b / (g * episodes):.1f} per episode, "
+              f"{outcome.success.mean():.0%} reach the horizon) in {t_b:.4f} s (median of {len(runs)})")
+        print(f"    {rate_b:12,.0f} env-steps/s useful")
+        print(f"    {computed_b / t_b:12,.0f} row-steps/s computed ({computed_b:,} row-steps, "
+              f"{useful_b / computed_b:.0%} of them useful)")
+        print(f"ratio without make + reset in (a): {rate_b / rate_a_no_setup:.1f}")
+    return rate_b / rate_a
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--genomes", type=int, default=150, help="population size (default 150)")
-    ap.add_argument("--episodes", type=int, default=16, help="episodes per genome (default 16)")
+    ap.add_argument("--episodes", type=int, default=16, help="episodes per genome of the last line (default 16)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--mutations", type=int, default=30, help="mutation rounds applied to the new population")
     ap.add_argument("--hand-seconds", type=float, default=30.0,
                     help="time budget of the hand-written loop; past it, (a) stops after the current genome")
-    ap.add_argument("--repeats", type=int, default=3, help="timed runs of (b); the median is reported")
+    ap.add_argument("--repeats", type=int, default=5, help="timed runs of (b); the median is reported")
+    ap.add_argument("--hand-repeats", type=int, default=3,
+                    help="timed runs of (a) per episode count; the one with the median rate is used")
     ap.add_argument("--profile", action="store_true", help="print cProfile's top entries for (b)")
     args = ap.parse_args()
 
@@ -143,44 +210,44 @@ def main() -> None:
     genomes = make_genomes(config, args.seed, args.mutations)
     hidden = [sum(1 for k in g.nodes if k not in config.genome_config.output_keys) for g in genomes]
     enabled = [sum(1 for c in g.connections.values() if c.enabled) for g in genomes]
-    physics = CartPolePhysics(integrator="euler", dt=0.02, substeps=1, time_limit=10.0)
+    gym_physics = CartPolePhysics(integrator="euler", dt=0.02, substeps=1, time_limit=10.0)
+    default_physics = CartPolePhysics(time_limit=10.0)
+    plants = (("gymnasium's physics", gym_physics, GYM_PARAMS),
+              (f"pretrial's defaults ({default_physics.integrator}, {default_physics.substeps} substeps, friction)",
+               default_physics, None))
     g, e = len(genomes), args.episodes
     print(f"{g} genomes (hidden nodes: mean {np.mean(hidden):.1f}, max {max(hidden)}; enabled connections: "
-          f"mean {np.mean(enabled):.1f}) x {e} episodes, horizon {HORIZON} steps, cart-pole euler dt 0.02")
+          f"mean {np.mean(enabled):.1f}), horizon {HORIZON} steps; (a) is gymnasium's CartPole-v1 throughout")
 
-    with_pretrial(genomes, config, physics, e, args.seed)  # warm-up: first-call allocations and caches
-    runs = [with_pretrial(genomes, config, physics, e, args.seed) for _ in range(max(1, args.repeats))]
-    outcome = runs[0][0]
-    t_b = statistics.median(t for _, t in runs)
-    useful_b = int(outcome.steps.sum())
-    computed_b = outcome.steps.size * int(outcome.steps.max())  # every row is stepped until the last one ends
+    ratios: dict[tuple[str, int], float] = {}
+    for episodes in sorted({1, e}):
+        hands = [by_hand(genomes, config, episodes, args.seed, args.hand_seconds)
+                 for _ in range(max(1, args.hand_repeats))]
+        hand = sorted(hands, key=lambda h: h[0] / h[1])[len(hands) // 2]
+        for label, physics, base in plants:
+            detail = episodes == e and physics is gym_physics
+            if detail:
+                print()
+            ratios[label, episodes] = compare(genomes, config, physics, base, episodes, args.seed, hand,
+                                              args.repeats, label, detail)
 
-    steps_a, t_a, setup_a, done_a = by_hand(genomes, config, e, args.seed, args.hand_seconds)
-    rate_a = steps_a / t_a
-    rate_a_no_setup = steps_a / (t_a - setup_a)
-    rate_b = useful_b / t_b
-
-    print(f"\n(a) by hand, neat-python + gymnasium: {done_a} of {g} genomes, {done_a * e} episodes, "
-          f"{steps_a:,} steps (mean {steps_a / (done_a * e):.1f} per episode) in {t_a:.2f} s")
-    print(f"    {rate_a:12,.0f} env-steps/s   ({setup_a / t_a:.0%} of the time in gymnasium.make + reset; "
-          f"without it {rate_a_no_setup:,.0f} env-steps/s)")
-    print(f"(b) pretrial run_episodes, one core: {g} genomes, {g * e} episodes, {useful_b:,} useful steps "
-          f"(mean {useful_b / (g * e):.1f} per episode, {outcome.success.mean():.0%} reach the horizon) "
-          f"in {t_b:.3f} s (median of {len(runs)})")
-    print(f"    {rate_b:12,.0f} env-steps/s useful")
-    print(f"    {computed_b / t_b:12,.0f} row-steps/s computed ({computed_b:,} row-steps, "
-          f"{useful_b / computed_b:.0%} of them useful)")
-    print(f"ratio without make + reset in (a): {rate_b / rate_a_no_setup:.1f}")
+    print("\nratio of useful env-steps/s, (b) over (a), by plant set-up and episodes per genome:")
+    for (label, episodes), r in ratios.items():
+        print(f"  {label}, {episodes:2d} episode{'s' if episodes > 1 else ' '} per genome: {r:6.1f}")
+    print("\n(b) per control step with no row ending (40 steps at 150 and 2,400 rows):")
+    for label, physics, _ in plants:
+        fixed, per_row = per_step_costs(genomes, config, physics, args.seed, scenarios=(1, 16))
+        print(f"  {label}: {fixed * 1e6:6.1f} us per step + {per_row * 1e9:6.1f} ns per row")
 
     if args.profile:
         prof = cProfile.Profile()
         prof.enable()
-        with_pretrial(genomes, config, physics, e, args.seed)
+        with_pretrial(genomes, config, gym_physics, e, args.seed)
         prof.disable()
         print("\n(b) profile, top entries by own time:")
         pstats.Stats(prof).sort_stats("tottime").print_stats(15)
 
-    print(f"ratio: {rate_b / rate_a:.1f}")
+    print(f"ratio: {ratios[plants[0][0], e]:.1f}")
 
 
 if __name__ == "__main__":

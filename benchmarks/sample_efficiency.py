@@ -36,9 +36,9 @@ import tempfile
 import time
 from pathlib import Path
 
-from pretrial.config import load_config
-from pretrial.evolution import Evolution
-from pretrial.execution import make_executor
+from pretrial.evolution.config import load_config
+from pretrial.evolution.loop import Evolution
+from pretrial.sim.execution import make_executor
 
 PAPER_MEAN = 3600  # Stanley & Miikkulainen 2002, double pole balancing with velocities
 CRITERIA = ("our criterion differs from the paper's: the paper balanced 100,000 steps; ours is the config's "

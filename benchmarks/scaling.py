@@ -35,16 +35,16 @@ import tempfile
 import time
 from pathlib import Path
 
-from pretrial.config import load_config
-from pretrial.evolution import Evolution
-from pretrial.execution import Executor, ProcessExecutor
+from pretrial.evolution.config import load_config
+from pretrial.evolution.loop import Evolution
+from pretrial.sim.execution import Executor, ProcessExecutor
 
 WORKERS = 2
 
 
 def _warm(_item: int) -> int:
     """Import the evaluation code in a worker; the short nap lets every worker take an item."""
-    import pretrial.evolution  # noqa: F401
+    import pretrial.evolution.loop  # noqa: F401
 
     time.sleep(0.2)
     return os.getpid()

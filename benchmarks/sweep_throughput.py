@@ -52,9 +52,9 @@ import neat  # noqa: E402
 import numpy as np  # noqa: E402
 from neat.genes import DefaultConnectionGene, DefaultNodeGene  # noqa: E402
 
-from pretrial.config import neat_defaults  # noqa: E402
-from pretrial.policy import IOMap, Policy, policy_from_genome  # noqa: E402
-from pretrial.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
+from pretrial.controller.policy import IOMap, Policy, policy_from_genome  # noqa: E402
+from pretrial.evolution.config import neat_defaults  # noqa: E402
+from pretrial.sim.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
 from pretrial_envs.cartpole import CartPolePhysics  # noqa: E402
 
 ENV_ID = "pretrial/CartPole-v0"

@@ -37,7 +37,7 @@ CONFIGS = ("cartpole", "gantry", "double-pole", "drone-pair", "drone-pair-wide")
 
 def _plan_for(name: str) -> Path:
     sys.path.insert(0, str(ROOT / "src"))
-    from pretrial.cli import plan_beside
+    from pretrial.evolution.config import plan_beside
 
     plan = plan_beside(str(ROOT / "configs" / f"{name}.toml"), name)
     if plan is None:

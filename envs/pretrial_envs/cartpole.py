@@ -186,7 +186,6 @@ class CartPolePhysics(Physics):
         self.obs_scale = tuple(_OBS_SCALE[n] for n in self.obs_names)
         super().__init__(**kwargs)
         self._col = {name: i for i, name in enumerate(self.param_table.names)}
-        self._const_cache: tuple[Array | None, tuple[Any, ...]] = (None, ())
 
     def regulated(self) -> dict[str, tuple[str, float]]:
         """Cart position and pole angles, held at 0: bands 0.1 m and 0.05 rad (about 3 degrees).
@@ -197,29 +196,20 @@ class CartPolePhysics(Physics):
         """
         return {"x": ("m", 0.1), **{n: ("rad", 0.05) for n in self.state_names[2::2]}}
 
-    def __getstate__(self) -> dict[str, Any]:
-        state = self.__dict__.copy()
-        state["_const_cache"] = (None, ())  # a cache, not configuration: never pickled
-        return state
-
     def _one_pole_constants(self, params: Array) -> tuple[Array, Array, Array, bool, bool]:
         """``(M + m, m l, (M + m) g, any cart friction, any pivot friction)`` for ``params`` (N, P).
 
-        Kept while the same read-only array that owns its data comes back: the rollout engine and
-        the vector env pass one such array every step, so these are formed once per batch instead
-        of at every derivative evaluation (4 per RK4 step).
+        Formed once per batch (:meth:`~pretrial_envs.core.Physics.batch_constants`).
         """
-        key, values = self._const_cache
-        if key is params:
-            return values  # type: ignore[return-value]
         c = self._col
-        m = params[:, c["pole_mass"]]
-        total = params[:, c["cart_mass"]] + m
-        values = (total, m * params[:, c["pole_half_length"]], total * params[:, c["gravity"]],
-                  bool(params[:, c["cart_friction"]].any()), bool(params[:, c["pole_friction"]].any()))
-        if not params.flags.writeable and params.base is None:
-            self._const_cache = (params, values)
-        return values
+
+        def build(params: Array) -> tuple[Array, Array, Array, bool, bool]:
+            m = params[:, c["pole_mass"]]
+            total = params[:, c["cart_mass"]] + m
+            return (total, m * params[:, c["pole_half_length"]], total * params[:, c["gravity"]],
+                    bool(params[:, c["cart_friction"]].any()), bool(params[:, c["pole_friction"]].any()))
+
+        return self.batch_constants(params, build)
 
     def options(self) -> dict[str, Any]:
         return {"poles": self.poles, "observe": self.observe_mode, **super().options()}

@@ -513,6 +513,28 @@ class Physics:
         """Column ``name`` of ``params`` (N, P) as an (N,) view."""
         return params[:, self.param_table.index(name)]
 
+    def batch_constants(self, params: Array, build: Callable[[Array], Any]) -> Any:
+        """``build(params)``, kept while the same read-only array that owns its data comes back.
+
+        The rollout engine and the vector env pass one such array every step, so
+        values derived from the parameters alone (sums of masses, which loss terms
+        are on) are formed once per batch instead of at every derivative
+        evaluation (4 per RK4 substep). Any other array is built afresh each call.
+        A plant uses one ``build`` per instance.
+        """
+        cached = self.__dict__.get("_batch_constants")
+        if cached is not None and cached[0] is params:
+            return cached[1]
+        values = build(params)
+        if not params.flags.writeable and params.base is None:
+            self.__dict__["_batch_constants"] = (params, values)
+        return values
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = self.__dict__.copy()
+        state.pop("_batch_constants", None)  # a cache, not configuration: never pickled
+        return state
+
     # ----------------------------------------------------------- to implement
     def derivatives(self, state: Array, force: Array, params: Array) -> Array:
         """Time derivative of ``state`` (N, S) under ``force`` (N, A) in physical units."""
@@ -886,7 +908,7 @@ def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: 
 # --------------------------------------------------------------------------- #
 # gymnasium front doors
 # --------------------------------------------------------------------------- #
-class _Renderer:
+class Renderer:
     """matplotlib renderer shared by the single and vector envs."""
 
     def __init__(self, physics: Physics, mode: str | None):
@@ -967,7 +989,7 @@ class PhysicsEnv(gym.Env):
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
         self.metadata = {**self.metadata, "render_fps": int(round(1.0 / self.physics.dt))}
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(1)
         self._steps = np.zeros(1, dtype=np.int64)
@@ -1080,7 +1102,7 @@ class PhysicsVectorEnv(VectorEnv):
         if render_mode is not None and render_mode not in self.metadata["render_modes"]:
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(self.num_envs)
         self._steps = np.zeros(self.num_envs, dtype=np.int64)

@@ -185,7 +185,8 @@ class GantryPhysics(Physics):
         return {**super().options(), "hoist": self.hoist}
 
     # ----------------------------------------------------------- dynamics
-    def _solve(self, state: Array, force: Array, params: Array) -> tuple[Array, Array, Array | None, Array]:
+    def _solve(self, state: Array, force: Array, params: Array,
+               need_tension: bool = True) -> tuple[Array, Array, Array | None, Array | None]:
         """Accelerations ``x'', phi'', l''`` (None without hoist) and the tension the motion requires.
 
         With the hoist on, the required tension is the one that realises the
@@ -193,17 +194,30 @@ class GantryPhysics(Physics):
         ``0 <= T <= max_hoist_force``, and the motion is solved with the
         tension clipped to that range. A negative required tension (the rope
         would have to push) is reported by :meth:`check` as ``slack_rope``.
+        Without the hoist the tension is None unless ``need_tension``.
         """
+        # In-place arithmetic into a few buffers: on small batches every numpy call and every fresh
+        # temporary costs more than its arithmetic. Each line computes the closed-form expression
+        # of the module docstring in the same order (a + b, a * b equal b + a, b * a), so the
+        # results are the same floats as the plain expressions (tests/test_gantry.py checks it).
         c_ = self._col
         p = params
+
+        def build(p: Array) -> tuple[Array, Array, bool, bool]:
+            big_m, m = p[:, c_["trolley_mass"]], p[:, c_["load_mass"]]
+            coulomb = p[:, c_["trolley_coulomb"]] * (big_m + m)
+            coulomb *= p[:, c_["gravity"]]
+            return (coulomb, -p[:, c_["rope_damping"]], bool(p[:, c_["trolley_coulomb"]].any()),
+                    bool(p[:, c_["load_drag"]].any()))
+
+        coulomb, neg_damping, any_coulomb, any_drag = self.batch_constants(params, build)
         g = p[:, c_["gravity"]]
         big_m = p[:, c_["trolley_mass"]]
         m = p[:, c_["load_mass"]]
         xd = state[:, 1]
-        phi = state[:, 2]
         w = state[:, 3]
-        s = np.sin(phi)
-        c = np.cos(phi)
+        s = np.sin(state[:, 2])
+        c = np.cos(state[:, 2])
         if self.hoist:
             ln = state[:, 4]
             ld = state[:, 5]
@@ -212,66 +226,114 @@ class GantryPhysics(Physics):
             ld = None
 
         # trolley friction: viscous + Coulomb with tanh-smoothed sign
-        mu = p[:, c_["trolley_coulomb"]]
-        f_net = force[:, 0] - p[:, c_["trolley_friction"]] * xd
-        if mu.any():
-            f_net = f_net - mu * (big_m + m) * g * np.tanh(xd / COULOMB_SMOOTHING_SPEED)
+        f_net = p[:, c_["trolley_friction"]] * xd
+        np.subtract(force[:, 0], f_net, out=f_net)
+        if any_coulomb:
+            t = xd / COULOMB_SMOOTHING_SPEED
+            np.tanh(t, out=t)
+            t *= coulomb
+            f_net -= t
         # pivot damping torque -rope_damping * phi_dot, seen by the load as a tangential force
-        q = -p[:, c_["rope_damping"]] * w / ln
+        q = neg_damping * w
+        q /= ln
 
         # quadratic drag on the load velocity relative to the wind
-        k = p[:, c_["load_drag"]]
-        if k.any():
+        f_r = None
+        f_t = q
+        if any_drag:
             lw = ln * w
-            vx = xd + lw * c - p[:, c_["wind_speed"]]
-            vy = lw * s
+            vx = lw * c
+            vx += xd
+            vx -= p[:, c_["wind_speed"]]
+            vy = lw
+            vy *= s
             if ld is not None:
-                vx = vx + ld * s
-                vy = vy - ld * c
-            kv = k * np.sqrt(vx * vx + vy * vy)
-            fx = -kv * vx
-            fy = -kv * vy
-            f_r = fx * s - fy * c
-            f_t = q + fx * c + fy * s
-        else:
-            f_r = 0.0
-            f_t = q
+                t = ld * s
+                vx += t
+                np.multiply(ld, c, out=t)
+                vy -= t
+            kv = vx * vx
+            t = vy * vy
+            kv += t
+            np.sqrt(kv, out=kv)
+            kv *= p[:, c_["load_drag"]]
+            np.negative(kv, out=kv)
+            fx = vx
+            fx *= kv
+            fy = vy
+            fy *= kv
+            f_r = fx * s
+            np.multiply(fy, c, out=t)
+            f_r -= t
+            f_t = fx * c
+            f_t += q
+            np.multiply(fy, s, out=t)
+            f_t += t
 
-        denom = big_m + m * s * s
-        base = g * c + ln * w * w
+        ms = m * s
+        denom = ms * s
+        denom += big_m
+        base = ln * w
+        base *= w
+        t = g * c
+        base += t
         if ld is None:
-            big_k = m * base + f_r
-            xdd = (f_net - q * c + s * big_k) / denom
-            tension = big_k - m * s * xdd
-            phidd = (f_t / m - g * s - xdd * c) / ln
-            return xdd, phidd, None, tension
-
-        # hoist: first-order speed loop towards the commanded rope speed,
-        # which the slow-down zones limit near the rope-length limits
-        tau = p[:, c_["hoist_time_constant"]]
-        stop = HOIST_STOP_TIME_CONSTANTS * tau
-        v_ref = np.clip(
-            force[:, 1], (p[:, c_["min_rope_length"]] - ln) / stop, (p[:, c_["max_rope_length"]] - ln) / stop
-        )
-        ldd = (v_ref - ld) / tau
-        big_k = m * (base - ldd) + f_r
-        xdd = (f_net - q * c + s * big_k) / denom
-        tension = big_k - m * s * xdd
-        held = np.clip(tension, 0.0, p[:, c_["max_hoist_force"]])
-        sat = held != tension
-        if sat.any():
-            # the drive is at a tension limit: the tension is known, the rope acceleration is not
-            xdd_s = (f_net + held * s - q * c) / big_m
-            xdd = np.where(sat, xdd_s, xdd)
-            ldd = np.where(sat, base - xdd_s * s + (f_r - held) / m, ldd)
-        phidd = (f_t / m - g * s - xdd * c - 2.0 * ld * w) / ln
+            big_k = m * base
+            ldd = None
+        else:
+            # hoist: first-order speed loop towards the commanded rope speed,
+            # which the slow-down zones limit near the rope-length limits
+            tau = p[:, c_["hoist_time_constant"]]
+            stop = HOIST_STOP_TIME_CONSTANTS * tau
+            v_ref = np.clip(
+                force[:, 1], (p[:, c_["min_rope_length"]] - ln) / stop, (p[:, c_["max_rope_length"]] - ln) / stop
+            )
+            ldd = np.subtract(v_ref, ld, out=v_ref)
+            ldd /= tau
+            big_k = base - ldd
+            big_k *= m
+        if f_r is not None:  # without drag f_r is 0 and m (...) + 0.0 is the same float
+            big_k += f_r
+        xdd = q * c
+        np.subtract(f_net, xdd, out=xdd)
+        np.multiply(s, big_k, out=t)
+        xdd += t
+        xdd /= denom
+        tension = None
+        if need_tension or ld is not None:
+            tension = ms * xdd
+            np.subtract(big_k, tension, out=tension)
+        if ld is not None:
+            held = np.clip(tension, 0.0, p[:, c_["max_hoist_force"]])
+            sat = held != tension
+            if sat.any():
+                # the drive is at a tension limit: the tension is known, the rope acceleration is not
+                xdd_s = (f_net + held * s - q * c) / big_m
+                xdd = np.where(sat, xdd_s, xdd)
+                ldd = np.where(sat, base - xdd_s * s + ((0.0 if f_r is None else f_r) - held) / m, ldd)
+        phidd = f_t / m
+        np.multiply(g, s, out=t)
+        phidd -= t
+        np.multiply(xdd, c, out=t)
+        phidd -= t
+        if ld is not None:
+            np.multiply(2.0, ld, out=t)
+            t *= w
+            phidd -= t
+        phidd /= ln
         return xdd, phidd, ldd, tension
 
     def derivatives(self, state: Array, force: Array, params: Array) -> Array:
-        xdd, phidd, ldd, _ = self._solve(state, force, params)
-        if ldd is None:
-            return np.stack((state[:, 1], xdd, state[:, 3], phidd), axis=1)
-        return np.stack((state[:, 1], xdd, state[:, 3], phidd, state[:, 5], ldd), axis=1)
+        xdd, phidd, ldd, _ = self._solve(state, force, params, need_tension=False)
+        out = np.empty_like(state)
+        out[:, 0] = state[:, 1]
+        out[:, 1] = xdd
+        out[:, 2] = state[:, 3]
+        out[:, 3] = phidd
+        if ldd is not None:
+            out[:, 4] = state[:, 5]
+            out[:, 5] = ldd
+        return out
 
     def rope_tension(self, state: Array, force: Array, params: Array) -> Array:
         """Rope tension (N) the motion requires at ``state`` under ``force``, shape (N,).

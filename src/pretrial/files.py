@@ -1,4 +1,8 @@
-"""Atomic file writes and content hashes: no reader ever sees half a file."""
+"""Output files and directories: atomic writes, content hashes, and the checks made before any work.
+
+No reader ever sees half a file; a command refuses an output it could not write (or would
+replace) before it starts, and builds a directory in a hidden sibling renamed into place.
+"""
 
 from __future__ import annotations
 
@@ -8,10 +12,13 @@ import os
 import re
 import secrets
 import shutil
+import tempfile
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from .errors import PretrialError
+from pretrial.errors import InputError, PretrialError
 
 #: Free space an output directory must have before a command starts writing into it. Measured: a checkpoint
 #: holds about 0.5 kB per genome (10 kB for 20 small genomes), so a 150-genome run checkpointed 20 times stays
@@ -140,3 +147,72 @@ def check_writable_dir(path: str | Path, min_free: int = MIN_FREE_BYTES, label: 
     """Fail before any work starts if ``path`` cannot be created or written, or the disk is (nearly) full."""
     check_creatable(path, label)
     check_free_space(path, min_free)
+
+
+@contextmanager
+def staged(out: Path) -> Iterator[Path]:
+    """A hidden sibling of ``out`` (``.NAME.partial-*``) to write an output directory into.
+
+    The caller renames it into place when everything is written (:func:`move_into_place`); on
+    any error or Ctrl-C before that it is removed, so no partial directory is ever left behind
+    (only ``kill -9`` can leave the hidden one).
+    """
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        tmp.chmod(0o777 & ~_umask())  # mkdtemp makes it 0700; the output follows the umask like mkdir
+        yield tmp
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)  # gone already once renamed into place
+
+
+def _umask() -> int:
+    """The process umask (read by setting it, then restoring it at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def move_into_place(stage: Path, out: Path) -> None:
+    """Rename the finished ``stage`` (:func:`staged`) to ``out``, which is absent or an empty directory."""
+    if out.exists():
+        out.rmdir()  # empty (checked before the work started)
+    os.replace(stage, out)
+
+
+def check_new_dir(out: Path, label: str = "--out") -> None:
+    """Refuse, before any work, an output directory that exists with content or cannot be written."""
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        what = "a file" if not out.is_dir() else "a directory that is not empty"
+        raise InputError(f"{label} {out}: is {what}; choose a new directory (nothing is overwritten)")
+    check_writable_dir(out, label=f"{label} {out}")  # found out now, not after the work
+
+
+def same_file(a: Path, b: Path) -> bool:
+    """Whether two paths name one file: the same path once symlinks are resolved, or the same inode (a hard link)."""
+    if a.resolve() == b.resolve():
+        return True
+    try:
+        return a.samefile(b)
+    except OSError:  # one of them does not exist
+        return False
+
+
+def check_output_file(path: str, flag: str, inputs: Sequence[Path] = (), force: bool = False) -> None:
+    """Refuse, before any work, an output path that cannot be written or would replace a file.
+
+    An input (the policy, the plan) is never replaced; another existing file only with ``force``.
+    """
+    p = Path(path)
+    for source in inputs:
+        if same_file(p, source):
+            raise InputError(f"{flag} {path}: is an input of this command ({source}); write the output elsewhere")
+    if p.is_dir():
+        raise InputError(f"{flag} {path}: is a directory")
+    if (p.exists() or p.is_symlink()) and not force:
+        raise InputError(f"{flag} {path}: already exists; pick another name or add --force to replace it")
+    parent = p.parent if str(p.parent) else Path(".")
+    if not parent.is_dir():
+        raise InputError(f"{flag} {path}: directory {parent} does not exist")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise InputError(f"{flag} {path}: directory {parent} is not writable")

@@ -1,0 +1,371 @@
+"""``pretrial replay``: run a controller on chosen conditions, measure what it does, show it.
+
+A replay runs K episodes of one controller (a policy file, a run directory's
+champion, or the LQR baseline) on the plant with named settings applied
+(:func:`pretrial.sim.perturb.apply_settings`), records every step and reports the
+outcome and the task metrics (:meth:`pretrial_envs.core.Physics.episode_metrics`).
+
+Episodes are those of a sweep: the K episodes of seed N are
+``draw_scenarios(physics, K, N, base_params=..., fixed=...)``, so a sample of a
+sweep report replays by copying its command line. ``--start`` replaces every
+episode's start state.
+"""
+
+from __future__ import annotations
+
+import shlex
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pretrial.console import CAUTIONS
+from pretrial.errors import InputError
+from pretrial.limits import RECORDED_STEPS, REPLAY_EPISODES, check_total
+from pretrial.sim.perturb import Setup, apply_settings
+from pretrial.sim.plant import build_plant, env_id_of
+from pretrial.sim.quality import QualityLimits, quality_metrics
+from pretrial.sim.rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
+from pretrial_envs.core import EpisodeMetric, Physics
+
+#: replay records every step of every episode; beyond this many, a sweep is the tool
+MAX_EPISODES = REPLAY_EPISODES.high
+
+LQR = "lqr"
+
+
+@dataclass
+class Replay:
+    """A finished replay: what ran, on what, and what happened.
+
+    Attributes
+    ----------
+    policy_label : str
+        The POLICY argument as given (a path) or ``"lqr"``.
+    policy_hash : str or None
+        SHA-256 of the policy file's content (None for the LQR baseline).
+    env_id : str
+    setup : Setup
+        Plant, parameters and perturbations in force.
+    seed : int
+    scenarios : Scenarios
+    outcome : Outcome
+        With the recorded trace.
+    metrics : dict of str to EpisodeMetric
+    start : list of float or None
+        The ``--start`` state, if one was given.
+    start_text : str or None
+        The ``--start`` text as given (for the reproducing command).
+    files : dict of str to str
+        Output kind (``csv``, ``plot``, ``gif``, ``mp4``) -> path written.
+    """
+
+    policy_label: str
+    policy_hash: str | None
+    env_id: str
+    setup: Setup
+    seed: int
+    scenarios: Scenarios
+    outcome: Outcome
+    metrics: dict[str, EpisodeMetric]
+    start: list[float] | None = None
+    start_text: str | None = None
+    files: dict[str, str] = field(default_factory=dict)
+    plan: str | None = None
+
+    @property
+    def physics(self) -> Physics:
+        return self.setup.physics
+
+    @property
+    def episodes(self) -> int:
+        return len(self.scenarios)
+
+    def failure_words(self) -> list[str]:
+        """Per episode: ``""`` for a success, else the failure word."""
+        out = self.outcome
+        return ["" if s else out.failure_words[c] for s, c in zip(out.success[0], out.failure[0])]
+
+    def command(self, env: bool = True) -> str:
+        """The command line that reproduces this replay (without file outputs)."""
+        words = ["pretrial", "replay", self.policy_label]
+        if self.plan:
+            words += ["--plan", self.plan]
+        if env:
+            words += ["--env", self.env_id]
+        for k, v in self.setup.settings.items():
+            words += ["--set", f"{k}={v!r}"]
+        words += ["--episodes", str(self.episodes), "--seed", str(self.seed)]
+        if self.start_text is not None:
+            words += ["--start", self.start_text]
+        return shlex.join(words)
+
+
+# --------------------------------------------------------------------------- #
+# what to run
+# --------------------------------------------------------------------------- #
+
+
+def check_settings(physics: Physics, base: dict[str, float], settings: dict[str, Any]) -> Setup:
+    try:
+        return apply_settings(physics, base_params=base, settings=settings)
+    except ValueError as exc:
+        raise InputError(f"--set {exc}") from None
+
+
+def lqr_policy(setup: Setup) -> BatchPolicy:
+    """The LQR baseline for ``setup.physics``, designed on the nominal plant.
+
+    The design knows the task's own settings (role ``"task"``: targets,
+    tolerances, limits of the task rule), which a controller is told, but not
+    what ``--set`` changes in the plant or the loop: like a controller tuned
+    before the trial, it meets the perturbation unprepared.
+    """
+    try:
+        from pretrial.analysis.lqr import design_lqr
+    except ImportError:
+        raise InputError("lqr: the LQR baseline is not available in this installation") from None
+    table_ = setup.physics.param_table
+    told = {k: v for k, v in setup.params.items() if k in table_ and table_[k].role == "task"}
+    try:
+        return design_lqr(setup.physics, params=told or None)
+    except ValueError as exc:
+        raise InputError(f"lqr: {exc}") from None
+
+
+def prepare(policy_arg: str, env: str | None, settings: dict[str, Any], policy: Any = None
+            ) -> tuple[BatchPolicy, Setup, str, str | None]:
+    """Controller, plant setup, env id and policy hash for a POLICY argument and ``--env``/``--set``.
+
+    Raises
+    ------
+    InputError
+        ``lqr`` without ``--env``; a policy that does not fit the named env
+        (naming both); an unknown setting or value; an unreadable policy.
+
+    ``policy``, when given, is the loaded policy (``policy_arg`` then only labels it).
+    """
+    if policy_arg == LQR:
+        if env is None:
+            raise InputError("lqr: name the environment with --env (e.g. --env CartPole-v0)")
+        env_id = env_id_of(env)
+        setup = check_settings(build_plant(env_id), {}, settings)
+        return lqr_policy(setup), setup, env_id, None
+    from pretrial.controller.policy import open_policy
+
+    policy = open_policy(policy_arg) if policy is None else policy
+    env_id = policy.env_id if env is None else env_id_of(env)
+    if env_id == policy.env_id:
+        physics, base = build_plant(env_id, dict(policy.env_options)), dict(policy.env_params)
+    else:
+        physics, base = build_plant(env_id), {}
+        sizes = (physics.obs_dim, physics.action_dim)
+        if sizes != (policy.io.obs_dim, policy.io.action_dim):
+            raise InputError(
+                f"--env {env_id}: has {sizes[0]} observations and {sizes[1]} actions, but the policy "
+                f"{policy_arg} (trained on {policy.env_id}) takes {policy.io.obs_dim} and gives {policy.io.action_dim}"
+            )
+    return policy, check_settings(physics, base, settings), env_id, policy.content_hash
+
+
+def parse_start(text: str, physics: Physics, params: np.ndarray) -> np.ndarray:
+    """Start states (K, S) from ``--start``: S numbers in state order, or ``name=value`` pairs.
+
+    Names not given take the env's start centre for each episode's parameters.
+    """
+    names = physics.state_names
+    valid = f"valid: {', '.join(names)}"
+    items = [t.strip() for t in text.split(",")]
+    start = physics.start_center(params).astype(float)
+    if not any("=" in t for t in items):
+        if len(items) != len(names):
+            raise InputError(f"--start {text!r}: expected {len(names)} numbers in state order ({valid}), "
+                             f"got {len(items)}")
+        values = [_number(t, text, valid) for t in items]
+        start[:] = values
+        return start
+    for item in items:
+        name, sep, value = item.partition("=")
+        name = name.strip()
+        if not sep:
+            raise InputError(f"--start {text!r}: {item!r} is not name=value (use all numbers or all name=value; "
+                             f"{valid})")
+        if name not in names:
+            raise InputError(f"--start {text!r}: unknown state {name!r}; {valid}")
+        start[:, names.index(name)] = _number(value, text, valid)
+    return start
+
+
+def _number(item: str, text: str, valid: str) -> float:
+    try:
+        v = float(item)
+    except ValueError:
+        raise InputError(f"--start {text!r}: {item.strip()!r} is not a number ({valid})") from None
+    if not np.isfinite(v):
+        raise InputError(f"--start {text!r}: {item.strip()!r} is not a finite number ({valid})")
+    return v
+
+
+def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: int = 0, start: str | None = None,
+               policy_label: str = "", env_id: str = "", policy_hash: str | None = None,
+               max_steps: int | None = None, quality: QualityLimits | None = None) -> Replay:
+    """Run and measure ``episodes`` recorded episodes of seed ``seed`` (all in one batch).
+
+    Parameters
+    ----------
+    policy : BatchPolicy
+        One controller (``n_policies == 1``).
+    setup : Setup
+        From :func:`pretrial.sim.perturb.apply_settings`.
+    episodes, seed : int
+        The episodes are ``draw_scenarios(setup.physics, episodes, seed, ...)``.
+    start : str, optional
+        ``--start`` text: replaces every episode's start state.
+    max_steps : int, optional
+        Episode length in control periods (default: the env's time limit; a plan's horizon).
+    quality : QualityLimits, optional
+        Loop-quality limits an episode must also meet to succeed (a plan's, or
+        the defaults); None judges survival only.
+    """
+    try:
+        episodes = REPLAY_EPISODES.check(episodes, "--episodes")
+        periods = setup.physics.max_steps if max_steps is None else int(max_steps)
+        check_total("replay", [(episodes, "episodes"), (periods, "control periods")], RECORDED_STEPS)
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
+    physics = setup.physics
+    scenarios = draw_scenarios(physics, int(episodes), int(seed), base_params=setup.params, fixed=setup.perturb)
+    start_state = None
+    if start is not None:
+        scenarios.start = parse_start(start, physics, scenarios.params)
+        start_state = scenarios.start[0].tolist()
+    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality)
+    trace = outcome.trace
+    metrics = physics.episode_metrics(trace["state"], trace["action"], scenarios.params, outcome.steps[0])
+    if outcome.quality is not None:
+        metrics.update(quality_metrics(physics, outcome.quality))
+    return Replay(policy_label, policy_hash, env_id or physics.env_id, setup, int(seed), scenarios, outcome, metrics,
+                  start_state, start)
+
+
+def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: str | Path | None = None,
+           settings: dict[str, Any] | None = None, episodes: int = 1, seed: int = 0,
+           start: str | None = None) -> Replay:
+    """Replay a controller: ``episodes`` recorded episodes of seed ``seed`` under named settings.
+
+    Parameters
+    ----------
+    policy : path-like, ``"lqr"`` or Policy
+        A policy file, a run directory (its champion), the LQR baseline (needs ``env`` or ``plan``),
+        or a loaded :class:`~pretrial.controller.policy.Policy`.
+    env : str, optional
+        Environment id (full or short, gymnasium, or ``module:id``); must fit the policy.
+    plan : path-like, optional
+        Run under a sweep plan's scenario (env options, params, start ranges, horizon, quality
+        limits, LQR weights), as a sweep report's replay commands do.
+    settings : dict, optional
+        Physics parameters, generic perturbations or ``control_period_s`` by name.
+    episodes, seed : int
+        The same episodes a sweep draws for that seed.
+    start : str, optional
+        An exact start state (numbers in state order, or ``name=value`` pairs).
+
+    Returns
+    -------
+    Replay
+        With the recorded trace, the outcome and the task and loop-quality metrics.
+    """
+    settings = dict(settings or {})
+    label = policy if isinstance(policy, str) else str(policy) if isinstance(policy, Path) else "<in-memory policy>"
+    loaded = None if isinstance(policy, (str, Path)) else policy
+    max_steps = None
+    quality = QualityLimits()
+    if plan is not None:
+        from pretrial.analysis.sweep import controlled
+
+        ctl = controlled(str(policy) if loaded is None else label, str(plan), env, policy=loaded)
+        controller, env_id, digest = ctl.controller, ctl.env_id, ctl.policy_hash
+        setup = check_settings(ctl.physics, ctl.base_params, settings)
+        if ctl.plan is not None:
+            quality = ctl.plan.quality
+            if ctl.plan.horizon is not None:
+                max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
+    else:
+        controller, setup, env_id, digest = prepare(str(policy) if loaded is None else label, env, settings,
+                                                    policy=loaded)
+    rep = run_replay(controller, setup, episodes=episodes, seed=seed, start=start, policy_label=label, env_id=env_id,
+                     policy_hash=digest, max_steps=max_steps, quality=quality)
+    rep.plan = None if plan is None else str(plan)
+    return rep
+
+
+# --------------------------------------------------------------------------- #
+# summary
+# --------------------------------------------------------------------------- #
+def metric_summary(metric: EpisodeMetric) -> dict[str, Any]:
+    """Mean over the finite values, the worst value, min, max, and the count of infinite ones ("never")."""
+    v = np.asarray(metric.values, dtype=float)
+    finite = v[np.isfinite(v)]
+    worst = float(v.max() if metric.worst == "max" else v.min()) if v.size else None
+    return {
+        "mean": float(finite.mean()) if finite.size else None,
+        "worst": worst,
+        "worst_is": metric.worst,
+        "min": float(v.min()) if v.size else None,
+        "max": float(v.max()) if v.size else None,
+        "never": int(np.isinf(v).sum()),
+        "unit": metric.unit,
+        "meaning": metric.meaning,
+        "per_episode": v.tolist(),
+    }
+
+
+def success_interval(successes: int, episodes: int) -> list[float]:
+    """Wilson 95% interval [lo, hi] of ``successes`` of ``episodes``.
+
+    See :func:`~pretrial.analysis.stats.wilson_interval`.
+    """
+    from pretrial.analysis.stats import wilson_interval
+
+    lo, hi = wilson_interval(successes, episodes)
+    return [float(lo), float(hi)]
+
+
+def summary(rep: Replay) -> dict[str, Any]:
+    """The JSON document of a replay (infinities become null: "never")."""
+    out = rep.outcome
+    returns = out.returns[0]
+    physics = rep.physics
+    return {
+        "policy": rep.policy_label,
+        "policy_sha256": rep.policy_hash,
+        "env": rep.env_id,
+        "env_options": physics.options(),
+        "settings": dict(rep.setup.settings),
+        "seed": rep.seed,
+        "episodes": rep.episodes,
+        "start": rep.start,
+        "control_period_s": physics.dt,
+        "success_rate": float(out.success.mean()),
+        "success_ci95": success_interval(int(out.success.sum()), rep.episodes),
+        "successes": int(out.success.sum()),
+        "failure_modes": out.failure_counts(),
+        "returns": returns.tolist(),
+        "return": {"mean": float(returns.mean()), "min": float(returns.min()), "max": float(returns.max())},
+        "success": out.success[0].tolist(),
+        "failure": rep.failure_words(),
+        "steps": out.steps[0].tolist(),
+        "duration_s": (out.steps[0] * physics.dt).tolist(),
+        "metrics": {name: metric_summary(m) for name, m in rep.metrics.items()},
+        "command": rep.command(),
+        "files": dict(rep.files),
+        "cautions": list(CAUTIONS),
+    }
+
+
+# --------------------------------------------------------------------------- #
+# command line
+# --------------------------------------------------------------------------- #
+
+
