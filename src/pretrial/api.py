@@ -172,6 +172,73 @@ def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike 
                episodes=episodes, seed=seed, start=start)
 
 
+@dataclass
+class Calibration:
+    """A finished calibration.
+
+    Attributes
+    ----------
+    directory : Path
+        The calibration directory (``calibration.json``, ``params.toml``, ``dispersion.toml``, plots,
+        ``report.md``, and ``residual.json`` when a residual was fitted).
+    summary : dict
+        ``calibration.json``: estimates with bootstrap std and 95% intervals, fit and validation errors,
+        identifiability flags, the bootstrap set.
+    """
+
+    directory: Path
+    summary: dict[str, Any]
+
+    @property
+    def estimates(self) -> dict[str, float]:
+        """Each fitted name's estimate, in its unit."""
+        return {n: float(v["estimate"]) for n, v in self.summary["params"].items()}
+
+    @property
+    def intervals(self) -> dict[str, tuple[float, float]]:
+        """Each fitted name's bootstrap 95% interval (it covers noise, not model error)."""
+        return {n: (float(v["ci95"][0]), float(v["ci95"][1])) for n, v in self.summary["params"].items()}
+
+
+def calibrate(logs: Sequence[PathLike], env: str, fit: Sequence[str], *, out: PathLike | None = None,
+              options: Mapping[str, Any] | None = None, fixed: Mapping[str, Any] | None = None,
+              guess: Mapping[str, Any] | None = None, window: float = 0.5, bootstrap: int = 100, seed: int = 0,
+              validate: Sequence[PathLike] = (), holdout: float = 0.2, residual: bool = False,
+              residual_degree: int = 2, residual_margin: float = 0.1) -> Calibration:
+    """Estimate plant parameters from bench logs, with block-bootstrap uncertainty (as ``pretrial calibrate``).
+
+    Parameters
+    ----------
+    logs : sequence of path-like
+        CSV logs: ``t``, the env's states by name, its actions.
+    env : str
+        Environment id.
+    fit : sequence of str
+        Physics parameters (or ``actuator_gain``, ``actuator_lag_s``, ``actuator_delay_s``) to estimate.
+    out : path-like, optional
+        A new calibration directory (default ``calibrations/<env>-<UTC time>``).
+    options, fixed, guess : mapping, optional
+        Env options; values held fixed; where the fit of a name starts.
+    window, bootstrap, seed, validate, holdout
+        Multiple-shooting window (s), bootstrap replicates and seed, held-out logs or share.
+    residual, residual_degree, residual_margin
+        Also fit a residual of the derivatives the physics misses, and its trust region.
+
+    Returns
+    -------
+    Calibration
+    """
+    from pretrial.calibration.calibrate import CalibrationRequest, run_calibration
+
+    req = CalibrationRequest(env=env, logs=[os.fspath(p) for p in logs], fit=list(fit), options=dict(options or {}),
+                             fixed=dict(fixed or {}), guess=dict(guess or {}), window=window, bootstrap=bootstrap,
+                             seed=seed, validate=[os.fspath(p) for p in validate], holdout=holdout,
+                             out=None if out is None else os.fspath(out), residual=residual,
+                             residual_degree=residual_degree, residual_margin=residual_margin)
+    summary, directory = run_calibration(req)
+    return Calibration(directory, summary)
+
+
 def load_policy(path: PathLike) -> Policy:
     """Read a policy file or a run directory's champion (schema and content hash checked)."""
     from pretrial.controller.policy import open_policy
