@@ -126,8 +126,9 @@ def test_calibrate_function_equals_the_command(tmp_path, capsys):
     logs = [ROOT / "configs" / "bench" / "run1.csv", ROOT / "configs" / "bench" / "run2.csv"]
     names = ["cart_mass", "pole_mass", "pole_half_length"]
     cal = pretrial.calibrate(logs, "CartPole-v0", names, fixed={"gravity": 9.81}, bootstrap=0, out=tmp_path / "api")
-    assert main(["calibrate", *map(str, logs), "--env", "CartPole-v0", "--set", "gravity=9.81", "--fit", ",".join(names),
-                 "--bootstrap", "0", "--out", str(tmp_path / "cli"), "--json"]) == 0
+    argv = ["calibrate", *map(str, logs), "--env", "CartPole-v0", "--set", "gravity=9.81", "--fit", ",".join(names),
+            "--bootstrap", "0", "--out", str(tmp_path / "cli"), "--json"]
+    assert main(argv) == 0
     doc = json.loads(capsys.readouterr().out)
     assert cal.summary["content_sha256"] == doc["content_sha256"]  # the same file, byte for byte
     assert (tmp_path / "api" / "calibration.json").read_bytes() == (tmp_path / "cli" / "calibration.json").read_bytes()
