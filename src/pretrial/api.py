@@ -56,7 +56,8 @@ class Run:
 
 def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: PathLike | None = None,
            seed: int | None = None, generations: int | None = None, workers: int | str | None = None,
-           dask: str | None = None, resume: bool = False, log: Callable[[str], None] | None = None) -> Run:
+           dask: str | None = None, resume: bool = False, log: Callable[[str], None] | None = None,
+           reporters: Sequence[Any] = ()) -> Run:
     """Evolve a controller with NEAT from a run config.
 
     Parameters
@@ -73,6 +74,9 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
         Continue the run in ``out`` from its last checkpoint.
     log : callable, optional
         Receives one line per generation and the closing lines (default: nothing).
+    reporters : sequence of Reporter, optional
+        Observers of the run (subclasses of :class:`pretrial.evolution.reporters.Reporter`), e.g. to
+        collect each generation's row as it finishes.
 
     Returns
     -------
@@ -93,7 +97,8 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
     run_dir = Path(out) if out is not None else \
         Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
     with make_executor(cfg.run.workers, cfg.run.dask) as executor:
-        evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"])
+        evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"],
+                        reporters=reporters)
         if resume:
             evo.resume()
         else:

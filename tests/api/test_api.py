@@ -134,3 +134,22 @@ def test_calibrate_function_equals_the_command(tmp_path, capsys):
     assert (tmp_path / "api" / "calibration.json").read_bytes() == (tmp_path / "cli" / "calibration.json").read_bytes()
     assert cal.estimates == {n: v["estimate"] for n, v in doc["params"].items()}
     assert set(cal.intervals) == set(names)
+
+
+def test_evolve_reports_each_generation_to_an_observer(tmp_path):
+    from pretrial.evolution.reporters import Reporter
+
+    class Rows(Reporter):
+        def __init__(self):
+            self.rows = []
+
+        def generation_done(self, row, seconds, eta_s, best_success):
+            self.rows.append(row)
+
+    rows = Rows()
+    run = pretrial.evolve(ROOT / "configs" / "cartpole.toml", generations=2, workers=1, out=tmp_path / "run",
+                          reporters=[rows])
+    assert [r["generation"] for r in rows.rows] == [0, 1]
+    history = (tmp_path / "run" / "history.csv").read_text().splitlines()
+    assert len(history) == 3 and history[1].startswith("0,")  # the rows the observer saw are the run's history
+    assert run.champion.content_hash == pretrial.load_policy(tmp_path / "run").content_hash

@@ -37,6 +37,7 @@ from pretrial.errors import InputError, PretrialError
 from pretrial.evolution import checkpoint
 from pretrial.evolution.config import Config, build_neat_ini, check_budget, neat_generation_zero
 from pretrial.evolution.plan_training import linear_shortfall, short_verdict
+from pretrial.evolution.reporters import LineReporter, Reporter, ReporterSet, WarningReporter
 from pretrial.evolution.rundir import (
     HISTORY_FIELDS,
     RESUME_MAY_CHANGE,
@@ -60,7 +61,6 @@ from pretrial.evolution.task import (
     training_scenarios,
 )
 from pretrial.files import atomic_write_text, check_writable_dir, write_json
-from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
 from pretrial.sim.execution import Executor
 from pretrial.sim.perturb import describe_values, diverged_warning
@@ -108,17 +108,20 @@ class Evolution:
     command_line : sequence of str
         The words the run was started with (recorded in the manifest).
     warn : callable, optional
-        Receives warnings (default: stderr), e.g. episodes that diverged.
+        Receives warnings (default: the ``pretrial`` logger), e.g. episodes that diverged.
+    reporters : sequence of Reporter, optional
+        More observers of the run (:mod:`pretrial.evolution.reporters`), told after the line and
+        warning reporters that ``log`` and ``warn`` make.
     """
 
     def __init__(self, cfg: Config, run_dir: Path, executor: Executor, log: Callable[[str], None] = print,
-                 command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None):
+                 command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None,
+                 reporters: Sequence[Reporter] = ()):
         self.cfg = cfg
-        self.warn = warn or log_warning
+        self.reporters = ReporterSet([LineReporter(log), WarningReporter(warn), *reporters])
         self._warnings = 0
         self.run_dir = run_dir
         self.executor = executor
-        self.log = log
         self.command_line = list(command_line)
         #: (plan, physics, options, params) when training against a plan
         self._plan = load_training_plan(cfg) if cfg.task.plan is not None else None
@@ -223,7 +226,7 @@ class Evolution:
         self._timing_rows = timing_rows
         # the checkpoint loaded and only settings a resume may change differ: record them (e.g. more generations)
         atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
-        self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
+        self.reporters.note(f"resumed {self.run_dir} at generation {self.state.generation}")
 
     def _check_same_config(self) -> None:
         """Refuse to continue a run under settings that would change its results (seed, task, [neat], ...)."""
@@ -267,11 +270,10 @@ class Evolution:
             self._warnings += 1
             if self._warnings > _DIVERGED_WARNINGS:
                 if self._warnings == _DIVERGED_WARNINGS + 1:
-                    self.warn("pretrial: warning: more generations with diverged episodes; not shown again this "
-                              "session")
+                    self.reporters.warning("more generations with diverged episodes; not shown again this session")
                 return
             label = f"generation {self.state.generation if self.state is not None else 0}"
-        self.warn(diverged_warning(int(diverged.sum()), f"{where} ({len(rows)} scenarios)",
+        self.reporters.warning(diverged_warning(int(diverged.sum()), f"{where} ({len(rows)} scenarios)",
                                    n_genomes * len(scenarios), label))
 
     def run(self, generations: int) -> dict[str, Any]:
@@ -345,7 +347,7 @@ class Evolution:
                 self._report(row, generations, reached, target)
         except KeyboardInterrupt:
             # Interrupted while evaluating: checkpointed above. Elsewhere: the last checkpoint stands.
-            self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
+            self.reporters.note(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
         except InputError:
             raise  # the settings, not the machine: resuming would fail the same way
@@ -396,15 +398,10 @@ class Evolution:
     def _report(self, row: dict[str, Any], generations: int, reached: bool, target: float | None) -> None:
         done = row["generation"] + 1
         mean_t = float(np.mean(self.timing[-5:]))
-        eta = "" if reached else f"  eta {_clock(mean_t * max(0, generations - done))}"
-        self.log(
-            f"gen {row['generation']:4d}  best {row['best']:10.4g} ({self._best_success:4.0%} ok)  "
-            f"mean {row['mean']:10.4g}  "
-            f"species {row['species']:3d}  size {row['best_nodes']}n/{row['best_connections']}c  "
-            f"evals {row['evaluations']:8d}  {self.timing[-1]:6.2f} s/gen{eta}"
-        )
-        if reached:
-            self.log(f"fitness target {target:g} reached at generation {row['generation']}")
+        eta = None if reached else mean_t * max(0, generations - done)
+        self.reporters.generation_done(row, self.timing[-1], eta, self._best_success)
+        if reached and target is not None:
+            self.reporters.target_reached(target, row["generation"])
 
     # ------------------------------------------------------------ files
     def save_checkpoint(self) -> None:
@@ -525,12 +522,5 @@ class Evolution:
 # --------------------------------------------------------------------------- #
 # the run directory read back on --resume: each file checked, one line naming it
 # --------------------------------------------------------------------------- #
-
-
-def _clock(seconds: float) -> str:
-    seconds = int(round(seconds))
-    h, rem = divmod(seconds, 3600)
-    m, s = divmod(rem, 60)
-    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
 
 
