@@ -341,3 +341,10 @@ def test_policy_file_with_baseline(capsys, tmp_path):
     assert base["montecarlo"] != res["montecarlo"]  # a different controller, its own results
     if res["montecarlo"]["worst"]:
         assert res["montecarlo"]["worst"][0]["replay"].startswith(f"pretrial replay {policy}")
+
+
+def test_every_analysis_a_plan_may_name_has_a_runner():
+    from pretrial.analysis.campaign import RUNNERS
+    from pretrial.analysis.plan import ANALYSES
+
+    assert set(RUNNERS) == set(ANALYSES)

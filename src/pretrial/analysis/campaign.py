@@ -793,60 +793,71 @@ _CALIBRATION_DRAWS = 7
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 
+@dataclass
+class _Outputs:
+    """Where the analyses put what they find: the results part, and the Monte Carlo histograms and files."""
+
+    res: dict[str, Any]
+    say: Callable[[str], None] | None
+    samples_csv: Path | None
+    scratch: Path | None
+    samples: SampleHistograms | None = None
+
+
+def _linear(c: Campaign, _seed: int, out: _Outputs) -> None:
+    out.res["linear"], out.res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
+
+
+def _linear_sampled(c: Campaign, _seed: int, out: _Outputs) -> None:
+    out.res["linear_sampled"], out.res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
+
+
+def _integrator(c: Campaign, seed: int, out: _Outputs) -> None:
+    if "substeps" not in c.physics.options():  # a plain gymnasium env integrates itself: no step to refine
+        why = f"{c.physics.env_id} integrates its own equations; pretrial cannot refine its step or change its method"
+        out.res["skipped"] = {"integrator_check": why}
+        if out.say is not None:
+            out.say(f"  integrator_check skipped: {why}")
+        return
+    out.res["integrator_check"] = integrator_check(c, seed)
+
+
+def _montecarlo(c: Campaign, seed: int, out: _Outputs) -> None:
+    out.res["montecarlo"], out.samples = montecarlo(c, seed, out.samples_csv, out.scratch)
+
+
+#: what runs each analysis a plan may name (:data:`pretrial.analysis.plan.ANALYSES`), in the order they run
+RUNNERS: dict[str, Callable[[Campaign, int, _Outputs], None]] = {
+    "linear": _linear,
+    "linear_sampled": _linear_sampled,
+    "integrator_check": _integrator,
+    "margins": lambda c, seed, out: out.res.__setitem__("margins", margins(c, seed)),
+    "montecarlo": _montecarlo,
+    "worstcase": lambda c, seed, out: out.res.__setitem__("worstcase", worstcase(c, seed)),
+    "sensitivity": lambda c, seed, out: out.res.__setitem__("sensitivity", sensitivity(c, seed)),
+    "map": lambda c, seed, out: out.res.__setitem__("success_map", success_map(c, seed)),
+}
+
+
 def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_csv: Path | None = None,
                  scratch: Path | None = None) -> tuple[dict[str, Any], SampleHistograms | None]:
-    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo histograms).
+    """Every analysis the plan names (:data:`RUNNERS`), on one controller; returns (results part, histograms).
 
     ``say`` receives one line as each analysis starts (progress where no bar can be drawn);
     ``samples_csv`` and ``scratch`` are :func:`montecarlo`'s ``csv_path`` and ``scratch``.
     """
     plan = c.plan
-    run = set(plan.analyses)
-    order = [a for a in ("linear", "linear_sampled", "integrator_check", "margins", "montecarlo", "worstcase",
-                         "sensitivity", "map") if a in run]
-
-    def starting(name: str) -> None:
-        if say is not None:
-            say(f"  [{order.index(name) + 1}/{len(order)}] {name}")
-
+    order = [a for a in RUNNERS if a in set(plan.analyses)]
     res: dict[str, Any] = {k: None for k in ("margins", "montecarlo", "worstcase", "sensitivity", "success_map",
                                              "linear", "linear_sampled", "linear_details", "integrator_check")}
-    samples = None
-
-    def seed(name: str) -> int:
-        return derive_seed(plan.seed, _SEED_KEYS[name])
-
-    if "linear" in run or "linear_sampled" in run:
+    if "linear" in order or "linear_sampled" in order:
         res["linear_details"] = {"continuous": None, "sampled": None}
-    if "linear" in run:
-        starting("linear")
-        res["linear"], res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
-    if "linear_sampled" in run:
-        starting("linear_sampled")
-        res["linear_sampled"], res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
-    if "integrator_check" in run and "substeps" not in c.physics.options():
-        # a plain gymnasium env integrates itself: there is no step to refine
-        res["skipped"] = {"integrator_check": f"{c.physics.env_id} integrates its own equations; pretrial cannot "
-                                              "refine its step or change its method"}
-        say and say(f"  integrator_check skipped: {res['skipped']['integrator_check']}")
-    elif "integrator_check" in run:
-        starting("integrator_check")
-        res["integrator_check"] = integrator_check(c, seed("integrator_check"))
-    if "margins" in run:
-        starting("margins")
-        res["margins"] = margins(c, seed("margins"))
-    if "montecarlo" in run:
-        starting("montecarlo")
-        res["montecarlo"], samples = montecarlo(c, seed("montecarlo"), samples_csv, scratch)
-    if "worstcase" in run:
-        starting("worstcase")
-        res["worstcase"] = worstcase(c, seed("worstcase"))
-    if "sensitivity" in run:
-        starting("sensitivity")
-        res["sensitivity"] = sensitivity(c, seed("sensitivity"))
-    if "map" in run:
-        starting("map")
-        res["success_map"] = success_map(c, seed("map"))
+    out = _Outputs(res, say, samples_csv, scratch)
+    for k, name in enumerate(order):
+        if say is not None and not (name == "integrator_check" and "substeps" not in c.physics.options()):
+            say(f"  [{k + 1}/{len(order)}] {name}")
+        RUNNERS[name](c, derive_seed(plan.seed, _SEED_KEYS.get(name, 0)), out)  # the linear ones draw nothing
+    samples = out.samples
     res["diverged"] = c.diverged()
     res["requirements"] = requirements(plan, res)
     res["verdict"] = verdict(res["requirements"])
