@@ -8,8 +8,10 @@ Library code never prints: progress goes to an optional ``log`` callable, warnin
 from __future__ import annotations
 
 import os
+import re
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -21,6 +23,25 @@ if TYPE_CHECKING:
     from pretrial.playback.replay import Replay
 
 PathLike = str | os.PathLike[str]
+
+#: command-line flags in shared error messages -> the API's keyword for the same input
+_KEYWORDS = {"--set": "settings", "--option": "options", "--safe-action": "safe_action", "--residual-degree":
+             "residual_degree", "--residual-margin": "residual_margin"}
+_FLAG = re.compile(r"--([a-z][a-z-]*)")
+
+
+@contextmanager
+def _in_api_words() -> Iterator[None]:
+    """Re-raise an InputError with its command-line flags named as this API's keywords (``--set`` -> ``settings``)."""
+    from pretrial.errors import PretrialError
+
+    try:
+        yield
+    except PretrialError as exc:
+        text = _FLAG.sub(lambda m: _KEYWORDS.get(m.group(0), m.group(1).replace("-", "_")), exc.message)
+        if text == exc.message:
+            raise
+        raise type(exc)(text) from None
 
 
 @dataclass
@@ -83,28 +104,29 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
     Run
         The run directory and the summary; ``run.champion`` is the evolved policy.
     """
-    from pretrial.evolution.config import Config, load_config, with_overrides
-    from pretrial.evolution.loop import Evolution
-    from pretrial.evolution.task import with_plan
-    from pretrial.sim.execution import make_executor
+    with _in_api_words():
+        from pretrial.evolution.config import Config, load_config, with_overrides
+        from pretrial.evolution.loop import Evolution
+        from pretrial.evolution.task import with_plan
+        from pretrial.sim.execution import make_executor
 
-    cfg = config if isinstance(config, Config) else load_config(config)
-    if plan is not None:
-        cfg = with_plan(cfg, plan, label="plan")
-    cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask)
-    if resume and out is None:
-        raise ValueError("resume=True needs out= (the run directory to continue)")
-    run_dir = Path(out) if out is not None else \
-        Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
-    with make_executor(cfg.run.workers, cfg.run.dask) as executor:
-        evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"],
-                        reporters=reporters)
-        if resume:
-            evo.resume()
-        else:
-            evo.create()
-        summary = evo.run(cfg.run.generations)
-    return Run(run_dir, summary)
+        cfg = config if isinstance(config, Config) else load_config(config)
+        if plan is not None:
+            cfg = with_plan(cfg, plan, label="plan")
+        cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask)
+        if resume and out is None:
+            raise ValueError("resume=True needs out= (the run directory to continue)")
+        run_dir = Path(out) if out is not None else \
+            Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
+        with make_executor(cfg.run.workers, cfg.run.dask) as executor:
+            evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"],
+                            reporters=reporters)
+            if resume:
+                evo.resume()
+            else:
+                evo.create()
+            summary = evo.run(cfg.run.generations)
+        return Run(run_dir, summary)
 
 
 def sweep(policy: PathLike | Policy, plan: PathLike, *, out: PathLike | None = None, baseline: bool = False,
@@ -134,12 +156,13 @@ def sweep(policy: PathLike | Policy, plan: PathLike, *, out: PathLike | None = N
         The verdict (``.passed``, ``.verdict``, ``.failing``), every requirement and the whole
         ``results.json`` document (``.doc``); ``.directory`` holds the report.
     """
-    from pretrial.analysis.sweep import run_sweep
+    with _in_api_words():
+        from pretrial.analysis.sweep import run_sweep
 
-    policy_arg = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
-    results, _files = run_sweep(policy_arg, plan, out, baseline=baseline, workers=workers, dask=dask, log=log,
-                                command=["pretrial.sweep"])
-    return results
+        policy_arg = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
+        results, _files = run_sweep(policy_arg, plan, out, baseline=baseline, workers=workers, dask=dask, log=log,
+                                    command=["pretrial.sweep"])
+        return results
 
 
 def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike | None = None,
@@ -168,13 +191,14 @@ def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike 
         ``.outcome`` (success, failure words, returns, the recorded trace), ``.metrics`` (task and
         loop-quality measures with units); :func:`pretrial.playback.replay.summary` gives the JSON form.
     """
-    from pretrial.playback.replay import replay as run
+    with _in_api_words():
+        from pretrial.playback.replay import replay as run
 
-    if start is not None and not isinstance(start, str):
-        start = ",".join(repr(float(v)) for v in start)
-    given = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
-    return run(given, env=env, plan=None if plan is None else os.fspath(plan), settings=dict(settings or {}),
-               episodes=episodes, seed=seed, start=start)
+        if start is not None and not isinstance(start, str):
+            start = ",".join(repr(float(v)) for v in start)
+        given = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
+        return run(given, env=env, plan=None if plan is None else os.fspath(plan), settings=dict(settings or {}),
+                   episodes=episodes, seed=seed, start=start)
 
 
 @dataclass
@@ -233,15 +257,16 @@ def calibrate(logs: Sequence[PathLike], env: str, fit: Sequence[str], *, out: Pa
     -------
     Calibration
     """
-    from pretrial.calibration.calibrate import CalibrationRequest, run_calibration
+    with _in_api_words():
+        from pretrial.calibration.calibrate import CalibrationRequest, run_calibration
 
-    req = CalibrationRequest(env=env, logs=[os.fspath(p) for p in logs], fit=list(fit), options=dict(options or {}),
-                             fixed=dict(fixed or {}), guess=dict(guess or {}), window=window, bootstrap=bootstrap,
-                             seed=seed, validate=[os.fspath(p) for p in validate], holdout=holdout,
-                             out=None if out is None else os.fspath(out), residual=residual,
-                             residual_degree=residual_degree, residual_margin=residual_margin)
-    summary, directory = run_calibration(req)
-    return Calibration(directory, summary)
+        req = CalibrationRequest(env=env, logs=[os.fspath(p) for p in logs], fit=list(fit), options=dict(options or {}),
+                                 fixed=dict(fixed or {}), guess=dict(guess or {}), window=window, bootstrap=bootstrap,
+                                 seed=seed, validate=[os.fspath(p) for p in validate], holdout=holdout,
+                                 out=None if out is None else os.fspath(out), residual=residual,
+                                 residual_degree=residual_degree, residual_margin=residual_margin)
+        summary, directory = run_calibration(req)
+        return Calibration(directory, summary)
 
 
 def load_policy(path: PathLike) -> Policy:
@@ -258,11 +283,12 @@ def export_policy(policy: PathLike | Policy, to: str, out_dir: PathLike, *, prec
     Returns the files written (code first, golden file last); see the README's ``pretrial export``
     for what the generated step does on a fault.
     """
-    from pretrial.export.exporter import DEFAULT_PREFIX
-    from pretrial.export.exporter import export_policy as write
+    with _in_api_words():
+        from pretrial.export.exporter import DEFAULT_PREFIX
+        from pretrial.export.exporter import export_policy as write
 
-    pol = policy if not isinstance(policy, (str, os.PathLike)) else load_policy(policy)
-    return write(pol, to, out_dir, precision, prefix or DEFAULT_PREFIX, safe_action=safe_action)
+        pol = policy if not isinstance(policy, (str, os.PathLike)) else load_policy(policy)
+        return write(pol, to, out_dir, precision, prefix or DEFAULT_PREFIX, safe_action=safe_action)
 
 
 def read_sweep(path: PathLike) -> SweepResults:

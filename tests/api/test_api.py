@@ -153,3 +153,12 @@ def test_evolve_reports_each_generation_to_an_observer(tmp_path):
     history = (tmp_path / "run" / "history.csv").read_text().splitlines()
     assert len(history) == 3 and history[1].startswith("0,")  # the rows the observer saw are the run's history
     assert run.champion.content_hash == pretrial.load_policy(tmp_path / "run").content_hash
+
+
+def test_api_errors_name_keywords_not_flags(tmp_path):
+    with pytest.raises(pretrial.InputError) as err:
+        pretrial.replay("lqr", env="CartPole-v0", episodes=0)
+    assert err.value.message.startswith("episodes: 0 not allowed") and "--" not in err.value.message
+    with pytest.raises(pretrial.InputError) as err:
+        pretrial.replay("lqr", env="CartPole-v0", settings={"nosuch": 1.0})
+    assert err.value.message.startswith("settings ") and "--" not in err.value.message
