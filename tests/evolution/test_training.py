@@ -13,7 +13,14 @@ import numpy as np
 import pytest
 
 from pretrial.analysis.plan import load_plan
-from pretrial.evolution.plan_training import Objective, PlanDistribution, objective_fitness, parse_objective
+from pretrial.evolution.plan_training import (
+    Objective,
+    PlanDistribution,
+    objective_fitness,
+    parse_objective,
+    quality_score,
+)
+from pretrial.sim.quality import QualityLimits
 from pretrial_envs import make_physics
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -45,6 +52,22 @@ def test_success_lower_bound_orders_by_successes_then_score():
     score = np.array([[0.0] * 8, [1.0] * 8, [0.5] * 8])
     f = objective_fitness(Objective("success_lower_bound"), np.zeros((3, 8)), success, score)
     assert f[0] > f[1] > f[2]  # one more success beats any score; then the score breaks the tie
+
+
+def test_quality_score_folds_the_chatter_slack_into_successes_only():
+    # slack to the chatter limit: 1 - rate / limit (4 reversals/s of 5 allowed leaves 0.2)
+    score = np.array([[0.9, 0.9, -0.5, 0.1]])
+    success = np.array([[True, True, False, True]])
+    measures = {"chatter_hz": np.array([[0.0, 4.0, 9.0, 1.0]])}
+    got = quality_score(score, success, measures, QualityLimits(chatter_hz=5.0))
+    np.testing.assert_allclose(got, [[0.9, 0.2, -0.5, 0.1]])
+    # no chatter limit: the scores as they were
+    assert quality_score(score, success, measures, QualityLimits(chatter_hz=None)) is score
+    # the tie-break then prefers the genome further from chattering, at equal successes
+    two = np.vstack([quality_score(score, success, {"chatter_hz": m}, QualityLimits(chatter_hz=5.0))
+                     for m in (np.array([[0.0, 0.0, 0.0, 0.0]]), measures["chatter_hz"])])
+    f = objective_fitness(Objective("success_lower_bound"), np.zeros((2, 4)), np.vstack([success, success]), two)
+    assert f[0] > f[1]
 
 
 def test_plan_distribution_follows_the_plan_and_its_own_streams():

@@ -15,7 +15,9 @@ genome:
   (conditional value at risk; ``A`` in (0, 1]): a genome is as good as its bad days;
 * ``"success_lower_bound"``: the Wilson 95% lower bound of the success rate (loop
   quality included), ties broken by the mean episode score (in [-1, 1], scaled by
-  1e-3 so it never outweighs one more success).
+  1e-3 so it never outweighs one more success); with a plan a success's score is
+  also capped by its slack to the chatter limit (:func:`quality_score`), since the
+  constraint slack alone rewards stiff loops that chatter at the box's corners.
 """
 
 from __future__ import annotations
@@ -90,6 +92,21 @@ def objective_fitness(objective: Objective, returns: np.ndarray, success: np.nda
 
     lower = wilson_interval(np.asarray(success).sum(axis=1), s)[0]
     return lower + SCORE_TIEBREAK * np.asarray(score, dtype=float).mean(axis=1)
+
+
+def quality_score(score: np.ndarray, success: np.ndarray, measures: Mapping[str, np.ndarray],
+                  limits) -> np.ndarray:
+    """Episode scores with each success's slack to the chatter limit folded in (training only).
+
+    A success scores the smaller of its constraint slack and ``1 - chatter_hz / limit``
+    (command reversals per second against the plan's ``chatter_hz``), so among genomes
+    that succeed equally often the one further from chattering ranks first; failures
+    keep their score. Without a chatter limit the scores are returned unchanged.
+    """
+    if limits.chatter_hz is None or "chatter_hz" not in measures:
+        return score
+    slack = 1.0 - np.asarray(measures["chatter_hz"], dtype=float) / limits.chatter_hz
+    return np.where(success, np.minimum(score, slack), score)
 
 
 # --------------------------------------------------------------------------- #

@@ -20,7 +20,13 @@ from pretrial.controller.network import NetworkSpec, PopulationNetwork
 from pretrial.controller.policy import IOMap, PopulationPolicy
 from pretrial.errors import InputError
 from pretrial.evolution.config import Config
-from pretrial.evolution.plan_training import Objective, PlanDistribution, objective_fitness, parse_objective
+from pretrial.evolution.plan_training import (
+    Objective,
+    PlanDistribution,
+    objective_fitness,
+    parse_objective,
+    quality_score,
+)
 from pretrial.sim.perturb import nominal_value
 from pretrial.sim.quality import QualityLimits
 from pretrial.sim.rollout import Scenarios, draw_scenarios, run_episodes
@@ -92,7 +98,10 @@ def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple
     out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
                        quality=task.quality)
     diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
-    fitness = objective_fitness(task.objective, out.returns, out.success, out.score)
+    score = out.score
+    if score is not None and task.quality is not None and out.quality is not None:
+        score = quality_score(score, out.success, out.quality, task.quality)
+    fitness = objective_fitness(task.objective, out.returns, out.success, score)
     return fitness, out.success.mean(axis=1), diverged
 
 
@@ -142,7 +151,7 @@ def load_training_plan(cfg: Config) -> tuple[Any, Any, dict[str, Any], dict[str,
         raise InputError(f"{path}: scenario.env: the plan is for {plan_env}, the config trains {cfg.task.env}")
     options = dict(cfg.task.env_options)
     for k, v in plan_options.items():
-        if k in ("poles", "observe", "hoist") and options.get(k, v) != v:
+        if k in ("poles", "observe", "hoist", "integral") and options.get(k, v) != v:
             raise InputError(f"{path}: scenario.options.{k}: {v!r} does not fit the config ({k}={options[k]!r})")
         options[k] = v
     if plan_start:
