@@ -59,6 +59,12 @@ COULOMB_SMOOTHING_SPEED = 0.05  # m/s
 #: system with damping ratio sqrt(4) / 2 = 1: critically damped, no overshoot.
 HOIST_STOP_TIME_CONSTANTS = 4.0
 
+#: With ``integral=True`` the state ``load_x_integral`` integrates the load's miss from
+#: ``target_x`` only while the miss is within this distance (conditional integration, a
+#: common anti-windup practice): the 4 m transfer does not wind it up, the steady offset
+#: near the goal (wind on the load, Coulomb friction) does.
+INTEGRAL_ZONE = 0.25  # m
+
 #: Reward weights (see ``reward_doc``).
 SWAY_WEIGHT = 1.0  # per rad^2 per second
 EFFORT_WEIGHT = 0.01  # per unit action^2 per second
@@ -131,6 +137,12 @@ class GantryPhysics(Physics):
     hoist : bool, optional
         Add the rope length as a second actuated degree of freedom (state
         ``l, l_dot``; action ``hoist_speed``). Default False.
+    integral : bool, optional
+        Add the state ``load_x_integral`` (m s, observed last): the time
+        integral of ``load x - target_x`` while that miss is within
+        ``INTEGRAL_ZONE`` (0.25 m), 0 at the start. A controller that reads it
+        has integral action (state augmentation, common practice in servo
+        design) and can remove a steady offset. Default False.
     **kwargs
         ``dt``, ``substeps``, ``integrator``, ``time_limit``, ``start_spread``
         as in :class:`~pretrial_envs.core.Physics`.
@@ -164,25 +176,33 @@ class GantryPhysics(Physics):
     default_start_spread: ClassVar[dict[str, float]] = {"x": 0.05, "x_dot": 0.02, "phi": 0.02, "phi_dot": 0.02}
     coulomb_params: tuple[str, ...] = ("trolley_coulomb",)
 
-    def __init__(self, hoist: bool = False, **kwargs: Any):
+    def __init__(self, hoist: bool = False, integral: bool = False, **kwargs: Any):
         if not isinstance(hoist, (bool, np.bool_)):
             raise ValueError(f"hoist: {hoist!r} must be True or False")
+        if not isinstance(integral, (bool, np.bool_)):
+            raise ValueError(f"integral: {integral!r} must be True or False")
         self.hoist = bool(hoist)
+        self.integral = bool(integral)
         if self.hoist:
             self.state_names = (*GantryPhysics.state_names, "l", "l_dot")
             self.state_units = (*GantryPhysics.state_units, "m", "m/s")
-            self.obs_names, self.obs_units = self.state_names, self.state_units
             self.action_names = ("trolley_force", "hoist_speed")
             self.action_units = ("N", "m/s")
-        # typical magnitudes (rail, max sway, common rates): network inputs are divided by these
-        scale = {"x": 2.5, "x_dot": 1.0, "phi": 0.5, "phi_dot": 1.0, "l": 1.0, "l_dot": 0.5}
+        if self.integral:
+            self.state_names = (*self.state_names, "load_x_integral")
+            self.state_units = (*self.state_units, "m s")
+        self.obs_names, self.obs_units = self.state_names, self.state_units
+        # typical magnitudes (rail, max sway, common rates; the integral of a few cm over a few s):
+        # network inputs are divided by these
+        scale = {"x": 2.5, "x_dot": 1.0, "phi": 0.5, "phi_dot": 1.0, "l": 1.0, "l_dot": 0.5, "load_x_integral": 0.1}
         self.obs_scale = tuple(scale[n] for n in self.obs_names)
         super().__init__(**kwargs)
         # column indices, looked up once (derivatives runs 4x per RK4 substep)
         self._col = {name: self.param_table.index(name) for name in self.param_table.names}
 
     def options(self) -> dict[str, Any]:
-        return {**super().options(), "hoist": self.hoist}
+        # integral only when on: configurations without it keep their options (and their hashes)
+        return {**super().options(), "hoist": self.hoist, **({"integral": True} if self.integral else {})}
 
     # ----------------------------------------------------------- dynamics
     def _solve(self, state: Array, force: Array, params: Array,
@@ -333,6 +353,9 @@ class GantryPhysics(Physics):
         if ldd is not None:
             out[:, 4] = state[:, 5]
             out[:, 5] = ldd
+        if self.integral:
+            miss = self.load_x(state, params) - params[:, self._col["target_x"]]
+            out[:, -1] = np.where(np.abs(miss) <= INTEGRAL_ZONE, miss, 0.0)
         return out
 
     def rope_tension(self, state: Array, force: Array, params: Array) -> Array:
@@ -570,7 +593,8 @@ class GantryEnv(PhysicsEnv):
 
     ## Observation Space
 
-    The observation is the state, shape ``(4,)`` or ``(6,)`` with the hoist:
+    The observation is the state, shape ``(4,)``, ``(6,)`` with the hoist, one
+    more with ``integral=True``:
 
     | Num | Observation | Unit  |
     |-----|-------------|-------|
@@ -580,6 +604,14 @@ class GantryEnv(PhysicsEnv):
     | 3   | phi_dot     | rad/s |
     | 4   | l (hoist)   | m     |
     | 5   | l_dot (hoist) | m/s |
+    | last | load_x_integral (integral) | m s |
+
+    ``load_x_integral`` (``integral=True``) is the time integral of
+    ``x + l sin(phi) - target_x`` while that miss is within 0.25 m
+    (``INTEGRAL_ZONE``; conditional integration against wind-up), starting
+    at 0. It is part of the state, so a controller trained with it needs it on
+    hardware too: the host computes it from the measured load position, with
+    the same zone, at the control rate.
 
     ## Rewards
 
@@ -629,6 +661,7 @@ class GantryEnv(PhysicsEnv):
     | Argument       | Default | Meaning                                                   |
     |----------------|---------|-----------------------------------------------------------|
     | `hoist`        | `False` | add the rope length as an actuated degree of freedom      |
+    | `integral`     | `False` | add ``load_x_integral`` to the state (integral action)    |
     | `params`       | `{}`    | parameter overrides, names as in ``GANTRY_PARAMS``        |
     | `dt`           | `0.02`  | control period, s                                         |
     | `substeps`     | `2`     | integration steps per control period                      |

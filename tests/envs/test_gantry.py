@@ -579,6 +579,36 @@ def test_hoist_option_shapes_and_validation():
 
 
 @pytest.mark.parametrize("hoist", [False, True])
+def test_integral_option_shapes_and_validation(hoist):
+    on = gym.make("pretrial/GantryCrane-v0", hoist=hoist, integral=True).unwrapped
+    base = 6 if hoist else 4
+    assert on.observation_space.shape == (base + 1,)
+    assert on.physics.state_names[-1] == "load_x_integral" and on.physics.state_units[-1] == "m s"
+    assert GantryPhysics(**on.physics.options()).options() == on.physics.options()
+    # off: the options (and so the hashes of files that record them) are as before the option existed
+    assert "integral" not in GantryPhysics(hoist=hoist).options()
+    with pytest.raises(ValueError, match="integral"):
+        GantryPhysics(integral="yes")
+
+
+@given(miss=st.floats(-0.24, 0.24), seconds=st.floats(0.2, 3.0))
+@FAST
+def test_integral_state_is_the_time_integral_of_the_miss_inside_its_zone(miss, seconds):
+    # A load held still at a constant miss d from target_x: the integral of a constant
+    # is d * t (calculus); outside the 0.25 m zone (INTEGRAL_ZONE) it does not move.
+    physics = GantryPhysics(integral=True, dt=0.02, substeps=1)
+    p = _params(physics, 2, **FIXED)
+    target = _col(physics, p, "target_x")
+    state = np.zeros((2, 5))
+    state[:, 0] = target + np.array([miss, 0.5])  # the second is outside the zone
+    steps = round(seconds / physics.dt)
+    end = _run(physics, state, np.zeros((2, 1)), p, steps)[-1]
+    t = steps * physics.dt
+    np.testing.assert_allclose(end[0, 4], miss * t, rtol=1e-9, atol=1e-12)
+    assert end[1, 4] == 0.0
+
+
+@pytest.mark.parametrize("hoist", [False, True])
 def test_draw_shows_crane_parts(hoist):
     from matplotlib.figure import Figure
     from matplotlib.patches import Circle, Rectangle

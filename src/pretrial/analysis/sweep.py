@@ -91,7 +91,7 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, p
                              f"was trained on {env_id}")
         options = dict(policy.env_options)
         for k, v in plan_options.items():
-            if k in ("poles", "observe", "hoist") and options.get(k, v) != v:
+            if k in ("poles", "observe", "hoist", "integral") and options.get(k, v) != v:
                 raise InputError(f"{where}.{k}: {v!r} does not fit the policy (trained with {k}={options[k]!r})")
             options[k] = v
     if plan_start:
