@@ -1,21 +1,25 @@
 """What training for the verdict buys: each shipped config evolved with and without its plan, then swept.
 
-Run: ``python benchmarks/verdict_training.py [--configs cartpole gantry ...] [--objective success_lower_bound]
-[--generations N]``
+Run: ``python benchmarks/verdict_training.py [--configs cartpole gantry ...] [--objective OBJECTIVE]
+[--generations N] [--workers W]``
 
 For each config (default: every shipped one) this runs, in temporary
 directories, the same commands a user would:
 
-1. ``pretrial evolve configs/NAME.toml`` (the config as shipped);
+1. ``pretrial evolve configs/NAME.toml`` without a plan (a ``[task] plan`` key
+   dropped): nominal training, or the config's own ``[task.randomize]``;
 2. ``pretrial evolve configs/NAME.toml --plan PLAN`` with ``[task.randomize]``
-   dropped (the plan's dispersions replace it) and ``[task] objective`` set;
+   dropped (the plan's dispersions replace it), ``[task] objective`` replaced
+   when ``--objective`` is given;
 3. ``pretrial sweep RUN --plan PLAN`` on each champion,
 
-and prints one row per config and variant: evolve wall time, the predicted
-verdict (with ``--plan``), the sweep's verdict, its Monte Carlo successes and the
-requirements that failed. The plan is the one ``pretrial evolve`` names for the
-config (``configs/sweeps/``). Expect minutes per config (the drone pair: about
-8 minutes per evolve on 2 cores); ``--generations`` shortens every run alike.
+and prints one row per config and variant: evolve and sweep wall times, the
+predicted verdict (with ``--plan``), the sweep's verdict, its Monte Carlo
+successes and the requirements that failed. The plan is the one ``pretrial
+evolve`` names for the config (``configs/sweeps/``). Every command runs with
+``--workers W`` (default 1: the figures in the configs' comments were measured so
+on 2 shared cores). Expect minutes per config (the drone pair: about 8 minutes
+per evolve on 2 cores); ``--generations`` shortens every run alike.
 
 The last line is ``passed: K of N`` (sweeps whose verdict is PASS).
 """
@@ -45,20 +49,24 @@ def _plan_for(name: str) -> Path:
     return plan
 
 
-def _write_variant(src: Path, dst: Path, plan: Path | None, objective: str, generations: int | None) -> None:
-    lines, skip = [], False
+def _write_variant(src: Path, dst: Path, plan: Path | None, objective: str | None, generations: int | None) -> None:
+    lines, skip, section = [], False, ""
     for line in src.read_text(encoding="utf-8").splitlines():
         head = line.strip()
         if head.startswith("["):
+            section = head
             skip = plan is not None and head == "[task.randomize]"
-        if skip or (plan is not None and head.startswith(("randomize_ramp", "fitness_target"))):
+        key = head.split("=")[0].strip() if section == "[task]" else ""
+        if skip or key == "plan" or (plan is not None and (key in ("randomize_ramp", "fitness_target")
+                                                            or (objective is not None and key == "objective"))):
             continue
         if generations is not None and head.startswith("generations"):
             line = f"generations = {generations}"
         lines.append(line)
         if plan is not None and head == "[task]":
             lines.append(f'plan = "{plan}"')
-            lines.append(f'objective = "{objective}"')
+            if objective is not None:
+                lines.append(f'objective = "{objective}"')
     dst.write_text("\n".join(lines) + "\n", encoding="utf-8")
     tomllib.loads(dst.read_text(encoding="utf-8"))  # still a valid config
 
@@ -72,36 +80,38 @@ def _run(words: list[str]) -> tuple[int, str, float]:
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--configs", nargs="+", default=list(CONFIGS))
-    ap.add_argument("--objective", default="success_lower_bound")
+    ap.add_argument("--objective", default=None, help="replace the config's objective with --plan")
     ap.add_argument("--generations", type=int, default=None)
+    ap.add_argument("--workers", default="1")
     args = ap.parse_args()
-    exe = str(Path(sys.executable).with_name("pretrial"))
+    exe = [sys.executable, "-m", "pretrial"]
+    workers = ["--workers", str(args.workers)]
     rows, passed, total = [], 0, 0
     with tempfile.TemporaryDirectory() as tmp:
         for name in args.configs:
             plan = _plan_for(name)
-            for variant in ("as shipped", "--plan"):
+            for variant in ("no plan", "--plan"):
                 cfg = Path(tmp) / f"{name}-{'plan' if variant == '--plan' else 'own'}.toml"
                 _write_variant(ROOT / "configs" / f"{name}.toml", cfg, plan if variant == "--plan" else None,
                                args.objective, args.generations)
                 run = Path(tmp) / f"run-{cfg.stem}"
-                code, out, secs = _run([exe, "evolve", str(cfg), "--out", str(run), "--json"])
+                code, out, secs = _run([*exe, "evolve", str(cfg), "--out", str(run), "--json", *workers])
                 if code != 0:
-                    rows.append((name, variant, f"{secs:.0f}", "-", "evolve failed", "-", "-"))
+                    rows.append((name, variant, f"{secs:.0f}", "-", "-", "evolve failed", "-", "-"))
                     continue
                 summary = json.loads(out)
                 predicted = summary.get("predicted_verdict", "-")
-                code, out, _ = _run([exe, "sweep", str(run), "--plan", str(plan), "--out", str(run) + "-sweep",
-                                     "--json"])
+                code, out, sweep_secs = _run([*exe, "sweep", str(run), "--plan", str(plan), "--out",
+                                              str(run) + "-sweep", "--json", *workers])
                 res = json.loads(out) if out.strip().startswith("{") else {}
                 verdict = res.get("verdict", f"exit {code}")
                 mc = res.get("montecarlo") or {}
                 failing = [r["name"] for r in res.get("requirements", []) if r.get("pass") is False]
                 total += 1
                 passed += verdict == "pass"
-                rows.append((name, variant, f"{secs:.0f}", predicted, verdict,
+                rows.append((name, variant, f"{secs:.0f}", f"{sweep_secs:.0f}", predicted, verdict,
                              f"{mc.get('successes', '-')}/{mc.get('samples', '-')}", "; ".join(failing) or "-"))
-    head = ("config", "training", "evolve s", "predicted", "verdict", "Monte Carlo", "failing")
+    head = ("config", "training", "evolve s", "sweep s", "predicted", "verdict", "Monte Carlo", "failing")
     widths = [max(len(str(r[i])) for r in [head, *rows]) for i in range(len(head))]
     for r in [head, *rows]:
         print("  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)))
