@@ -22,6 +22,9 @@ on 2 shared cores). Expect minutes per config (the drone pair: about 8 minutes
 per evolve on 2 cores); ``--generations`` shortens every run alike.
 
 The last line is ``passed: K of N`` (sweeps whose verdict is PASS).
+
+Measured (2 shared cores, ``--configs cartpole --workers 1``): no plan, evolve 20 s, sweep 9 s,
+FAIL 389/2000; ``--plan``, evolve 45 s, sweep 16 s, predicted PASS, PASS 2000/2000.
 """
 
 from __future__ import annotations
