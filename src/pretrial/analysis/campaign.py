@@ -78,9 +78,10 @@ class Batch:
 
 def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Work item: one chunk of rows of one plant (module level, so it pickles)."""
-    physics, policy, params, settings, seeds, episodes, max_steps, quality = item
+    physics, policy, params, settings, seeds, episodes, max_steps, quality, stream_version = item
     sc = keyed_scenarios(physics, seeds, episodes, params, settings)
-    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality)
+    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality,
+                       stream_version=stream_version)
     words = np.array(out.failure_words, dtype=object)[out.failure[0]]
     return out.success[0], words.astype(str), out.score[0], out.steps[0]
 
@@ -103,6 +104,9 @@ class Campaign:
         How the replay command names the controller (a path, or ``lqr``).
     progress : callable, optional
         Called with the number of episodes just finished.
+    stream_version : int
+        Version of the sensor-noise and gust draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`);
+        replay commands name it when it is not 1, the version of commands that do not.
     """
 
     physics: Physics
@@ -112,6 +116,7 @@ class Campaign:
     executor: Executor
     policy_arg: str
     progress: Callable[[int], None] | None = None
+    stream_version: int = 1
     _plants: dict[float, Physics] = field(default_factory=dict, repr=False)
     #: diverged episodes so far: count, and the values (varied names) and keys of each
     _diverged: list[tuple[dict[str, float], int, int]] = field(default_factory=list, repr=False)
@@ -161,7 +166,8 @@ class Campaign:
         for g in range(0, len(chunks), group):
             part = chunks[g:g + group]
             items = [(physics, self.policy, np.repeat(base, len(r), axis=0), {k: v[r] for k, v in vals.items()},
-                      seeds[r], episodes[r], self.max_steps(physics), self.plan.quality) for physics, base, r in part]
+                      seeds[r], episodes[r], self.max_steps(physics), self.plan.quality, self.stream_version)
+                     for physics, base, r in part]
             for (_, _, r), (s, f, sc, st) in zip(part, self.executor.map(_run_chunk, items), strict=True):
                 success[r], failure[r], score[r], steps[r] = s, f, sc, st
                 if self.progress is not None:
@@ -200,6 +206,8 @@ class Campaign:
         for k, v in values.items():
             words += ["--set", f"{k}={float(v)!r}"]
         words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
+        if self.stream_version != 1:  # a command without it replays version 1's draws
+            words += ["--stream-version", str(self.stream_version)]
         return " ".join(words)
 
 

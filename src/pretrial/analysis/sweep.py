@@ -34,6 +34,11 @@ if TYPE_CHECKING:
     from pretrial.analysis.samples import SampleHistograms
 
 LQR = "lqr"
+#: Version of the noise draws new sweeps make (:data:`pretrial.sim.streams.STREAM_VERSIONS`), recorded
+#: in results.json as ``stream_version`` (a file without it was made with version 1) and named by
+#: the replay commands when it is not 1. Version 2 waits for ``pretrial replay --stream-version``:
+#: until the command takes that option, a replay command naming it would not run.
+SWEEP_STREAM_VERSION = 1
 
 
 @dataclass
@@ -159,7 +164,7 @@ def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str,
         "env": {"id": ctl.env_id, "options": ctl.env_options, "params": ctl.base_params},
         "plan": {"path": plan.path, "content_sha256": plan.content_hash(), "resolved": plan.to_dict()},
         "seed": plan.seed, "required_success_rate": plan.required_success_rate,
-        "episodes_per_point": plan.episodes,
+        "episodes_per_point": plan.episodes, "stream_version": SWEEP_STREAM_VERSION,
     }
 
 
@@ -221,13 +226,14 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     try:
         check_workers_can_build(ctl.physics, executor)
         say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
-        camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
+        camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick,
+                        SWEEP_STREAM_VERSION)
         part, samples = run_analyses(camp, say, stage / "montecarlo.csv" if stage else None, stage)
         results = _results_skeleton(ctl, plan, policy_arg) | part
         results["baseline"] = None
         if lqr is not None:
             say("baseline: the same plan on the LQR baseline")
-            base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
+            base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick, SWEEP_STREAM_VERSION)
             base_part, _ = run_analyses(base_camp, say, None, stage)
             results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
     finally:

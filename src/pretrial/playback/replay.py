@@ -27,6 +27,7 @@ from pretrial.sim.perturb import Setup, apply_settings
 from pretrial.sim.plant import build_plant, env_id_of
 from pretrial.sim.quality import QualityLimits, quality_metrics
 from pretrial.sim.rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
+from pretrial.sim.streams import check_version
 from pretrial_envs.core import EpisodeMetric, Physics
 
 #: replay records every step of every episode; beyond this many, a sweep is the tool
@@ -209,7 +210,8 @@ def _number(item: str, text: str, valid: str) -> float:
 
 def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: int = 0, start: str | None = None,
                policy_label: str = "", env_id: str = "", policy_hash: str | None = None,
-               max_steps: int | None = None, quality: QualityLimits | None = None) -> Replay:
+               max_steps: int | None = None, quality: QualityLimits | None = None,
+               stream_version: int = 1) -> Replay:
     """Run and measure ``episodes`` recorded episodes of seed ``seed`` (all in one batch).
 
     Parameters
@@ -227,9 +229,13 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     quality : QualityLimits, optional
         Loop-quality limits an episode must also meet to succeed (a plan's, or
         the defaults); None judges survival only.
+    stream_version : int
+        Version of the noise draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`): the one the
+        replayed result was made with (1 for results that do not record one).
     """
     try:
         episodes = REPLAY_EPISODES.check(episodes, "--episodes")
+        stream_version = check_version(stream_version)
         periods = setup.physics.max_steps if max_steps is None else int(max_steps)
         check_total("replay", [(episodes, "episodes"), (periods, "control periods")], RECORDED_STEPS)
     except ValueError as exc:
@@ -240,7 +246,8 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     if start is not None:
         scenarios.start = parse_start(start, physics, scenarios.params)
         start_state = scenarios.start[0].tolist()
-    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality)
+    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality,
+                           stream_version=stream_version)
     trace = outcome.trace
     metrics = physics.episode_metrics(trace["state"], trace["action"], scenarios.params, outcome.steps[0])
     if outcome.quality is not None:
@@ -251,7 +258,7 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
 
 def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: str | Path | None = None,
            settings: dict[str, Any] | None = None, episodes: int = 1, seed: int = 0,
-           start: str | None = None) -> Replay:
+           start: str | None = None, stream_version: int = 1) -> Replay:
     """Replay a controller: ``episodes`` recorded episodes of seed ``seed`` under named settings.
 
     Parameters
@@ -270,6 +277,8 @@ def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: st
         The same episodes a sweep draws for that seed.
     start : str, optional
         An exact start state (numbers in state order, or ``name=value`` pairs).
+    stream_version : int
+        Version of the noise draws; a sweep's replay commands name it when it is not 1.
 
     Returns
     -------
@@ -295,7 +304,7 @@ def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: st
         controller, setup, env_id, digest = prepare(str(policy) if loaded is None else label, env, settings,
                                                     policy=loaded)
     rep = run_replay(controller, setup, episodes=episodes, seed=seed, start=start, policy_label=label, env_id=env_id,
-                     policy_hash=digest, max_steps=max_steps, quality=quality)
+                     policy_hash=digest, max_steps=max_steps, quality=quality, stream_version=stream_version)
     rep.plan = None if plan is None else str(plan)
     return rep
 
