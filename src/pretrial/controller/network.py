@@ -130,10 +130,10 @@ def _into(name: str, z: np.ndarray, out: np.ndarray | None) -> np.ndarray:
 def _tanh(z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     z *= 2.5
     # tanh is exactly -1.0 below -19.1, so only the upper clamp (which also maps NaN to 60) can matter
-    np.fmin(z, 60.0, out=z)
+    np.fmin(z, 60.0, z)
     kernel = _KERNELS["tanh"]
     if out is not None and kernel is np.tanh:  # the common case, spelled out: this runs once per level and step
-        return np.tanh(z, out=out)
+        return np.tanh(z, out)
     return _into("tanh", z, out)
 
 
