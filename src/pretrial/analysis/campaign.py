@@ -28,6 +28,7 @@ import numpy as np
 from pretrial.analysis.plan import MARGIN_BRACKET, Plan, Vary, unit_to_value
 from pretrial.analysis.samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
 from pretrial.analysis.stats import derive_seed, wilson_interval
+from pretrial.playback.command import replay_command
 from pretrial.sim import streams
 from pretrial.sim.execution import Executor
 from pretrial.sim.perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
@@ -173,19 +174,10 @@ class Campaign:
 
     # ------------------------------------------------------------- replay commands
     def replay_command(self, values: Mapping[str, float], seed: int, episodes: int = 1) -> str:
-        words = ["pretrial", "replay", _quote(self.policy_arg), "--plan", _quote(self.plan.path)]
-        if self.policy_arg == "lqr":
-            words += ["--env", self.physics.env_id]
-        for k, v in values.items():
-            words += ["--set", f"{k}={float(v)!r}"]
-        words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
-        return " ".join(words)
-
-
-def _quote(text: str) -> str:
-    import shlex
-
-    return shlex.quote(text)
+        """The replay of ``episodes`` episodes of ``seed`` at ``values`` under this plan."""
+        return replay_command(self.policy_arg, plan=self.plan.path,
+                              env=self.physics.env_id if self.policy_arg == "lqr" else None,
+                              settings={k: float(v) for k, v in values.items()}, seed=seed, episodes=episodes)
 
 
 def _modes(words: np.ndarray) -> dict[str, int]:
@@ -786,10 +778,10 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
     return "pass" if judged and all(r["pass"] for r in judged) else "fail"
 
 
-#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 #: key into the Monte Carlo seed for the calibration's bootstrap-row draws
 _CALIBRATION_DRAWS = 7
 
+#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 

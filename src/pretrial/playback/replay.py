@@ -13,7 +13,6 @@ episode's start state.
 
 from __future__ import annotations
 
-import shlex
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -23,6 +22,7 @@ import numpy as np
 from pretrial.console import CAUTIONS
 from pretrial.errors import InputError
 from pretrial.limits import RECORDED_STEPS, REPLAY_EPISODES, check_total
+from pretrial.playback.command import replay_command
 from pretrial.sim.perturb import Setup, apply_settings
 from pretrial.sim.plant import build_plant, env_id_of
 from pretrial.sim.quality import QualityLimits, quality_metrics
@@ -89,17 +89,9 @@ class Replay:
 
     def command(self, env: bool = True) -> str:
         """The command line that reproduces this replay (without file outputs)."""
-        words = ["pretrial", "replay", self.policy_label]
-        if self.plan:
-            words += ["--plan", self.plan]
-        if env:
-            words += ["--env", self.env_id]
-        for k, v in self.setup.settings.items():
-            words += ["--set", f"{k}={v!r}"]
-        words += ["--episodes", str(self.episodes), "--seed", str(self.seed)]
-        if self.start_text is not None:
-            words += ["--start", self.start_text]
-        return shlex.join(words)
+        return replay_command(self.policy_label, plan=self.plan, env=self.env_id if env else None,
+                              settings=self.setup.settings, seed=self.seed, episodes=self.episodes,
+                              start=self.start_text)
 
 
 # --------------------------------------------------------------------------- #
