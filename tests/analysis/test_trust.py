@@ -69,7 +69,7 @@ def test_upright_sweep_on_hanging_bench_data_fails_and_cautions(tmp_path):
     # the shipped bench logs hang the pole: the upright task is all extrapolation
     path = residual_file(tmp_path / "r.json")
     plan = _plan(tmp_path)
-    res, files = run_sweep("lqr", plan, tmp_path / "out", workers=1)
+    res, _ = run_sweep("lqr", plan, tmp_path / "out", workers=1)
     doc = res.doc
     row = _row(doc)
     assert row["pass"] is False and row["measured"] == 1.0 and row["required"] == 0.05
@@ -86,7 +86,7 @@ def test_upright_sweep_on_hanging_bench_data_fails_and_cautions(tmp_path):
 
 def test_sweep_inside_the_data_passes_the_requirement_without_caution(tmp_path):
     residual_file(tmp_path / "r.json", WIDE_LOW, WIDE_HIGH)
-    res, _ = run_sweep("lqr", _plan(tmp_path), tmp_path / "out", workers=1)
+    run_sweep("lqr", _plan(tmp_path), tmp_path / "out", workers=1)
     doc = json.loads((tmp_path / "out" / "results.json").read_text())
     row = _row(doc)
     assert row["pass"] is True and row["measured"] == 0.0

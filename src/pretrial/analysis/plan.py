@@ -32,6 +32,7 @@ from pretrial.errors import InputError
 from pretrial.files import sha256_hex
 from pretrial.limits import CONTROL_PERIOD as PERIOD_LIMIT
 from pretrial.limits import EPISODES, HORIZON, SEED, START_SPREAD, check_horizon, check_total
+from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.sim.perturb import (
     CONTROL_PERIOD,
     PERTURBATIONS,
@@ -40,7 +41,6 @@ from pretrial.sim.perturb import (
     spec_of,
     with_control_period,
 )
-from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.sim.quality import QualityLimits
 from pretrial.tomlfile import TableReader, kind_name, read_toml
 from pretrial_envs.core import Physics

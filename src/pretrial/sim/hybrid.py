@@ -55,5 +55,6 @@ def check_trained_residual(policy: Any, physics: Any, policy_label: str, where: 
     now = residual_record(physics)
     if not isinstance(trained, Mapping) or now is None or trained.get("sha256") == now["sha256"]:
         return
+    was = str(trained.get("sha256"))[:16]
     raise InputError(f"{where}: residual {now['path']} (sha256 {now['sha256'][:16]}…) is not the residual the policy "
-                     f"{policy_label} was trained on: {trained.get('path')} (sha256 {str(trained.get('sha256'))[:16]}…)")
+                     f"{policy_label} was trained on: {trained.get('path')} (sha256 {was}…)")
