@@ -217,3 +217,27 @@ def test_smooth_signs_are_left_out_of_the_linear_model_as_coulomb_friction_is(tm
     a, b = design_lqr(hybrid), design_lqr(plain)
     assert a.describe()["gain"] == b.describe()["gain"]
     assert any("smooth signs" in n for n in a.describe()["notes"])
+
+
+def test_residual_scale_is_swept_like_any_perturbation(tmp_path):
+    # a residual that pushes the cart along its motion (negative damping, 1 1/s): scaled up enough, the
+    # LQR designed on the physics alone loses the pole; scale 0 is the physics alone, which it holds
+    coef = np.zeros((2, _size()))
+    lib = Library(*(lambda p: (p.state_names, p.state_units, p.action_names))(
+        pretrial_envs.make_physics("pretrial/CartPole-v0")), 2)
+    coef[0, lib.names.index("x_dot")] = 1.0
+    residual_file(tmp_path / "r.json", WIDE_LOW, WIDE_HIGH, coefficients=coef)
+    text = _plan(tmp_path).read_text().replace('name = "actuator_gain"\nrange = [0.5, 2.0]\ndispersion = [0.9, 1.1]',
+                                               'name = "residual_scale"\nrange = [0.0, 20.0]\ndispersion = [0.0, 1.0]')
+    text = text.replace('run = ["montecarlo", "linear"]', 'run = ["margins", "montecarlo"]\ntolerance = 0.05')
+    text = text.replace("horizon = 2.0", "horizon = 5.0").replace("episodes = 80", "episodes = 8")
+    (tmp_path / "plan.toml").write_text(text)
+    run_sweep("lqr", tmp_path / "plan.toml", tmp_path / "out", workers=1)
+    doc = json.loads((tmp_path / "out" / "results.json").read_text())
+    (m,) = doc["margins"]
+    assert m["name"] == "residual_scale" and m["low"] == 0.0 and 1.0 < m["high"] < 20.0, m
+    assert doc["montecarlo"]["varied"][0]["name"] == "residual_scale"
+    # a plain plant has nothing to scale: the plan is refused, naming the entry
+    with pytest.raises(InputError) as err:
+        load_plan(tmp_path / "plan.toml", pretrial_envs.make_physics("pretrial/CartPole-v0"))
+    assert "residual_scale" in err.value.message and "no learned residual" in err.value.message
