@@ -134,3 +134,39 @@ def test_a_policy_refuses_a_residual_other_than_its_training_one(capsys, work):
     save_policy(work / "trained.json", doc)
     line = cli_refused(capsys, ["replay", "trained.json", "--option", f"residual={files['good']}"])
     assert "bench/residual.json" in line and "ffffffffffffffff" in line and "good.json" in line, line
+
+
+def test_evolved_on_a_hybrid_plant_records_its_residual_and_replay_checks_it(capsys, work):
+    # the config names its residual relative to itself; the champion records path and hash; replay of
+    # the champion runs on that residual, and refuses it once the file holds another residual
+    (work / "cfg").mkdir()
+    path = residual_file(work / "cfg" / "r.json")
+    (work / "cfg" / "run.toml").write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nhorizon = 1.0\n\n'
+                                           '[task.options]\nresidual = "r.json"\n\n[neat]\npop_size = 10\n\n'
+                                           '[run]\ngenerations = 1\nseed = 3\nvalidation_episodes = 4\n')
+    assert main(["evolve", "cfg/run.toml", "--out", "run", "--workers", "1", "--quiet"]) == 0
+    champion = json.loads((work / "run" / "champion.json").read_text())
+    sha = json.loads(path.read_text())["content_sha256"]
+    assert champion["training"]["residual"] == {"path": str(path.resolve()), "sha256": sha}
+    assert champion["env"]["options"]["residual"] == str(path.resolve())
+    capsys.readouterr()
+    assert main(["replay", "run"]) == 0
+    assert "100.0% of the simulated time" in _share_line(capsys.readouterr().out)
+    residual_file(path, margin=0.2)  # another residual (its envelope's margin) at the same path
+    before = snapshot(work)
+    line = cli_refused(capsys, ["replay", "run"])
+    assert "env.options" in line and sha[:16] in line and "is not the residual the policy" in line, line
+    assert snapshot(work) == before
+
+
+def test_sweep_prints_the_share_and_the_caution(capsys, work):
+    (work / "plans").mkdir()
+    residual_file(work / "plans" / "r.json")
+    (work / "plans" / "plan.toml").write_text(
+        '[scenario]\nenv = "pretrial/CartPole-v0"\nhorizon = 1.0\n\n[scenario.options]\nresidual = "r.json"\n\n'
+        '[[vary]]\nname = "residual_scale"\nrange = [0.0, 2.0]\n\n[analysis]\nrun = ["montecarlo"]\n'
+        'montecarlo_samples = 20\n')
+    assert main(["sweep", "lqr", "--plan", "plans/plan.toml", "--out", "out", "--workers", "1"]) == 1
+    out = capsys.readouterr().out
+    assert "outside the residual's data envelope: 100.0% of the simulated time (montecarlo)" in out
+    assert "caution: results rest on extrapolation" in out
