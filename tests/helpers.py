@@ -376,3 +376,28 @@ montecarlo_samples = {samples}
 [require]
 success_rate = {required}
 """
+
+
+#: the shipped bench logs' region (configs/bench: the pole hanging at theta = pi): x, x_dot, theta, theta_dot, force
+HANGING_LOW = (-0.3, -0.6, 2.6, -2.4, -4.0)
+HANGING_HIGH = (0.3, 0.7, 3.7, 2.9, 4.0)
+
+
+def residual_file(path: Path, low=HANGING_LOW, high=HANGING_HIGH, coefficients=None, degree: int = 2,
+                  sign_scale: float = 0.01, margin: float = 0.1) -> Path:
+    """A cart-pole ``residual.json`` (pretrial_envs.residual's own writer) correcting x_ddot and theta_ddot.
+
+    ``coefficients`` (2, F) default to zeros, so the plant moves as the physics alone and only the
+    envelope matters; callers give their own to change the dynamics.
+    """
+    import json
+
+    from pretrial_envs.residual import Envelope, Library, Residual, residual_document
+
+    physics = make_physics("pretrial/CartPole-v0")
+    lib = Library(physics.state_names, physics.state_units, physics.action_names, degree, sign_scale)
+    coef = np.zeros((2, lib.size)) if coefficients is None else np.asarray(coefficients, float)
+    env = Envelope(physics.state_names + physics.action_names, np.array(low, float), np.array(high, float), margin)
+    doc = residual_document(Residual(lib, (1, 3), coef, env), physics)
+    path.write_text(json.dumps(doc))
+    return path

@@ -20,11 +20,13 @@ from typing import TYPE_CHECKING, Any
 
 from pretrial.analysis.plan import Plan, load_plan, scenario_head
 from pretrial.analysis.results import SCHEMA, SCHEMA_VERSION, SweepResults, seal, write_results
+from pretrial.analysis.trust import envelope_caution
 from pretrial.console import CAUTIONS, Progress
 from pretrial.errors import InputError
 from pretrial.files import check_new_dir, move_into_place, staged, write_json
 from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
+from pretrial.sim.hybrid import check_trained_residual, residual_record
 from pretrial.sim.perturb import diverged_warning
 from pretrial.sim.plant import build_plant, check_workers_can_build, env_id_of
 from pretrial.version import __version__
@@ -108,6 +110,8 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, p
     except ValueError as exc:
         raise InputError(f"{plan_path}: scenario.params: {exc}") from None
     if policy is not None:
+        check_trained_residual(policy, physics, str(policy_arg),
+                               where if "residual" in plan_options else f"{policy_arg}: env.options")
         sizes = (physics.obs_dim, physics.action_dim)
         if sizes != (policy.io.obs_dim, policy.io.action_dim):
             raise InputError(f"{policy_arg}: takes {policy.io.obs_dim} observations and gives {policy.io.action_dim} "
@@ -138,6 +142,10 @@ def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str,
         "plan": {"path": plan.path, "content_sha256": plan.content_hash(), "resolved": plan.to_dict()},
         "seed": plan.seed, "required_success_rate": plan.required_success_rate,
         "episodes_per_point": plan.episodes,
+        # the learned residual swept on, and the one the policy was trained on (None: physics alone)
+        "residual": None if ctl.physics.residual is None else {
+            **residual_record(ctl.physics),
+            "trained_on": (getattr(ctl.controller, "training", None) or {}).get("residual")},
     }
 
 
@@ -221,6 +229,10 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     trained = (getattr(ctl.controller, "training", None) or {}).get("plan") or {}
     if trained.get("content_sha256") == plan.content_hash():
         results["cautions"].insert(0, TRAINED_ON_PLAN)
+    for who, part in (("", results), ("LQR baseline", results.get("baseline") or {})):
+        extrapolated = envelope_caution(part.get("envelope"), who)
+        if extrapolated:
+            results["cautions"].insert(0 if not who else 1, extrapolated)
     return seal(results), samples
 
 

@@ -483,6 +483,8 @@ class Evolution:
                                 "linear_every": self.cfg.run.linear_every, "linear_top": self.cfg.run.linear_top}
             training["predicted_verdict"] = verdicts[i]
         physics = self.task.physics()
+        if physics.residual is not None:  # the learned residual trained on: replay and sweep check its hash
+            training["residual"] = {"path": physics.residual.source, "sha256": physics.residual.sha256}
         doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
                              env_params=self._env_params(), io=self.task.io, training=training)
         save_policy(self.run_dir / "champion.json", doc)

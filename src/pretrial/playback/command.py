@@ -8,9 +8,9 @@ from typing import Any
 
 
 def replay_command(policy: str, *, plan: str | None = None, env: str | None = None,
-                   settings: Mapping[str, Any] | None = None, seed: int = 0, episodes: int = 1,
-                   start: str | None = None) -> str:
-    """``pretrial replay POLICY [--plan P] [--env E] [--set k=v ...] --seed S --episodes K [--start X]``.
+                   options: Mapping[str, Any] | None = None, settings: Mapping[str, Any] | None = None,
+                   seed: int = 0, episodes: int = 1, start: str | None = None) -> str:
+    """``pretrial replay POLICY [--plan P] [--env E] [--option k=v ...] [--set k=v ...] --seed S --episodes K``.
 
     Every word is shell-quoted (:func:`shlex.join`), so the line pastes into a shell as it is
     whatever the paths hold; numbers are written exactly (``repr``), so the replay runs at the
@@ -21,10 +21,12 @@ def replay_command(policy: str, *, plan: str | None = None, env: str | None = No
         words += ["--plan", str(plan)]
     if env:
         words += ["--env", env]
+    for k, v in (options or {}).items():
+        words += ["--option", f"{k}={v}"]
     for k, v in (settings or {}).items():
         words += ["--set", f"{k}={float(v)!r}" if isinstance(v, (int, float)) and not isinstance(v, bool)
                   else f"{k}={v!r}"]
     words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
-    if start is not None:
+    if start is not None:  # [--start X]
         words += ["--start", start]
     return shlex.join(words)
