@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import os
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, ClassVar, NamedTuple
@@ -409,6 +410,10 @@ class Physics:
     start_spread : mapping, optional
         Half-width of the uniform start distribution per state name (overrides
         the class default).
+    residual : str or Residual, optional
+        A ``residual.json`` (from ``pretrial calibrate --residual``) whose learned correction is
+        added to :meth:`derivatives` wherever the integrators evaluate them
+        (:meth:`model_derivatives`; see :mod:`pretrial_envs.residual`).
     """
 
     #: gymnasium id, e.g. ``"pretrial/CartPole-v0"``
@@ -454,7 +459,9 @@ class Physics:
         integrator: str | None = None,
         time_limit: float | None = None,
         start_spread: Mapping[str, float] | None = None,
+        residual: Any = None,
     ):
+        self.residual = None if residual is None else _residual_for(self, residual)
         self.dt = DT.check(self.default_dt if dt is None else dt)
         self.substeps = SUBSTEPS.check(self.default_substeps if substeps is None else substeps)
         integrator = self.default_integrator if integrator is None else integrator
@@ -498,6 +505,8 @@ class Physics:
             "integrator": self.integrator,
             "time_limit": self.time_limit,
             "start_spread": {n: float(s) for n, s in zip(self.state_names, self.start_spread) if s},
+            # only when set: configurations without a residual keep their options (and their hashes)
+            **({"residual": self.residual.source or self.residual} if self.residual is not None else {}),
         }
 
     def param(self, params: Array, name: str) -> Array:
@@ -684,14 +693,35 @@ class Physics:
         return {}
 
     # ----------------------------------------------------------- provided
-    def integrate(self, state: Array, force: Array, params: Array, fraction: Array | None = None) -> Array:
+    def model_derivatives(self, state: Array, force: Array, params: Array, residual_scale: Array | None = None
+                          ) -> Array:
+        """:meth:`derivatives` plus the learned residual, if the plant has one, times ``residual_scale`` (N, 1).
+
+        Without a residual, or with every row's scale 0, this is :meth:`derivatives` itself, bit for bit.
+        """
+        dx = self.derivatives(state, force, params)
+        if self.residual is None:
+            return dx
+        return self.residual.add_to(dx, state, force, residual_scale)
+
+    def _model(self, residual_scale: Array | None) -> Derivatives:
+        """What the integrators call: the plain derivatives where no residual acts on any row."""
+        if self.residual is None or (residual_scale is not None and not np.any(residual_scale)):
+            return self.derivatives
+        if residual_scale is None or np.all(residual_scale == 1.0):  # scale 1 adds the correction itself
+            return self.model_derivatives
+        return lambda x, u, p: self.model_derivatives(x, u, p, residual_scale)
+
+    def integrate(self, state: Array, force: Array, params: Array, fraction: Array | None = None,
+                  residual_scale: Array | None = None) -> Array:
         """Advance ``state`` over one control period with ``force`` held, or over ``fraction`` (N, 1) of it per row.
 
         With ``fraction`` each row takes ``substeps`` steps of ``fraction dt / substeps`` (never longer than
-        the whole period's step); a fraction of exactly 1 gives the same numbers as none.
+        the whole period's step); a fraction of exactly 1 gives the same numbers as none. ``residual_scale``
+        (N, 1) multiplies the learned residual per row (None: 1; 0: the physics alone, bit for bit).
         """
         h = self.dt / self.substeps if fraction is None else (self.dt * fraction) / self.substeps
-        f = self.derivatives
+        f = self._model(residual_scale)
         step = self._step
         for _ in range(self.substeps):
             state = step(f, state, force, params, h)
@@ -719,6 +749,7 @@ class Physics:
         earlier: Array | None = None,
         switch: Array | None = None,
         gain: Array | None = None,
+        residual_scale: Array | None = None,
     ) -> Transition:
         """One control period for a batch, with the episode rules applied.
 
@@ -740,6 +771,9 @@ class Physics:
         gain : (N, A) or (N, 1) array, optional
             Multiplier on the physical inputs :meth:`actuate` produces (force, thrust), e.g. a weak
             or failed actuator: 0 means no output at all.
+        residual_scale : (N, 1) array, optional
+            Multiplier on the plant's learned residual (``residual`` option): 1 as fitted, 0 the
+            physics alone (bit for bit), 2 doubled. Ignored by a plant without one.
         """
         action = np.maximum(action, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
         np.minimum(action, 1.0, out=action)
@@ -752,9 +786,9 @@ class Physics:
             if gain is not None:
                 force = force * gain
             if switch is None:
-                state = self.integrate(state, force, params)
+                state = self.integrate(state, force, params, residual_scale=residual_scale)
             else:
-                state = self._two_phases(state, earlier, force, params, switch, gain)
+                state = self._two_phases(state, earlier, force, params, switch, gain, residual_scale)
             bad = _diverged_rows(state)
             any_bad = bool(bad.any())
             failure = np.asarray(self.check(state, force, params), dtype=np.int64)
@@ -784,7 +818,7 @@ class Physics:
         return Transition(state, reward, failure, success, terminated, truncated, hold, steps)
 
     def _two_phases(self, state: Array, earlier: Array, force: Array, params: Array, switch: Array,
-                    gain: Array | None) -> Array:
+                    gain: Array | None, residual_scale: Array | None = None) -> Array:
         """The period: ``earlier`` over its first ``switch``, ``force`` over the rest (rows at 0 or 1: one piece)."""
         first = np.maximum(earlier, -1.0)
         np.minimum(first, 1.0, out=first)
@@ -792,8 +826,8 @@ class Physics:
         if gain is not None:
             first = first * gain
         # a zero-length phase is skipped by mask, not integrated with h = 0 (x + 0 k is not always x: -0.0, inf)
-        mid = np.where(switch > 0, self.integrate(state, first, params, switch), state)
-        end = self.integrate(mid, force, params, 1.0 - switch)
+        mid = np.where(switch > 0, self.integrate(state, first, params, switch, residual_scale), state)
+        end = self.integrate(mid, force, params, 1.0 - switch, residual_scale)
         return np.where(switch < 1, end, mid)
 
     def describe(self) -> dict[str, Any]:
@@ -839,8 +873,23 @@ def _diverged_rows(a: Array) -> Array:
     return ~(m <= DIVERGENCE_BOUND)
 
 
+def _residual_for(physics: Physics, residual: Any) -> Any:
+    """The plant's residual from a ``residual.json`` path (checked against it) or a ready object."""
+    from .residual import Residual, load_residual
+
+    if isinstance(residual, Residual):
+        lib = residual.library
+        if (lib.state_names, lib.action_names) != (tuple(physics.state_names), tuple(physics.action_names)):
+            raise ValueError(f"residual: built for states {', '.join(lib.state_names)} and actions "
+                             f"{', '.join(lib.action_names)}, not this plant's")
+        return residual
+    if not isinstance(residual, (str, os.PathLike)):
+        raise ValueError(f"residual: {residual!r} is not a path to a residual.json")
+    return load_residual(residual, physics)
+
+
 def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: float = 1e-6) -> tuple[Array, Array]:
-    """Central-difference Jacobians ``A = df/dx``, ``B = df/du`` at one point.
+    """Central-difference Jacobians ``A = df/dx``, ``B = df/du`` of the model (physics plus residual) at one point.
 
     ``state`` (S,), ``force`` (A,) in physical units, ``params`` (P,). All
     perturbed points are evaluated in one batched call.
@@ -850,7 +899,7 @@ def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: 
     step_u = eps * np.maximum(1.0, np.abs(force))
     dx = np.concatenate([np.diag(step_x), -np.diag(step_x), np.zeros((2 * a, s))])
     du = np.concatenate([np.zeros((2 * s, a)), np.diag(step_u), -np.diag(step_u)])
-    f = physics.derivatives(state + dx, force + du, np.tile(params, (dx.shape[0], 1)))
+    f = physics.model_derivatives(state + dx, force + du, np.tile(params, (dx.shape[0], 1)))
     jac_a = (f[:s] - f[s : 2 * s]).T / (2 * step_x)
     jac_b = (f[2 * s : 2 * s + a] - f[2 * s + a :]).T / (2 * step_u)
     return jac_a, jac_b
@@ -859,7 +908,7 @@ def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: 
 # --------------------------------------------------------------------------- #
 # gymnasium front doors
 # --------------------------------------------------------------------------- #
-class _Renderer:
+class Renderer:
     """matplotlib renderer shared by the single and vector envs."""
 
     def __init__(self, physics: Physics, mode: str | None):
@@ -940,7 +989,7 @@ class PhysicsEnv(gym.Env):
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
         self.metadata = {**self.metadata, "render_fps": int(round(1.0 / self.physics.dt))}
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(1)
         self._steps = np.zeros(1, dtype=np.int64)
@@ -1053,7 +1102,7 @@ class PhysicsVectorEnv(VectorEnv):
         if render_mode is not None and render_mode not in self.metadata["render_modes"]:
             raise ValueError(f"render_mode: {render_mode!r} not one of {self.metadata['render_modes']}")
         self.render_mode = render_mode
-        self._renderer = _Renderer(self.physics, render_mode)
+        self._renderer = Renderer(self.physics, render_mode)
         self._state: Array | None = None
         self._hold = np.zeros(self.num_envs)
         self._steps = np.zeros(self.num_envs, dtype=np.int64)

@@ -8,8 +8,10 @@ Library code never prints: progress goes to an optional ``log`` callable, warnin
 from __future__ import annotations
 
 import os
+import re
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -21,6 +23,25 @@ if TYPE_CHECKING:
     from pretrial.playback.replay import Replay
 
 PathLike = str | os.PathLike[str]
+
+#: command-line flags in shared error messages -> the API's keyword for the same input
+_KEYWORDS = {"--set": "settings", "--option": "options", "--safe-action": "safe_action", "--residual-degree":
+             "residual_degree", "--residual-margin": "residual_margin"}
+_FLAG = re.compile(r"--([a-z][a-z-]*)")
+
+
+@contextmanager
+def _in_api_words() -> Iterator[None]:
+    """Re-raise an InputError with its command-line flags named as this API's keywords (``--set`` -> ``settings``)."""
+    from pretrial.errors import PretrialError
+
+    try:
+        yield
+    except PretrialError as exc:
+        text = _FLAG.sub(lambda m: _KEYWORDS.get(m.group(0), m.group(1).replace("-", "_")), exc.message)
+        if text == exc.message:
+            raise
+        raise type(exc)(text) from None
 
 
 @dataclass
@@ -56,7 +77,8 @@ class Run:
 
 def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: PathLike | None = None,
            seed: int | None = None, generations: int | None = None, workers: int | str | None = None,
-           dask: str | None = None, resume: bool = False, log: Callable[[str], None] | None = None) -> Run:
+           dask: str | None = None, resume: bool = False, log: Callable[[str], None] | None = None,
+           reporters: Sequence[Any] = ()) -> Run:
     """Evolve a controller with NEAT from a run config.
 
     Parameters
@@ -73,32 +95,38 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
         Continue the run in ``out`` from its last checkpoint.
     log : callable, optional
         Receives one line per generation and the closing lines (default: nothing).
+    reporters : sequence of Reporter, optional
+        Observers of the run (subclasses of :class:`pretrial.evolution.reporters.Reporter`), e.g. to
+        collect each generation's row as it finishes.
 
     Returns
     -------
     Run
         The run directory and the summary; ``run.champion`` is the evolved policy.
     """
-    from pretrial.evolution.config import Config, load_config, with_overrides, with_plan
-    from pretrial.evolution.loop import Evolution
-    from pretrial.sim.execution import make_executor
+    with _in_api_words():
+        from pretrial.evolution.config import Config, load_config, with_overrides
+        from pretrial.evolution.loop import Evolution
+        from pretrial.evolution.task import with_plan
+        from pretrial.sim.execution import make_executor
 
-    cfg = config if isinstance(config, Config) else load_config(config)
-    if plan is not None:
-        cfg = with_plan(cfg, plan, label="plan")
-    cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask)
-    if resume and out is None:
-        raise ValueError("resume=True needs out= (the run directory to continue)")
-    run_dir = Path(out) if out is not None else \
-        Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
-    with make_executor(cfg.run.workers, cfg.run.dask) as executor:
-        evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"])
-        if resume:
-            evo.resume()
-        else:
-            evo.create()
-        summary = evo.run(cfg.run.generations)
-    return Run(run_dir, summary)
+        cfg = config if isinstance(config, Config) else load_config(config)
+        if plan is not None:
+            cfg = with_plan(cfg, plan, label="plan")
+        cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask)
+        if resume and out is None:
+            raise ValueError("resume=True needs out= (the run directory to continue)")
+        run_dir = Path(out) if out is not None else \
+            Path("runs") / f"{cfg.name}-{time.strftime('%Y%m%d-%H%M%S', time.gmtime())}"
+        with make_executor(cfg.run.workers, cfg.run.dask) as executor:
+            evo = Evolution(cfg, run_dir, executor, log or (lambda _line: None), command_line=["pretrial.evolve"],
+                            reporters=reporters)
+            if resume:
+                evo.resume()
+            else:
+                evo.create()
+            summary = evo.run(cfg.run.generations)
+        return Run(run_dir, summary)
 
 
 def sweep(policy: PathLike | Policy, plan: PathLike, *, out: PathLike | None = None, baseline: bool = False,
@@ -128,12 +156,13 @@ def sweep(policy: PathLike | Policy, plan: PathLike, *, out: PathLike | None = N
         The verdict (``.passed``, ``.verdict``, ``.failing``), every requirement and the whole
         ``results.json`` document (``.doc``); ``.directory`` holds the report.
     """
-    from pretrial.analysis.sweep import run_sweep
+    with _in_api_words():
+        from pretrial.analysis.sweep import run_sweep
 
-    policy_arg = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
-    results, _files = run_sweep(policy_arg, plan, out, baseline=baseline, workers=workers, dask=dask, log=log,
-                                command=["pretrial.sweep"])
-    return results
+        policy_arg = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
+        results, _files = run_sweep(policy_arg, plan, out, baseline=baseline, workers=workers, dask=dask, log=log,
+                                    command=["pretrial.sweep"])
+        return results
 
 
 def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike | None = None,
@@ -165,13 +194,82 @@ def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike 
         ``.outcome`` (success, failure words, returns, the recorded trace), ``.metrics`` (task and
         loop-quality measures with units); :func:`pretrial.playback.replay.summary` gives the JSON form.
     """
-    from pretrial.playback.replay import replay as run
+    with _in_api_words():
+        from pretrial.playback.replay import replay as run
 
-    if start is not None and not isinstance(start, str):
-        start = ",".join(repr(float(v)) for v in start)
-    given = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
-    return run(given, env=env, plan=None if plan is None else os.fspath(plan), settings=dict(settings or {}),
-               episodes=episodes, seed=seed, start=start, stream_version=stream_version)
+        if start is not None and not isinstance(start, str):
+            start = ",".join(repr(float(v)) for v in start)
+        given = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
+        return run(given, env=env, plan=None if plan is None else os.fspath(plan), settings=dict(settings or {}),
+                   episodes=episodes, seed=seed, start=start, stream_version=stream_version)
+
+
+@dataclass
+class Calibration:
+    """A finished calibration.
+
+    Attributes
+    ----------
+    directory : Path
+        The calibration directory (``calibration.json``, ``params.toml``, ``dispersion.toml``, plots,
+        ``report.md``, and ``residual.json`` when a residual was fitted).
+    summary : dict
+        ``calibration.json``: estimates with bootstrap std and 95% intervals, fit and validation errors,
+        identifiability flags, the bootstrap set.
+    """
+
+    directory: Path
+    summary: dict[str, Any]
+
+    @property
+    def estimates(self) -> dict[str, float]:
+        """Each fitted name's estimate, in its unit."""
+        return {n: float(v["estimate"]) for n, v in self.summary["params"].items()}
+
+    @property
+    def intervals(self) -> dict[str, tuple[float, float]]:
+        """Each fitted name's bootstrap 95% interval (it covers noise, not model error)."""
+        return {n: (float(v["ci95"][0]), float(v["ci95"][1])) for n, v in self.summary["params"].items()}
+
+
+def calibrate(logs: Sequence[PathLike], env: str, fit: Sequence[str], *, out: PathLike | None = None,
+              options: Mapping[str, Any] | None = None, fixed: Mapping[str, Any] | None = None,
+              guess: Mapping[str, Any] | None = None, window: float = 0.5, bootstrap: int = 100, seed: int = 0,
+              validate: Sequence[PathLike] = (), holdout: float = 0.2, residual: bool = False,
+              residual_degree: int = 2, residual_margin: float = 0.1) -> Calibration:
+    """Estimate plant parameters from bench logs, with block-bootstrap uncertainty (as ``pretrial calibrate``).
+
+    Parameters
+    ----------
+    logs : sequence of path-like
+        CSV logs: ``t``, the env's states by name, its actions.
+    env : str
+        Environment id.
+    fit : sequence of str
+        Physics parameters (or ``actuator_gain``, ``actuator_lag_s``, ``actuator_delay_s``) to estimate.
+    out : path-like, optional
+        A new calibration directory (default ``calibrations/<env>-<UTC time>``).
+    options, fixed, guess : mapping, optional
+        Env options; values held fixed; where the fit of a name starts.
+    window, bootstrap, seed, validate, holdout
+        Multiple-shooting window (s), bootstrap replicates and seed, held-out logs or share.
+    residual, residual_degree, residual_margin
+        Also fit a residual of the derivatives the physics misses, and its trust region.
+
+    Returns
+    -------
+    Calibration
+    """
+    with _in_api_words():
+        from pretrial.calibration.calibrate import CalibrationRequest, run_calibration
+
+        req = CalibrationRequest(env=env, logs=[os.fspath(p) for p in logs], fit=list(fit), options=dict(options or {}),
+                                 fixed=dict(fixed or {}), guess=dict(guess or {}), window=window, bootstrap=bootstrap,
+                                 seed=seed, validate=[os.fspath(p) for p in validate], holdout=holdout,
+                                 out=None if out is None else os.fspath(out), residual=residual,
+                                 residual_degree=residual_degree, residual_margin=residual_margin)
+        summary, directory = run_calibration(req)
+        return Calibration(directory, summary)
 
 
 def load_policy(path: PathLike) -> Policy:
@@ -188,11 +286,12 @@ def export_policy(policy: PathLike | Policy, to: str, out_dir: PathLike, *, prec
     Returns the files written (code first, golden file last); see the README's ``pretrial export``
     for what the generated step does on a fault.
     """
-    from pretrial.export.exporter import DEFAULT_PREFIX
-    from pretrial.export.exporter import export_policy as write
+    with _in_api_words():
+        from pretrial.export.exporter import DEFAULT_PREFIX
+        from pretrial.export.exporter import export_policy as write
 
-    pol = policy if not isinstance(policy, (str, os.PathLike)) else load_policy(policy)
-    return write(pol, to, out_dir, precision, prefix or DEFAULT_PREFIX, safe_action=safe_action)
+        pol = policy if not isinstance(policy, (str, os.PathLike)) else load_policy(policy)
+        return write(pol, to, out_dir, precision, prefix or DEFAULT_PREFIX, safe_action=safe_action)
 
 
 def read_sweep(path: PathLike) -> SweepResults:

@@ -22,10 +22,10 @@ from scipy.stats import qmc
 from pretrial.analysis import campaign as sweep
 from pretrial.analysis import samples
 from pretrial.analysis.campaign import Campaign, montecarlo
+from pretrial.analysis.plan import unit_to_value
 from pretrial.analysis.samples import exact_quantiles, order_statistics, sample_histograms, unit_blocks
 from pretrial.analysis.sweep import controlled
 from pretrial.cli.main import main
-from pretrial.evolution.plan_training import unit_to_value
 from pretrial.report import samples_csv as report
 from pretrial.report.samples_csv import write_samples_csv
 from pretrial.sim import streams

@@ -48,7 +48,7 @@ def test_sobol_indices_of_the_ishigami_function(monkeypatch):
 
 def test_draws_follow_the_plans_distributions():
     # outside reference: scipy.stats' own uniform, log-uniform and truncated normal inverse CDFs; Monte Carlo,
-    # training and sensitivity all map uniforms through pretrial.evolution.plan_training.unit_to_value
+    # training and sensitivity all map uniforms through pretrial.analysis.plan.unit_to_value
     from scipy import stats
 
     u = np.linspace(0.01, 0.99, 9)

@@ -15,8 +15,9 @@ from scipy.stats import binomtest
 from pretrial.analysis import campaign as sweep
 from pretrial.analysis.linear import loop_report
 from pretrial.analysis.lqr import design_lqr
-from pretrial.analysis.plan import Z2, episodes_needed, load_plan
+from pretrial.analysis.plan import episodes_needed, load_plan
 from pretrial.analysis.results import read_results
+from pretrial.analysis.stats import Z2
 from pretrial.cli.main import main
 from pretrial.console import CAUTIONS
 from pretrial.errors import InputError
@@ -340,3 +341,10 @@ def test_policy_file_with_baseline(capsys, tmp_path):
     assert base["montecarlo"] != res["montecarlo"]  # a different controller, its own results
     if res["montecarlo"]["worst"]:
         assert res["montecarlo"]["worst"][0]["replay"].startswith(f"pretrial replay {policy}")
+
+
+def test_every_analysis_a_plan_may_name_has_a_runner():
+    from pretrial.analysis.campaign import RUNNERS
+    from pretrial.analysis.plan import ANALYSES
+
+    assert set(RUNNERS) == set(ANALYSES)

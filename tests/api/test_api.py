@@ -7,33 +7,12 @@ import re
 import shutil
 
 import pytest
-from helpers import ROOT, balancing_policy_file
+from helpers import ROOT, balancing_policy_file, quick_plan
 
 import pretrial
 from pretrial.cli.main import main
 
-SMALL_PLAN = """
-[scenario]
-env = "pretrial/CartPole-v0"
-episodes = 20
-horizon = 2.0
-seed = 5
-[[vary]]
-name = "pole_mass"
-units = "ratio"
-range = [0.5, 4.0]
-dispersion = [0.8, 1.5]
-[[vary]]
-name = "actuator_gain"
-range = [0.01, 2.0]
-dispersion = [0.02, 1.0]
-[analysis]
-run = ["margins", "montecarlo"]
-tolerance = 0.05
-montecarlo_samples = 32
-[require]
-success_rate = 0.5
-"""
+SMALL_PLAN = quick_plan(seed=5, samples=32, required=0.5)
 
 
 def _replays(doc) -> list[str]:
@@ -120,3 +99,45 @@ def test_library_warnings_go_through_logging(tmp_path, caplog):
     with caplog.at_level("WARNING", logger="pretrial"):
         warn("pretrial: warning: 3 episodes diverged")
     assert [r.getMessage() for r in caplog.records] == ["3 episodes diverged"]
+
+
+def test_calibrate_function_equals_the_command(tmp_path, capsys):
+    logs = [ROOT / "configs" / "bench" / "run1.csv", ROOT / "configs" / "bench" / "run2.csv"]
+    names = ["cart_mass", "pole_mass", "pole_half_length"]
+    cal = pretrial.calibrate(logs, "CartPole-v0", names, fixed={"gravity": 9.81}, bootstrap=0, out=tmp_path / "api")
+    argv = ["calibrate", *map(str, logs), "--env", "CartPole-v0", "--set", "gravity=9.81", "--fit", ",".join(names),
+            "--bootstrap", "0", "--out", str(tmp_path / "cli"), "--json"]
+    assert main(argv) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert cal.summary["content_sha256"] == doc["content_sha256"]  # the same file, byte for byte
+    assert (tmp_path / "api" / "calibration.json").read_bytes() == (tmp_path / "cli" / "calibration.json").read_bytes()
+    assert cal.estimates == {n: v["estimate"] for n, v in doc["params"].items()}
+    assert set(cal.intervals) == set(names)
+
+
+def test_evolve_reports_each_generation_to_an_observer(tmp_path):
+    from pretrial.evolution.reporters import Reporter
+
+    class Rows(Reporter):
+        def __init__(self):
+            self.rows = []
+
+        def generation_done(self, row, seconds, eta_s, best_success):
+            self.rows.append(row)
+
+    rows = Rows()
+    run = pretrial.evolve(ROOT / "configs" / "cartpole.toml", generations=2, workers=1, out=tmp_path / "run",
+                          reporters=[rows])
+    assert [r["generation"] for r in rows.rows] == [0, 1]
+    history = (tmp_path / "run" / "history.csv").read_text().splitlines()
+    assert len(history) == 3 and history[1].startswith("0,")  # the rows the observer saw are the run's history
+    assert run.champion.content_hash == pretrial.load_policy(tmp_path / "run").content_hash
+
+
+def test_api_errors_name_keywords_not_flags(tmp_path):
+    with pytest.raises(pretrial.InputError) as err:
+        pretrial.replay("lqr", env="CartPole-v0", episodes=0)
+    assert err.value.message.startswith("episodes: 0 not allowed") and "--" not in err.value.message
+    with pytest.raises(pretrial.InputError) as err:
+        pretrial.replay("lqr", env="CartPole-v0", settings={"nosuch": 1.0})
+    assert err.value.message.startswith("settings ") and "--" not in err.value.message

@@ -18,7 +18,7 @@ from helpers import library_outputs, make_config, random_genome
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pretrial.controller.network import (
+from pretrial.controller.policy import (
     IOMap,
     Policy,
     PopulationPolicy,

@@ -23,10 +23,10 @@ from pretrial.evolution.config import (
     RunConfig,
     TaskConfig,
     build_neat_ini,
-    dump_toml,
     load_config,
     neat_key_sections,
 )
+from pretrial.tomlfile import dump_toml
 
 GOOD = """
 [task]

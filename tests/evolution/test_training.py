@@ -119,9 +119,10 @@ def test_linear_shortfall_zero_for_the_lqr_and_whole_when_unstable():
 
 
 def test_training_streams_never_meet_the_plans_own(tmp_path):
-    from pretrial.analysis.campaign import _SEED_KEYS, derive_seed
+    from pretrial.analysis.campaign import _SEED_KEYS
+    from pretrial.analysis.stats import derive_seed
     from pretrial.evolution.config import load_config
-    from pretrial.evolution.loop import _SCENARIO_STREAM, _scenarios, make_task
+    from pretrial.evolution.task import SCENARIO_STREAM, make_task, training_scenarios
     from pretrial.sim import streams
 
     plan_path = ROOT / "configs" / "sweeps" / "cartpole.toml"
@@ -131,7 +132,7 @@ def test_training_streams_never_meet_the_plans_own(tmp_path):
     cfg = load_config(cfg_path)
     task = make_task(cfg)
     assert task.distribution is not None and task.quality is not None
-    train = np.concatenate([_scenarios(task, 16, 1, _SCENARIO_STREAM, k, generation=k).keys for k in range(20)])
+    train = np.concatenate([training_scenarios(task, 16, 1, SCENARIO_STREAM, k, generation=k).keys for k in range(20)])
     mc_seed = derive_seed(1, _SEED_KEYS["montecarlo"])
     mc = streams.episode_keys(streams.episode_keys(np.uint64(mc_seed), np.arange(2000)), np.zeros(2000, np.int64))
     assert len(set(train.tolist()) & set(mc.tolist())) == 0

@@ -169,14 +169,14 @@ def test_long_title_does_not_widen_the_figure(tmp_path):
 
 def test_replay_plot_draws_targets_and_bands(monkeypatch, tmp_path):
     figures = []
-    real = traces._figure
+    real = traces.new_figure
 
     def keep(*a, **k):
         fig = real(*a, **k)
         figures.append(fig)
         return fig
 
-    monkeypatch.setattr(traces, "_figure", keep)
+    monkeypatch.setattr(traces, "new_figure", keep)
     rep = _gantry_replay({})
     traces.plot_traces(tmp_path / "g.png", rep.physics, rep.outcome.trace, rep.scenarios.params,
                        rep.outcome.steps[0])
@@ -199,8 +199,8 @@ def test_replay_plot_draws_targets_and_bands(monkeypatch, tmp_path):
 
 def test_replay_plot_bands_the_regulated_states(monkeypatch, tmp_path):
     figures = []
-    real = traces._figure
-    monkeypatch.setattr(traces, "_figure", lambda *a, **k: figures.append(real(*a, **k)) or figures[-1])
+    real = traces.new_figure
+    monkeypatch.setattr(traces, "new_figure", lambda *a, **k: figures.append(real(*a, **k)) or figures[-1])
     physics = make_physics("pretrial/CartPole-v0")
     setup = apply_settings(physics, base_params={}, settings={})
     rep = run_replay(lqr_policy(setup), setup, episodes=1, seed=0, max_steps=50)

@@ -10,7 +10,7 @@ import gymnasium as gym
 import numpy as np
 import pytest
 
-from pretrial.controller.network import load_policy
+from pretrial.controller.policy import load_policy
 from pretrial.errors import InputError
 from pretrial.evolution.config import load_config
 from pretrial.evolution.loop import Evolution

@@ -25,11 +25,14 @@ from typing import Any
 
 import numpy as np
 
-from pretrial.analysis.plan import Z2, Plan, Vary
+from pretrial.analysis.plan import MARGIN_BRACKET, Plan, Vary, unit_to_value
 from pretrial.analysis.samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
-from pretrial.evolution.plan_training import unit_to_value
+from pretrial.analysis.stats import derive_seed, wilson_interval
+from pretrial.analysis.trust import EnvelopeTally, envelope_requirement, envelope_summary
+from pretrial.playback.command import replay_command
 from pretrial.sim import streams
 from pretrial.sim.execution import Executor
+from pretrial.sim.hybrid import residual_record
 from pretrial.sim.perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
 from pretrial.sim.rollout import keyed_scenarios, run_episodes
 from pretrial_envs.core import Physics
@@ -45,27 +48,6 @@ INTEGRATOR_RATE_TOLERANCE = 0.02
 INTEGRATOR_SCORE_TOLERANCE = 0.02
 
 
-def wilson_interval(successes: np.ndarray | int, n: np.ndarray | int) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson (1927) score interval at 95% for ``successes`` out of ``n``.
-
-    Returns (lower, upper); with all n succeeding the lower bound is n / (n + z^2).
-    """
-    k = np.asarray(successes, dtype=float)
-    n = np.asarray(n, dtype=float)
-    p = k / n
-    denom = 1.0 + Z2 / n
-    centre = (p + Z2 / (2 * n)) / denom
-    half = math.sqrt(Z2) * np.sqrt(p * (1 - p) / n + Z2 / (4 * n * n)) / denom
-    lo = np.where(k == 0, 0.0, centre - half)
-    hi = np.where(k == n, 1.0, centre + half)
-    return lo, hi
-
-
-def derive_seed(seed: int, *key: int) -> int:
-    """A 64-bit seed for one analysis of a plan (a pure function of the plan seed)."""
-    return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
-
-
 @dataclass
 class Batch:
     """Results of :meth:`Campaign.evaluate`, one entry per row."""
@@ -74,16 +56,21 @@ class Batch:
     failure: np.ndarray  # failure words ("" for success)
     score: np.ndarray
     steps: np.ndarray
+    #: share of each episode's steps outside a hybrid plant's residual envelope (None: no residual)
+    outside: np.ndarray | None = None
 
 
-def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Work item: one chunk of rows of one plant (module level, so it pickles)."""
     physics, policy, params, settings, seeds, episodes, max_steps, quality, stream_version = item
     sc = keyed_scenarios(physics, seeds, episodes, params, settings)
     out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality,
                        stream_version=stream_version)
     words = np.array(out.failure_words, dtype=object)[out.failure[0]]
-    return out.success[0], words.astype(str), out.score[0], out.steps[0]
+    env = None
+    if out.envelope is not None:  # rows: share, outside steps, first variable out
+        env = np.stack([out.envelope["share"][0], out.envelope["outside_steps"][0], out.envelope["first_var"][0]])
+    return out.success[0], words.astype(str), out.score[0], out.steps[0], env
 
 
 @dataclass
@@ -121,6 +108,9 @@ class Campaign:
     #: diverged episodes so far: count, and the values (varied names) and keys of each
     _diverged: list[tuple[dict[str, float], int, int]] = field(default_factory=list, repr=False)
     diverged_episodes: int = 0
+    #: the analysis running now: the trust-region tally is kept per analysis
+    stage: str = "evaluate"
+    _trust: EnvelopeTally | None = field(default=None, repr=False)
 
     def nominal(self, name: str) -> float:
         """Nominal value of a varied name here (policy/plan overrides included)."""
@@ -154,6 +144,7 @@ class Campaign:
         failure = np.empty(n, dtype=object)
         score = np.zeros(n)
         steps = np.zeros(n, dtype=np.int64)
+        env = np.zeros((3, n)) if getattr(self.physics, "residual", None) is not None else None
         chunks = []
         for dt in np.unique(period):
             rows = np.flatnonzero(period == dt)
@@ -168,8 +159,10 @@ class Campaign:
             items = [(physics, self.policy, np.repeat(base, len(r), axis=0), {k: v[r] for k, v in vals.items()},
                       seeds[r], episodes[r], self.max_steps(physics), self.plan.quality, self.stream_version)
                      for physics, base, r in part]
-            for (_, _, r), (s, f, sc, st) in zip(part, self.executor.map(_run_chunk, items), strict=True):
+            for (_, _, r), (s, f, sc, st, e) in zip(part, self.executor.map(_run_chunk, items), strict=True):
                 success[r], failure[r], score[r], steps[r] = s, f, sc, st
+                if env is not None:
+                    env[:, r] = e
                 if self.progress is not None:
                     self.progress(len(r))
         failure = failure.astype(str)
@@ -180,7 +173,19 @@ class Campaign:
             if np.any(period != self.physics.dt):
                 row[CONTROL_PERIOD] = float(period[i])
             self._diverged.append((row, int(seeds[i]), int(episodes[i])))
-        return Batch(success, failure, score, steps)
+        if env is None:
+            return Batch(success, failure, score, steps)
+        if self._trust is None:
+            self._trust = EnvelopeTally(self.physics.residual.envelope.names)
+        self._trust.add(self.stage, env[0], env[1].astype(np.int64), steps, env[2].astype(np.int64))
+        return Batch(success, failure, score, steps, env[0])
+
+    def envelope(self) -> dict[str, Any] | None:
+        """The trust region so far (``results.json``'s ``envelope``); None on a plant without a residual."""
+        record = residual_record(self.physics)
+        if record is not None and self._trust is None:
+            self._trust = EnvelopeTally(self.physics.residual.envelope.names)
+        return envelope_summary(self._trust, record)
 
     def diverged(self) -> dict[str, Any] | None:
         """Diverged episodes (numerical blow-up, counted as failures): how many, where, and a replay of one."""
@@ -200,21 +205,11 @@ class Campaign:
 
     # ------------------------------------------------------------- replay commands
     def replay_command(self, values: Mapping[str, float], seed: int, episodes: int = 1) -> str:
-        words = ["pretrial", "replay", _quote(self.policy_arg), "--plan", _quote(self.plan.path)]
-        if self.policy_arg == "lqr":
-            words += ["--env", self.physics.env_id]
-        for k, v in values.items():
-            words += ["--set", f"{k}={float(v)!r}"]
-        words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
-        if self.stream_version != 1:  # a command without it replays version 1's draws
-            words += ["--stream-version", str(self.stream_version)]
-        return " ".join(words)
-
-
-def _quote(text: str) -> str:
-    import shlex
-
-    return shlex.quote(text)
+        """The replay of ``episodes`` episodes of ``seed`` at ``values`` under this plan."""
+        return replay_command(self.policy_arg, plan=self.plan.path,
+                              env=self.physics.env_id if self.policy_arg == "lqr" else None,
+                              settings={k: float(v) for k, v in values.items()}, seed=seed, episodes=episodes,
+                              stream_version=self.stream_version)
 
 
 def _modes(words: np.ndarray) -> dict[str, int]:
@@ -268,10 +263,6 @@ class _Search:
         return (v - self.start) / (self.end - self.start)
 
 
-#: outward bracketing steps, as fractions of the way from the nominal to the range end
-_BRACKET = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0)
-
-
 def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
     """One-at-a-time margins: bracket outward from nominal, then bisect to the plan's tolerance.
 
@@ -318,12 +309,12 @@ def margins(c: Campaign, seed: int) -> list[dict[str, Any]]:
         if not points[s.vary.name][s.start].passed:
             s.passed, s.failed, s.done = None, s.start, True  # fails at nominal: no margin
     # bracket: every search's outward points in one batch
-    run([(s.vary.name, s.at(f)) for s in searches if not s.done for f in _BRACKET])
+    run([(s.vary.name, s.at(f)) for s in searches if not s.done for f in MARGIN_BRACKET])
     for s in searches:
         if s.done:
             continue
         s.passed = s.start
-        for f in _BRACKET:
+        for f in MARGIN_BRACKET:
             p = points[s.vary.name][s.at(f)]
             if not p.passed:
                 s.failed = p.value
@@ -621,7 +612,7 @@ def sensitivity(c: Campaign, seed: int) -> dict[str, Any]:
 class _Drawn:
     """A varied name's distribution as ``scipy.stats.sobol_indices`` asks for one: its inverse CDF only.
 
-    The mapping is :func:`pretrial.evolution.plan_training.unit_to_value`, the one Monte Carlo and training use.
+    The mapping is :func:`pretrial.analysis.plan.unit_to_value`, the one Monte Carlo and training use.
     """
 
     vary: Vary
@@ -802,6 +793,10 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
                 ok = got is None or got >= want
                 out.append({"name": f"{req_name} {ch['channel']} ({title})", "required": want, "measured": measured,
                             "pass": bool(ok)})
+    if "envelope" in res:  # a sweep's campaign measured it (None: the plant has no residual)
+        row = envelope_requirement(plan.max_outside_envelope, res["envelope"])
+        if row is not None:
+            out.append(row)
     if res.get("integrator_check") is not None:
         ic = res["integrator_check"]
         out.append({"name": "integrator check", "required": "no change with a finer step",
@@ -819,90 +814,83 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
     return "pass" if judged and all(r["pass"] for r in judged) else "fail"
 
 
-#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 #: key into the Monte Carlo seed for the calibration's bootstrap-row draws
 _CALIBRATION_DRAWS = 7
 
+#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
+
+
+@dataclass
+class _Outputs:
+    """Where the analyses put what they find: the results part, and the Monte Carlo histograms and files."""
+
+    res: dict[str, Any]
+    say: Callable[[str], None] | None
+    samples_csv: Path | None
+    scratch: Path | None
+    samples: SampleHistograms | None = None
+
+
+def _linear(c: Campaign, _seed: int, out: _Outputs) -> None:
+    out.res["linear"], out.res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
+
+
+def _linear_sampled(c: Campaign, _seed: int, out: _Outputs) -> None:
+    out.res["linear_sampled"], out.res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
+
+
+def _integrator(c: Campaign, seed: int, out: _Outputs) -> None:
+    if "substeps" not in c.physics.options():  # a plain gymnasium env integrates itself: no step to refine
+        why = f"{c.physics.env_id} integrates its own equations; pretrial cannot refine its step or change its method"
+        out.res["skipped"] = {"integrator_check": why}
+        if out.say is not None:
+            out.say(f"  integrator_check skipped: {why}")
+        return
+    out.res["integrator_check"] = integrator_check(c, seed)
+
+
+def _montecarlo(c: Campaign, seed: int, out: _Outputs) -> None:
+    out.res["montecarlo"], out.samples = montecarlo(c, seed, out.samples_csv, out.scratch)
+
+
+#: what runs each analysis a plan may name (:data:`pretrial.analysis.plan.ANALYSES`), in the order they run
+RUNNERS: dict[str, Callable[[Campaign, int, _Outputs], None]] = {
+    "linear": _linear,
+    "linear_sampled": _linear_sampled,
+    "integrator_check": _integrator,
+    "margins": lambda c, seed, out: out.res.__setitem__("margins", margins(c, seed)),
+    "montecarlo": _montecarlo,
+    "worstcase": lambda c, seed, out: out.res.__setitem__("worstcase", worstcase(c, seed)),
+    "sensitivity": lambda c, seed, out: out.res.__setitem__("sensitivity", sensitivity(c, seed)),
+    "map": lambda c, seed, out: out.res.__setitem__("success_map", success_map(c, seed)),
+}
 
 
 def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_csv: Path | None = None,
                  scratch: Path | None = None) -> tuple[dict[str, Any], SampleHistograms | None]:
-    """Every analysis the plan names, on one controller; returns (results part, Monte Carlo histograms).
+    """Every analysis the plan names (:data:`RUNNERS`), on one controller; returns (results part, histograms).
 
     ``say`` receives one line as each analysis starts (progress where no bar can be drawn);
     ``samples_csv`` and ``scratch`` are :func:`montecarlo`'s ``csv_path`` and ``scratch``.
     """
     plan = c.plan
-    run = set(plan.analyses)
-    order = [a for a in ("linear", "linear_sampled", "integrator_check", "margins", "montecarlo", "worstcase",
-                         "sensitivity", "map") if a in run]
-
-    def starting(name: str) -> None:
-        if say is not None:
-            say(f"  [{order.index(name) + 1}/{len(order)}] {name}")
-
+    order = [a for a in RUNNERS if a in set(plan.analyses)]
     res: dict[str, Any] = {k: None for k in ("margins", "montecarlo", "worstcase", "sensitivity", "success_map",
                                              "linear", "linear_sampled", "linear_details", "integrator_check")}
-    samples = None
-
-    def seed(name: str) -> int:
-        return derive_seed(plan.seed, _SEED_KEYS[name])
-
-    if "linear" in run or "linear_sampled" in run:
+    if "linear" in order or "linear_sampled" in order:
         res["linear_details"] = {"continuous": None, "sampled": None}
-    if "linear" in run:
-        starting("linear")
-        res["linear"], res["linear_details"]["continuous"] = linear_analysis(c, sampled=False)
-    if "linear_sampled" in run:
-        starting("linear_sampled")
-        res["linear_sampled"], res["linear_details"]["sampled"] = linear_analysis(c, sampled=True)
-    if "integrator_check" in run and "substeps" not in c.physics.options():
-        # a plain gymnasium env integrates itself: there is no step to refine
-        res["skipped"] = {"integrator_check": f"{c.physics.env_id} integrates its own equations; pretrial cannot "
-                                              "refine its step or change its method"}
-        say and say(f"  integrator_check skipped: {res['skipped']['integrator_check']}")
-    elif "integrator_check" in run:
-        starting("integrator_check")
-        res["integrator_check"] = integrator_check(c, seed("integrator_check"))
-    if "margins" in run:
-        starting("margins")
-        res["margins"] = margins(c, seed("margins"))
-    if "montecarlo" in run:
-        starting("montecarlo")
-        res["montecarlo"], samples = montecarlo(c, seed("montecarlo"), samples_csv, scratch)
-    if "worstcase" in run:
-        starting("worstcase")
-        res["worstcase"] = worstcase(c, seed("worstcase"))
-    if "sensitivity" in run:
-        starting("sensitivity")
-        res["sensitivity"] = sensitivity(c, seed("sensitivity"))
-    if "map" in run:
-        starting("map")
-        res["success_map"] = success_map(c, seed("map"))
+    out = _Outputs(res, say, samples_csv, scratch)
+    for k, name in enumerate(order):
+        c.stage = name  # which analysis the envelope tally counts for
+        if say is not None and not (name == "integrator_check" and "substeps" not in c.physics.options()):
+            say(f"  [{k + 1}/{len(order)}] {name}")
+        RUNNERS[name](c, derive_seed(plan.seed, _SEED_KEYS.get(name, 0)), out)  # the linear ones draw nothing
+    samples = out.samples
     res["diverged"] = c.diverged()
+    res["envelope"] = c.envelope()
     res["requirements"] = requirements(plan, res)
     res["verdict"] = verdict(res["requirements"])
     return res, samples
 
 
-def planned_episodes(plan: Plan, physics: Physics) -> int:
-    """A rough count of the episodes a plan runs (for the progress bar)."""
-    b = plan.budgets
-    d = len(plan.vary)
-    n = 0
-    run = set(plan.analyses)
-    if "margins" in run:
-        rounds = len(_BRACKET) + max(1, math.ceil(math.log2(1 / (16 * b["tolerance"]))) + 1)
-        n += plan.episodes * d * (1 + 2 * rounds)
-    if "montecarlo" in run:
-        n += b["montecarlo_samples"]
-    if "worstcase" in run:
-        n += b["worstcase_episodes"] * b["worstcase_population"] * d * (b["worstcase_iterations"] + 1)
-    if "sensitivity" in run:
-        n += b["sensitivity_samples"] * (d + 2) * b["sensitivity_episodes"]
-    if "map" in run:
-        n += b["map_points"] ** 2 * b.get("map_episodes", plan.episodes)
-    if "integrator_check" in run:
-        n += 3 * plan.episodes
-    return max(n, 1)

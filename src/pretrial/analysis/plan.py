@@ -8,7 +8,8 @@ A plan has these tables (see configs/sweeps/ for one per task)::
     [scenario.start]    start-state half-ranges by state name
     [[vary]]            name, range, units ("physical" | "ratio"), distribution
     [analysis]          which analyses, with their budgets
-    [require]           success rate, margins, linear margins the engineer needs
+    [require]           success rate, margins, linear margins the engineer needs; on a hybrid plant the
+                        share of simulated time allowed outside its residual's data (max_outside_envelope)
     [baseline]          LQR weights (q by state name, r by action name)
 
 Values of ``[[vary]]`` are in physical units, or with ``units = "ratio"`` as
@@ -23,11 +24,15 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
+from pretrial.analysis.stats import Z2
+from pretrial.analysis.trust import DEFAULT_MAX_OUTSIDE
 from pretrial.errors import InputError
-from pretrial.evolution.config import _kind, _Reader, dump_toml, read_toml
 from pretrial.files import sha256_hex
 from pretrial.limits import CONTROL_PERIOD as PERIOD_LIMIT
 from pretrial.limits import EPISODES, HORIZON, SEED, START_SPREAD, check_horizon, check_total
+from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.sim.perturb import (
     CONTROL_PERIOD,
     PERTURBATIONS,
@@ -37,13 +42,13 @@ from pretrial.sim.perturb import (
     with_control_period,
 )
 from pretrial.sim.quality import QualityLimits
+from pretrial.tomlfile import TableReader, kind_name, read_toml
+from pretrial_envs.core import Physics
 
 ANALYSES = ("margins", "montecarlo", "worstcase", "sensitivity", "map", "linear", "linear_sampled",
             "integrator_check")
 DISTRIBUTIONS = ("uniform", "loguniform", "normal")
 UNITS = ("physical", "ratio")
-#: two-sided 95% normal quantile squared, as in the Wilson interval (1.959964**2)
-Z2 = 1.959963984540054**2
 #: requirement defaults for linear margins (MIL-F-9490D, flight control systems)
 DEFAULT_GAIN_MARGIN_DB = 6.0
 DEFAULT_PHASE_MARGIN_DEG = 45.0
@@ -145,6 +150,9 @@ class Plan:
     worstcase_success_rate: float | None = None
     #: ``[scenario] calibration``: parameters Monte Carlo draws jointly from a calibration's bootstrap set
     calibration: Calibrated | None = None
+    #: ``[require] max_outside_envelope``: share of simulated time a hybrid plant may run outside its residual's
+    #: data (default :data:`~pretrial.analysis.trust.DEFAULT_MAX_OUTSIDE` there; None on a plain plant)
+    max_outside_envelope: float | None = None
 
     @property
     def name(self) -> str:
@@ -167,14 +175,12 @@ class Plan:
             "require": {"success_rate": self.required_success_rate, "margins": self.required_margins,
                         "gain_margin_db": self.gain_margin_db, "phase_margin_deg": self.phase_margin_deg,
                         "worstcase_success_rate": self.worstcase_success_rate,
-                        "quality": self.quality.to_dict()},
+                        "quality": self.quality.to_dict(),
+                        **({"max_outside_envelope": self.max_outside_envelope}
+                           if self.max_outside_envelope is not None else {})},
             "baseline": {"q": dict(self.lqr_q), "r": dict(self.lqr_r)},
             **({"calibration": self.calibration.to_dict()} if self.calibration is not None else {}),
         }
-
-    def toml(self) -> str:
-        data = self.to_dict()
-        return dump_toml({k: v for k, v in data.items() if k != "vary"})
 
 
 def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> Plan:
@@ -198,7 +204,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     """
     data, text = read_toml(path)
     path = str(path)
-    top = _Reader(path, "", data)
+    top = TableReader(path, "", data)
     scen_t = top.table_of("scenario")
     vary_l = top.table.pop("vary", [])
     top.known.append("vary")
@@ -207,12 +213,12 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     baseline_t = top.table_of("baseline")
     top.finish()
 
-    s = _Reader(path, "scenario", scen_t)
+    s = TableReader(path, "scenario", scen_t)
     env = s.take("env", str, None)
     episodes = s.take("episodes", int, 60, limit=EPISODES)
     horizon = s.take("horizon", float, None, limit=HORIZON)
     seed = s.take("seed", int, 0, limit=SEED)
-    options = s.table_of("options")
+    options = resolve_residual_path(s.table_of("options"), Path(path).parent)  # relative to the plan
     params_t = s.table_of("params")
     start_t = s.table_of("start")
     cal_path = s.take("calibration", str, None, lambda v: bool(v.strip()), "the path of a calibration.json")
@@ -234,7 +240,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
             hint = f" (did you mean {near[0]!r}?)" if near else ""
             raise InputError(f"{path}: {key}: unknown parameter{hint}; valid: {', '.join(physics.param_table.names)}")
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise InputError(f"{path}: {key}: expected a number, got {_kind(value)} {value!r}")
+            raise InputError(f"{path}: {key}: expected a number, got {kind_name(value)} {value!r}")
         try:
             params[name] = physics.param_table.check_value(name, value)
         except ValueError as exc:
@@ -252,7 +258,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
             raise InputError(f"{path}: {exc} ({_state_unit(physics, name)}, a half-range)") from None
 
     if not isinstance(vary_l, list) or not all(isinstance(v, dict) for v in vary_l):
-        raise InputError(f"{path}: vary: expected [[vary]] tables, got {_kind(vary_l)}")
+        raise InputError(f"{path}: vary: expected [[vary]] tables, got {kind_name(vary_l)}")
     vary: list[Vary] = []
     seen: set[str] = set()
     for i, item in enumerate(vary_l):
@@ -265,7 +271,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         seen.add(v.name)
         vary.append(v)
 
-    a = _Reader(path, "analysis", analysis_t)
+    a = TableReader(path, "analysis", analysis_t)
     run = a.take("run", list, ["margins", "montecarlo", "linear", "linear_sampled", "integrator_check"])
     budgets = {
         "tolerance": a.take("tolerance", float, 0.02, lambda v: 0 < v < 0.5, "a fraction of the range, 0 < t < 0.5"),
@@ -317,11 +323,13 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     if budgets["map_episodes"] is None:
         budgets.pop("map_episodes")
 
-    q = _Reader(path, "require", require_t)
+    q = TableReader(path, "require", require_t)
     rate = q.take("success_rate", float, 0.95, lambda v: 0 < v < 1, "a fraction, 0 < p < 1")
     gm = q.take("gain_margin_db", float, DEFAULT_GAIN_MARGIN_DB, lambda v: v >= 0, "dB >= 0")
     pm = q.take("phase_margin_deg", float, DEFAULT_PHASE_MARGIN_DEG, lambda v: 0 <= v <= 180, "degrees 0..180")
     worst_rate = q.take("worstcase_success_rate", float, None, lambda v: 0 <= v < 1, "a fraction, 0 <= p < 1")
+    max_outside = q.take("max_outside_envelope", float, None, lambda v: 0 <= v <= 1,
+                         "a share of the simulated time, 0 to 1")
     margins_t = q.table_of("margins")
     quality_t = q.table_of("quality")
     q.finish()
@@ -332,7 +340,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         key = f"require.margins.{name}"
         if name not in varied:
             raise InputError(f"{path}: {key}: {name!r} is not varied in this plan (varied: {', '.join(varied)})")
-        r = _Reader(path, key, req)
+        r = TableReader(path, key, req)
         entry = {k: r.take(k, float, None) for k in ("low", "high", "low_ratio", "high_ratio")}
         r.finish()
         entry = {k: v for k, v in entry.items() if v is not None}
@@ -361,7 +369,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
             f"even with all succeeding, the Wilson 95% lower bound is {episodes / (episodes + Z2):.4f}; "
             f"K >= 3.84 p / (1 - p) needs episodes = {k} or more")
 
-    b = _Reader(path, "baseline", baseline_t)
+    b = TableReader(path, "baseline", baseline_t)
     lqr_q = {k: _positive(path, f"baseline.q.{k}", v) for k, v in b.table_of("q").items()}
     lqr_r = {k: _positive(path, f"baseline.r.{k}", v) for k, v in b.table_of("r").items()}
     b.finish()
@@ -376,9 +384,11 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         raise InputError(f"{path}: scenario.env: the plan is for {env}, the policy for {policy_env}")
     if worst_rate is None and "worstcase" in run:
         worst_rate = DEFAULT_WORSTCASE_SHARE * rate
+    if max_outside is None and getattr(physics, "residual", None) is not None:
+        max_outside = DEFAULT_MAX_OUTSIDE
     plan = Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
                 tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text, quality,
-                worst_rate, calibrated)
+                worst_rate, calibrated, max_outside)
     check_plan_budget(plan, physics)
     return plan
 
@@ -416,7 +426,6 @@ def check_plan_budget(plan: Plan, physics: Any) -> int:
     The episodes are counted at the shortest control period the plan varies to.
     Raises InputError naming the factors when they pass :data:`pretrial.limits.COMMAND_STEPS`.
     """
-    from pretrial.analysis.campaign import planned_episodes
 
     plant = physics
     for v in plan.vary:
@@ -441,7 +450,7 @@ def read_quality(path: str, key: str, table: dict[str, Any], physics: Any) -> Qu
     ``growth_ratio``, ``growth_floor``, ``noisy_growth_ratio``,
     ``noisy_growth_floor`` (see :mod:`pretrial.sim.quality`).
     """
-    r = _Reader(path, key, table)
+    r = TableReader(path, key, table)
     base = QualityLimits()
 
     def limit_or_off(name: str, default: float | None, check, allowed: str) -> float | None:
@@ -499,7 +508,7 @@ def _state_unit(physics: Any, name: str) -> str:
 
 
 def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: dict[str, float]) -> Vary:
-    r = _Reader(path, key, item)
+    r = TableReader(path, key, item)
     name = r.take("name", str, allowed="a physics parameter or perturbation name")
     rng = r.take("range", list, allowed="[low, high]")
     units = r.take("units", str, "physical", lambda v: v in UNITS, " or ".join(UNITS))
@@ -568,3 +577,64 @@ def _read_vary(path: str, key: str, item: dict[str, Any], physics: Any, params: 
     elif mean is not None or std is not None:
         raise InputError(f"{path}: {key}: mean/std only apply to distribution = \"normal\"")
     return Vary(name, unit, float(nominal), lo, hi, dist, mean, std, units, blo, bhi)
+
+
+def scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str, Any]]:
+    """The plan's env, options and start ranges, read before the plant exists."""
+    from pretrial.tomlfile import read_toml
+
+    data, _ = read_toml(plan_path)
+    if "task" in data and "scenario" not in data:
+        raise InputError(f"{plan_path}: is a run config (it has [task]), not a sweep plan (see configs/sweeps/)")
+    scen = data.get("scenario", {})
+    if not isinstance(scen, dict):
+        raise InputError(f"{plan_path}: scenario: expected a table")
+    env = scen.get("env")
+    if env is not None and not isinstance(env, str):
+        raise InputError(f"{plan_path}: scenario.env: expected an environment id string, got {env!r}")
+    options = scen.get("options", {})
+    start = scen.get("start", {})
+    if not isinstance(options, dict):
+        raise InputError(f"{plan_path}: scenario.options: expected a table")
+    if not isinstance(start, dict):
+        raise InputError(f"{plan_path}: scenario.start: expected a table of state name = half-range")
+    return env, resolve_residual_path(options, Path(plan_path).parent), start
+
+
+def unit_to_value(v: Vary, u: np.ndarray) -> np.ndarray:
+    """Map uniform draws ``u`` in [0, 1) onto ``v``'s dispersion with its distribution (as the sweep draws)."""
+    lo, hi = v.box_low, v.box_high
+    if v.distribution == "loguniform":
+        return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
+    if v.distribution == "normal":
+        from scipy.stats import truncnorm
+
+        a, b = (lo - v.mean) / v.std, (hi - v.mean) / v.std
+        return truncnorm.ppf(u, a, b, loc=v.mean, scale=v.std)
+    return lo + u * (hi - lo)
+
+
+#: outward bracketing steps, as fractions of the way from the nominal to the range end
+MARGIN_BRACKET = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0)
+
+
+def planned_episodes(plan: Plan, physics: Physics) -> int:
+    """A rough count of the episodes a plan runs (for the progress bar)."""
+    b = plan.budgets
+    d = len(plan.vary)
+    n = 0
+    run = set(plan.analyses)
+    if "margins" in run:
+        rounds = len(MARGIN_BRACKET) + max(1, math.ceil(math.log2(1 / (16 * b["tolerance"]))) + 1)
+        n += plan.episodes * d * (1 + 2 * rounds)
+    if "montecarlo" in run:
+        n += b["montecarlo_samples"]
+    if "worstcase" in run:
+        n += b["worstcase_episodes"] * b["worstcase_population"] * d * (b["worstcase_iterations"] + 1)
+    if "sensitivity" in run:
+        n += b["sensitivity_samples"] * (d + 2) * b["sensitivity_episodes"]
+    if "map" in run:
+        n += b["map_points"] ** 2 * b.get("map_episodes", plan.episodes)
+    if "integrator_check" in run:
+        n += 3 * plan.episodes
+    return max(n, 1)

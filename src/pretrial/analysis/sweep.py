@@ -18,16 +18,18 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from pretrial import __version__
-from pretrial.analysis.plan import Plan, load_plan
+from pretrial.analysis.plan import Plan, load_plan, scenario_head
 from pretrial.analysis.results import SCHEMA, SCHEMA_VERSION, SweepResults, seal, write_results
+from pretrial.analysis.trust import envelope_caution
 from pretrial.console import CAUTIONS, Progress
 from pretrial.errors import InputError
 from pretrial.files import check_new_dir, move_into_place, staged, write_json
 from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
+from pretrial.sim.hybrid import check_trained_residual, residual_record
 from pretrial.sim.perturb import diverged_warning
 from pretrial.sim.plant import build_plant, check_workers_can_build, env_id_of
+from pretrial.version import __version__
 from pretrial_envs.core import Physics
 
 if TYPE_CHECKING:
@@ -62,28 +64,6 @@ TRAINED_ON_PLAN = ("This controller was trained against this plan's distribution
                    "controller was tuned for; a rig outside it is not covered.")
 
 
-def _scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str, Any]]:
-    """The plan's env, options and start ranges, read before the plant exists."""
-    from pretrial.evolution.config import read_toml
-
-    data, _ = read_toml(plan_path)
-    if "task" in data and "scenario" not in data:
-        raise InputError(f"{plan_path}: is a run config (it has [task]), not a sweep plan (see configs/sweeps/)")
-    scen = data.get("scenario", {})
-    if not isinstance(scen, dict):
-        raise InputError(f"{plan_path}: scenario: expected a table")
-    env = scen.get("env")
-    if env is not None and not isinstance(env, str):
-        raise InputError(f"{plan_path}: scenario.env: expected an environment id string, got {env!r}")
-    options = scen.get("options", {})
-    start = scen.get("start", {})
-    if not isinstance(options, dict):
-        raise InputError(f"{plan_path}: scenario.options: expected a table")
-    if not isinstance(start, dict):
-        raise InputError(f"{plan_path}: scenario.start: expected a table of state name = half-range")
-    return env, options, start
-
-
 def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, policy: Any = None
                ) -> Controlled:
     """Resolve POLICY (a file, a run directory or ``lqr``), the plan's scenario and ``--env``.
@@ -92,7 +72,7 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, p
     with the plan's ``[baseline]`` weights; it is not told what a sweep point
     or a ``--set`` changes. ``policy``, when given, is the loaded policy (``policy_arg`` then labels it).
     """
-    plan_env, plan_options, plan_start = _scenario_head(plan_path) if plan_path else (None, {}, {})
+    plan_env, plan_options, plan_start = scenario_head(plan_path) if plan_path else (None, {}, {})
     if plan_env is not None:
         try:
             env_id_of(plan_env)
@@ -135,6 +115,8 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, p
     except ValueError as exc:
         raise InputError(f"{plan_path}: scenario.params: {exc}") from None
     if policy is not None:
+        check_trained_residual(policy, physics, str(policy_arg),
+                               where if "residual" in plan_options else f"{policy_arg}: env.options")
         sizes = (physics.obs_dim, physics.action_dim)
         if sizes != (policy.io.obs_dim, policy.io.action_dim):
             raise InputError(f"{policy_arg}: takes {policy.io.obs_dim} observations and gives {policy.io.action_dim} "
@@ -165,6 +147,10 @@ def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str,
         "plan": {"path": plan.path, "content_sha256": plan.content_hash(), "resolved": plan.to_dict()},
         "seed": plan.seed, "required_success_rate": plan.required_success_rate,
         "episodes_per_point": plan.episodes, "stream_version": SWEEP_STREAM_VERSION,
+        # the learned residual swept on, and the one the policy was trained on (None: physics alone)
+        "residual": None if ctl.physics.residual is None else {
+            **residual_record(ctl.physics),
+            "trained_on": (getattr(ctl.controller, "training", None) or {}).get("residual")},
     }
 
 
@@ -214,7 +200,8 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     aggregates them lives there (without ``stage`` no CSV is written).
     Returns the results document (with its content hash) and the Monte Carlo histograms.
     """
-    from pretrial.analysis.campaign import Campaign, planned_episodes, run_analyses
+    from pretrial.analysis.campaign import Campaign, run_analyses
+    from pretrial.analysis.plan import planned_episodes
 
     prep = prepared or prepare(policy_arg, plan_path, baseline)
     ctl, plan, lqr = prep.ctl, prep.ctl.plan, prep.baseline
@@ -248,6 +235,10 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     trained = (getattr(ctl.controller, "training", None) or {}).get("plan") or {}
     if trained.get("content_sha256") == plan.content_hash():
         results["cautions"].insert(0, TRAINED_ON_PLAN)
+    for who, part in (("", results), ("LQR baseline", results.get("baseline") or {})):
+        extrapolated = envelope_caution(part.get("envelope"), who)
+        if extrapolated:
+            results["cautions"].insert(0 if not who else 1, extrapolated)
     return seal(results), samples
 
 

@@ -1,4 +1,4 @@
-"""``pretrial calibrate``: plant parameters from bench logs, with their uncertainty.
+"""Calibration: plant parameters from bench logs, with their uncertainty (what ``pretrial calibrate`` runs).
 
 Reads the logs (:mod:`pretrial.calibration.benchlog`), fits the named parameters by multiple shooting with a
 block bootstrap (:mod:`pretrial.calibration.fit`), checks the fit on held-out data, and writes the
@@ -8,10 +8,9 @@ place, so a failed or interrupted run leaves nothing behind.
 
 from __future__ import annotations
 
-import argparse
-import sys
 import time
-from dataclasses import replace
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -34,10 +33,12 @@ from pretrial.calibration.fit import (
     rmse,
 )
 from pretrial.calibration.report import SCHEMA, VERSION, with_hash, write_directory
-from pretrial.console import emit_json, jsonable, table
+from pretrial.console import jsonable
 from pretrial.errors import InputError
 from pretrial.files import check_new_dir, move_into_place, sha256_hex, staged
+from pretrial.log import warn as log_warning
 from pretrial.sim.perturb import PERTURBATIONS
+from pretrial.sim.plant import resolve_env_id
 
 #: default held-out share of segments for validation (every fifth segment; a tail of each when fewer than 5)
 HOLDOUT = 0.2
@@ -45,83 +46,112 @@ WINDOW_S = 0.5
 REPLICATES = 100
 
 
-def configure_cli(p: argparse.ArgumentParser) -> None:
-    """Arguments of ``pretrial calibrate``."""
-    from pretrial.cli.args import whole as whole_at_least
+@dataclass
+class CalibrationRequest:
+    """What a calibration is asked for (the command's flags; the API's arguments).
 
-    def whole(text: str) -> int:
-        return whole_at_least(text, 0)
+    Attributes
+    ----------
+    env : str
+        Environment id (full or short, or ``module:id``).
+    logs : list of path
+        Bench logs: ``t``, the env's states by name, its actions.
+    fit : list of str
+        Names to estimate (``"a,b"`` items are split): physics parameters, ``actuator_gain``,
+        ``actuator_lag_s``, ``actuator_delay_s``.
+    options, fixed, guess : dict
+        Env keyword options; known values held fixed; where the fit of a name starts.
+    window : float
+        Multiple-shooting window, seconds.
+    bootstrap, seed : int
+        Bootstrap replicates (0: none) and the seed of their draws.
+    validate : list of path
+        Held-out logs (default: ``holdout`` of the segments).
+    holdout : float
+        Share of segments held out when no ``validate`` logs are given.
+    out : path, optional
+        The calibration directory (default ``calibrations/<env>-<UTC time>``).
+    residual : bool
+        Also fit a residual of the derivatives (``residual.json``), of ``residual_degree`` with the
+        trust region widened by ``residual_margin``.
+    """
 
-    p.add_argument("logs", nargs="+", metavar="LOG.csv", help="bench logs: t, the env's states, its actions")
-    p.add_argument("--env", required=True, metavar="ID", help="environment id (full or short)")
-    p.add_argument("--option", action="append", metavar="NAME=VALUE", help="env keyword argument (repeatable)")
-    p.add_argument("--set", action="append", metavar="NAME=VALUE",
-                   help="fix a known parameter (physics, or actuator_gain/lag_s/delay_s) (repeatable)")
-    p.add_argument("--fit", action="append", required=True, metavar="NAME[,NAME...]",
-                   help="names to estimate: physics parameters, actuator_gain, actuator_lag_s, actuator_delay_s")
-    p.add_argument("--guess", action="append", metavar="NAME=VALUE",
-                   help="where the fit of a --fit name starts (default its nominal value) (repeatable)")
-    p.add_argument("--window", type=float, default=WINDOW_S, metavar="S",
-                   help=f"multiple-shooting window, seconds (default {WINDOW_S:g})")
-    p.add_argument("--bootstrap", type=whole, default=REPLICATES, metavar="N",
-                   help=f"bootstrap replicates (default {REPLICATES})")
-    p.add_argument("--seed", type=whole, default=0, help="seed of the bootstrap draws (default 0)")
-    p.add_argument("--validate", action="append", metavar="LOG.csv",
-                   help="held-out logs to report the simulation error on (default: a share of the segments)")
-    p.add_argument("--holdout", type=float, default=HOLDOUT, metavar="SHARE",
-                   help=f"share of segments held out for validation when no --validate (default {HOLDOUT:g}; 0: none)")
-    p.add_argument("--out", metavar="DIR", help="calibration directory (default calibrations/<env>-<UTC time>/)")
-    p.add_argument("--json", action="store_true", help="print the summary as one JSON object instead of text")
+    env: str
+    logs: list[str]
+    fit: list[str]
+    options: dict[str, Any] = field(default_factory=dict)
+    fixed: dict[str, Any] = field(default_factory=dict)
+    guess: dict[str, Any] = field(default_factory=dict)
+    window: float = WINDOW_S
+    bootstrap: int = REPLICATES
+    seed: int = 0
+    validate: list[str] = field(default_factory=list)
+    holdout: float = HOLDOUT
+    out: str | None = None
+    residual: bool = False
+    residual_degree: int = 2
+    residual_margin: float = 0.1
 
 
-def run_cli(args: argparse.Namespace) -> int:
-    """Run ``pretrial calibrate``; returns the exit status."""
-    from pretrial.cli.args import parse_assignments
-    from pretrial.sim.plant import resolve_env_id
+def run_calibration(req: CalibrationRequest, started: Callable[..., None] | None = None) -> tuple[dict[str, Any], Path]:
+    """Fit, validate and write the calibration directory; returns the summary (calibration.json) and the directory.
 
-    env_id = resolve_env_id(args.env)
-    options = parse_assignments(args.option, "--option")
-    _check_numbers(args)
+    ``started(env_id, logs, log, fit_segments, names)`` is called once the logs are read, before the fit.
+    The directory is written into a hidden sibling renamed into place, so a failed or interrupted run
+    leaves nothing behind.
+    """
+    env_id = resolve_env_id(req.env)
+    options = dict(req.options)
+    _check_numbers(req)
+    if req.residual:
+        from pretrial.calibration.residual import check_options
+
+        check_options(req.residual_degree, req.residual_margin)
     physics = _physics(env_id, options)
-    fixed = parse_assignments(args.set, "--set")
-    names = _fit_names(physics, args.fit, fixed)
-    log = read_logs(args.logs, physics, options.get("dt"))
+    names = _fit_names(physics, req.fit, req.fixed)
+    log = read_logs(req.logs, physics, options.get("dt"))
     if "dt" not in options:
         physics = _physics(env_id, {**options, "dt": log.dt})
-    model = _model(physics, names, fixed, parse_assignments(args.guess, "--guess"))
-    fit_segs, val_segs, source = _validation(args, physics, log)
+    model = _model(physics, names, req.fixed, req.guess)
+    fit_segs, val_segs, source = _validation(req, physics, log)
     refusal = check_actuation(model, fit_segs + val_segs)
     if refusal:
         raise InputError(refusal)
-    out = Path(args.out) if args.out else _default_out(env_id)
+    out = Path(req.out) if req.out else _default_out(env_id)
     check_new_dir(out)
-    steps = max(1, int(round(args.window / physics.dt)))
+    steps = max(1, int(round(req.window / physics.dt)))
     try:
         win = make_windows(fit_segs, steps)
     except ValueError as exc:
-        raise InputError(f"{args.logs[0]}: {exc}") from None
-    if not args.json:
-        _say_start(env_id, args.logs, log, fit_segs, names)
-    est = calibrate(model, win, args.bootstrap, args.seed)
+        raise InputError(f"{req.logs[0]}: {exc}") from None
+    if started is not None:
+        started(env_id, req.logs, log, fit_segs, names)
+    est = calibrate(model, win, req.bootstrap, req.seed)
     val = make_windows(val_segs, steps) if any(len(s.t) > 1 for s in val_segs) else None
-    summary, plots = _summary(env_id, physics, model, fixed, args, log, win, val, source, est, fit_segs, val_segs)
+    residual_doc = None
+    if req.residual:
+        from pretrial.calibration.residual import residual_step, summary_entry
+
+        residual_doc = residual_step(model, est, fit_segs, win, val, req.residual_degree, req.residual_margin)
+    summary, plots = _summary(env_id, physics, model, req, log, win, val, source, est, fit_segs, val_segs,
+                              None if residual_doc is None else summary_entry(residual_doc))
     for w in summary["warnings"]:
-        print(f"pretrial: warning: {w}", file=sys.stderr)
+        log_warning(w)
     with staged(out) as stage:
         write_directory(stage, summary, set(physics.param_table.names),
                         {n: (model.spec(n).low, model.spec(n).high) for n in names}, plots)
+        if residual_doc is not None:
+            from pretrial.calibration.residual import write_residual
+
+            write_residual(stage, residual_doc)
         move_into_place(stage, out)
-    if args.json:
-        emit_json(summary)
-    else:
-        _say_result(summary, out)
-    return 0
+    return summary, out
 
 
 # --------------------------------------------------------------------------- #
 # inputs
 # --------------------------------------------------------------------------- #
-def _check_numbers(args: argparse.Namespace) -> None:
+def _check_numbers(args: CalibrationRequest) -> None:
     if not (np.isfinite(args.window) and args.window > 0):
         raise InputError(f"--window {args.window!r}: must be a positive number of seconds")
     if not (0.0 <= args.holdout < 1.0):
@@ -195,7 +225,7 @@ def _model(physics, names: tuple[str, ...], fixed: dict[str, Any], guess: dict[s
     return Model(physics, table.resolve(params), names, actuator, physical, np.array(start))
 
 
-def _validation(args: argparse.Namespace, physics, log: BenchLog) -> tuple[list[Segment], list[Segment], str]:
+def _validation(args: CalibrationRequest, physics, log: BenchLog) -> tuple[list[Segment], list[Segment], str]:
     """Fit segments, validation segments and where the latter come from."""
     segs = list(log.segments)
     if args.validate:
@@ -233,9 +263,9 @@ def _rmse_table(physics, values: np.ndarray) -> dict[str, float]:
     return {n: float(v) for n, v in zip(physics.state_names, values)}
 
 
-def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: argparse.Namespace, log: BenchLog,
+def _summary(env_id: str, physics, model: Model, args: CalibrationRequest, log: BenchLog,
              win: Windows, val: Windows | None, source: str, est: Estimate, fit_segs: list[Segment],
-             val_segs: list[Segment]) -> tuple[dict[str, Any], dict[str, Any]]:
+             val_segs: list[Segment], residual: dict[str, Any] | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
     pred, fit_rmse = rmse(model, win, est.estimate)
     shown = val if val is not None else win
     shown_pred, val_rmse = rmse(model, val, est.estimate) if val is not None else (pred, None)
@@ -245,7 +275,7 @@ def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: ar
         "schema": SCHEMA,
         "version": VERSION,
         "env": {"id": env_id, "options": physics.options()},
-        "fixed": {k: float(v) for k, v in fixed.items()},
+        "fixed": {k: float(v) for k, v in args.fixed.items()},
         "params": {n: {"estimate": float(est.estimate[k]), "std": float(est.std[k]),
                        "ci95": [float(est.ci95[k, 0]), float(est.ci95[k, 1])]} for k, n in enumerate(names)},
         "names": names,
@@ -272,6 +302,7 @@ def _summary(env_id: str, physics, model: Model, fixed: dict[str, Any], args: ar
                            "scale_floor": SCALE_FLOOR},
         },
         "logs": [_log_entry(p) for p in args.logs],
+        **({"residual": residual} if residual is not None else {}),
     }
     summary = with_hash(jsonable(summary))
     first = shown.seg == shown.seg[0]
@@ -313,26 +344,5 @@ def _log_entry(path: str) -> dict[str, Any]:
 # --------------------------------------------------------------------------- #
 # text output
 # --------------------------------------------------------------------------- #
-def _say_start(env_id: str, logs: list[str], log: BenchLog, fit_segs: list[Segment], names: tuple[str, ...]) -> None:
-    print(f"calibrating {env_id} ({', '.join(names)}) from {len(logs)} log(s): {len(log.segments)} segments, "
-          f"{log.samples} samples at {log.dt:g} s; fitting on {len(fit_segs)} segments", flush=True)
-    if log.estimated:
-        print(f"estimated from positions (Savitzky-Golay derivative, {SAVGOL_WINDOW} samples): "
-              f"{', '.join(log.estimated)}", flush=True)
 
 
-def _say_result(summary: dict[str, Any], out: Path) -> None:
-    rows = [[n, summary["units"][n], v["estimate"], v["std"], f"[{v['ci95'][0]:.5g}, {v['ci95'][1]:.5g}]"]
-            for n, v in summary["params"].items()]
-    print()
-    table(["name", "unit", "estimate", "std", "95% interval"], rows)
-    val = summary["validation"]
-    print()
-    table(["state", "unit", "fit RMSE", "validation RMSE"],
-          [[n, summary["state_units"][n], v, "n/a" if val is None else val["rmse"][n]]
-           for n, v in summary["fit"]["rmse"].items()])
-    if val:
-        print(f"validation: {val['source']} ({val['segments']} segments, {val['samples']} samples)")
-    print(f"\ncalibration directory: {out}")
-    print(f"next: paste {out}/params.toml into a run config's [task.params]; {out}/dispersion.toml holds "
-          "[[vary]] blocks for its sweep plan")

@@ -180,7 +180,7 @@ def _units(seg: np.ndarray, n_seg: int) -> np.ndarray:
 # --------------------------------------------------------------------------- #
 # simulation
 # --------------------------------------------------------------------------- #
-def _values(model: Model, theta: np.ndarray) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+def model_values(model: Model, theta: np.ndarray) -> tuple[np.ndarray, dict[str, np.ndarray]]:
     """Physics parameter rows (B, P) and actuator values (B,) per replicate from ``theta`` (B, K)."""
     table = model.physics.param_table
     params = np.tile(model.base, (len(theta), 1))
@@ -223,7 +223,7 @@ def simulate(model: Model, win: Windows, theta: np.ndarray, rep: np.ndarray, row
     ``x0`` (N, S) are the start states (default: the measured ones).
     """
     physics = model.physics
-    params_b, act_b = _values(model, theta)
+    params_b, act_b = model_values(model, theta)
     seq = _applied(model, win, act_b)
     big = seq.shape[0] > 1
     steps = win.length
@@ -232,7 +232,7 @@ def simulate(model: Model, win: Windows, theta: np.ndarray, rep: np.ndarray, row
     u = seq[rep[:, None] if big else 0, win.seg[rows][:, None], k]  # (N, L + 1, A) in logged units
     params = np.asfortranarray(params_b[rep])
     params.setflags(write=False)  # lets a plant keep its per-batch constants over the window
-    u = _to_command(model, u, params)
+    u = to_command(model, u, params)
     _, frac = split_delay(act_b["actuator_delay_s"][rep], physics.dt)
     gain = act_b["actuator_gain"][rep][:, None]
     extra = {}
@@ -252,7 +252,7 @@ def simulate(model: Model, win: Windows, theta: np.ndarray, rep: np.ndarray, row
     return out
 
 
-def _to_command(model: Model, u: np.ndarray, params: np.ndarray) -> np.ndarray:
+def to_command(model: Model, u: np.ndarray, params: np.ndarray) -> np.ndarray:
     """Logged actions (N, L, A) as the normalized command: a physical unit through the inverse actuator map."""
     if not model.physical.any():
         return u

@@ -16,6 +16,7 @@ import numpy as np
 from pretrial.errors import FileFormatError
 from pretrial.files import atomic_write_text, canonical_json, sha256_hex, write_json
 from pretrial.report.plots import save_figure
+from pretrial.tomlfile import dump_toml
 
 SCHEMA = "pretrial.calibration"
 VERSION = 1
@@ -90,32 +91,35 @@ def _check_shapes(p: Path, data: dict[str, Any]) -> None:
 # --------------------------------------------------------------------------- #
 # TOML outputs
 # --------------------------------------------------------------------------- #
-def _num(x: float) -> str:
-    return repr(float(x))
-
-
 def params_toml(summary: dict[str, Any], physics_names: set[str]) -> str:
-    """A ``[task.params]`` block to paste into a run config: the fitted physics values, then the fixed ones."""
+    """A ``[task.params]`` block to paste into a run config: the fitted physics values, then the fixed ones.
+
+    Each estimate's unit, bootstrap std and 95% interval are listed in the comment lines above it;
+    a fitted generic perturbation (e.g. ``actuator_gain``) is listed there only, since a run config
+    varies it in ``[task.randomize]`` or a sweep plan, not in ``[task.params]``.
+    """
     opts = ", ".join(f"{k} = {json.dumps(v)}" for k, v in summary["env"]["options"].items() if k != "start_spread")
     lines = [
         f"# pretrial calibrate: {summary['env']['id']} fitted to {summary['fit']['samples']} samples in "
         f"{summary['fit']['segments']} segments",
         f"# calibration.json content_sha256 {summary['content_sha256']}",
         f"# the plant was built with: {opts}; give the config's [task.options] the same",
-        "[task.params]",
     ]
+    params: dict[str, float] = {}
     for name, v in summary["params"].items():
-        unit = summary["units"][name]
-        note = (f"# {unit}, std {v['std']:.3g}, 95% interval [{v['ci95'][0]:.8g}, {v['ci95'][1]:.8g}]")
+        note = (f"{name}: {v['estimate']!r} {summary['units'][name]}, std {v['std']:.3g}, 95% interval "
+                f"[{v['ci95'][0]:.8g}, {v['ci95'][1]:.8g}]")
         if name in physics_names:
-            lines.append(f"{name} = {_num(v['estimate'])}  {note}")
-        else:  # a generic perturbation: a config sets it in [task.randomize] or a plan, not as a physics value
-            lines.append(f"# {name} = {_num(v['estimate'])}  {note}; a generic perturbation, not a [task.params] "
-                         "key: vary it in [task.randomize] or a sweep plan (dispersion.toml)")
-    for name, value in summary["fixed"].items():
-        if name in physics_names:
-            lines.append(f"{name} = {_num(value)}  # fixed (--set)")
-    return "\n".join(lines) + "\n"
+            params[name] = float(v["estimate"])
+            lines.append(f"# {note}")
+        else:
+            lines.append(f"# {note}: a generic perturbation, not a [task.params] key: vary it in [task.randomize] "
+                         "or a sweep plan (dispersion.toml)")
+    fixed = {n: float(v) for n, v in summary["fixed"].items() if n in physics_names}
+    if fixed:
+        lines.append(f"# fixed (--set): {', '.join(fixed)}")
+    params.update(fixed)
+    return "\n".join(lines) + "\n" + dump_toml({"task": {"params": params}})
 
 
 def vary_range(estimate: float, ci: tuple[float, float], low: float, high: float) -> tuple[list[float], list[float]]:
@@ -139,12 +143,11 @@ def dispersion_toml(summary: dict[str, Any], bounds: dict[str, tuple[float, floa
         "# The names vary independently here; calibration.json keeps the bootstrap set, which holds their",
         "# correlation.",
     ]
+    vary = []
     for name, v in summary["params"].items():
         rng, box = vary_range(v["estimate"], v["ci95"], *bounds[name])
-        lines += ["", "[[vary]]", f'name = "{name}"', 'units = "physical"',
-                  f"range = [{_num(rng[0])}, {_num(rng[1])}]",
-                  f"dispersion = [{_num(box[0])}, {_num(box[1])}]", 'distribution = "uniform"']
-    return "\n".join(lines) + "\n"
+        vary.append({"name": name, "units": "physical", "range": rng, "dispersion": box, "distribution": "uniform"})
+    return "\n".join(lines) + "\n" + dump_toml({"vary": vary})
 
 
 # --------------------------------------------------------------------------- #
@@ -152,9 +155,9 @@ def dispersion_toml(summary: dict[str, Any], bounds: dict[str, tuple[float, floa
 # --------------------------------------------------------------------------- #
 def _grid(rows: int, cols: int, size: tuple[float, float]):
     """A figure (the project's own, :func:`pretrial.report.plots._figure`) with a rows x cols grid of axes."""
-    from pretrial.report.plots import _figure
+    from pretrial.report.plots import new_figure
 
-    fig = _figure(*size)
+    fig = new_figure(*size)
     return fig, fig.subplots(rows, cols, squeeze=False)
 
 

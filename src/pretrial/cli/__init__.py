@@ -1,0 +1,1 @@
+"""The ``pretrial`` command line: one module per command, arguments and printing only."""

@@ -30,8 +30,9 @@ def configure(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     import time
 
-    from pretrial.evolution.config import load_config, with_overrides, with_plan
+    from pretrial.evolution.config import load_config, with_overrides
     from pretrial.evolution.loop import Evolution
+    from pretrial.evolution.task import with_plan
     from pretrial.sim.execution import make_executor
 
     cfg = load_config(args.config)

@@ -12,10 +12,10 @@ import sys
 import traceback
 from collections.abc import Callable, Sequence
 
-from pretrial import __version__
 from pretrial.errors import PretrialError
 from pretrial.log import install_cli_handler
 from pretrial.sim.signals import EXIT_INTERRUPTED, EXIT_TERMINATED, Terminated, stop_on_signals
+from pretrial.version import __version__
 
 # --------------------------------------------------------------------------- #
 # entry point

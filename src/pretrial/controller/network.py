@@ -98,9 +98,9 @@ _KERNELS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
 }
 
 # neat.activations.selu_activation's constants, written as the library writes them
-_SELU_LAMBDA = 1.0507009873554804934193349852946
+SELU_LAMBDA = 1.0507009873554804934193349852946
 _SELU_ALPHA = 1.6732632423543772848170429916717
-_SELU_LAMBDA_ALPHA = _SELU_LAMBDA * _SELU_ALPHA  # the library evaluates lam * alpha first
+SELU_LAMBDA_ALPHA = SELU_LAMBDA * _SELU_ALPHA  # the library evaluates lam * alpha first
 
 
 def _clamp(z: np.ndarray, low: float, high: float) -> np.ndarray:
@@ -164,7 +164,7 @@ def _lelu(z: np.ndarray) -> np.ndarray:
 
 
 def _selu(z: np.ndarray) -> np.ndarray:
-    return np.where(z > 0.0, _SELU_LAMBDA * z, _SELU_LAMBDA_ALPHA * _expm1_of_negative(z))
+    return np.where(z > 0.0, SELU_LAMBDA * z, SELU_LAMBDA_ALPHA * _expm1_of_negative(z))
 
 
 def _softplus(z: np.ndarray) -> np.ndarray:
@@ -575,7 +575,7 @@ def genome_topology(genome: Any, neat_config: Any) -> dict[str, Any]:
 # --------------------------------------------------------------------------- #
 # checking plain data (policy files)
 # --------------------------------------------------------------------------- #
-def _expect(value: Any, kind: type | tuple[type, ...], where: str, what: str) -> Any:
+def expect(value: Any, kind: type | tuple[type, ...], where: str, what: str) -> Any:
     if isinstance(value, (bool, np.bool_)) and bool not in (kind if isinstance(kind, tuple) else (kind,)):
         raise InputError(f"{where}: expected {what}, got {value!r}")
     if not isinstance(value, kind):
@@ -585,15 +585,15 @@ def _expect(value: Any, kind: type | tuple[type, ...], where: str, what: str) ->
     return value
 
 
-def _expect_int(value: Any, where: str) -> int:
-    _expect(value, int, where, "an integer")
+def expect_int(value: Any, where: str) -> int:
+    expect(value, int, where, "an integer")
     if abs(value) >= 2**53:
         raise InputError(f"{where}: integer {value} is out of range")
     return int(value)
 
 
-def _expect_float(value: Any, where: str) -> float:
-    _expect(value, numbers.Real, where, "a number")
+def expect_float(value: Any, where: str) -> float:
+    expect(value, numbers.Real, where, "a number")
     try:
         result = float(value)
     except OverflowError:
@@ -603,8 +603,8 @@ def _expect_float(value: Any, where: str) -> float:
     return result
 
 
-def _expect_keys(obj: Any, where: str, required: Sequence[str], optional: Sequence[str] = ()) -> Mapping[str, Any]:
-    _expect(obj, dict, where, "an object")
+def expect_keys(obj: Any, where: str, required: Sequence[str], optional: Sequence[str] = ()) -> Mapping[str, Any]:
+    expect(obj, dict, where, "an object")
     missing = [k for k in required if k not in obj]
     if missing:
         raise InputError(f"{where}: missing {', '.join(repr(k) for k in missing)}")
@@ -623,30 +623,30 @@ def spec_from_topology(topology: Mapping[str, Any], where: str = "network") -> N
         Naming the offending entry (``where`` prefixes the path) if the data is
         not a valid network.
     """
-    t = _expect_keys(topology, where, ("feed_forward", "inputs", "outputs", "nodes", "connections"))
-    feed_forward = _expect(t["feed_forward"], bool, f"{where}.feed_forward", "true or false")
+    t = expect_keys(topology, where, ("feed_forward", "inputs", "outputs", "nodes", "connections"))
+    feed_forward = expect(t["feed_forward"], bool, f"{where}.feed_forward", "true or false")
     keys = {}
     for name in ("inputs", "outputs"):
-        _expect(t[name], list, f"{where}.{name}", "a list of node keys")
-        keys[name] = [_expect_int(k, f"{where}.{name}[{i}]") for i, k in enumerate(t[name])]
+        expect(t[name], list, f"{where}.{name}", "a list of node keys")
+        keys[name] = [expect_int(k, f"{where}.{name}[{i}]") for i, k in enumerate(t[name])]
     if not keys["inputs"] or not keys["outputs"]:
         raise InputError(f"{where}: needs at least one input and one output")
     nodes: dict[int, tuple[float, float, str, str]] = {}
-    for i, node in enumerate(_expect(t["nodes"], list, f"{where}.nodes", "a list")):
+    for i, node in enumerate(expect(t["nodes"], list, f"{where}.nodes", "a list")):
         at = f"{where}.nodes[{i}]"
-        n = _expect_keys(node, at, ("key", "bias", "response", "activation", "aggregation"))
-        key = _expect_int(n["key"], f"{at}.key")
+        n = expect_keys(node, at, ("key", "bias", "response", "activation", "aggregation"))
+        key = expect_int(n["key"], f"{at}.key")
         if key in nodes:
             raise InputError(f"{at}.key: node {key} appears twice")
-        nodes[key] = (_expect_float(n["bias"], f"{at}.bias"), _expect_float(n["response"], f"{at}.response"),
-                      _expect(n["activation"], str, f"{at}.activation", "a name"),
-                      _expect(n["aggregation"], str, f"{at}.aggregation", "a name"))
+        nodes[key] = (expect_float(n["bias"], f"{at}.bias"), expect_float(n["response"], f"{at}.response"),
+                      expect(n["activation"], str, f"{at}.activation", "a name"),
+                      expect(n["aggregation"], str, f"{at}.aggregation", "a name"))
     conns = []
-    for i, conn in enumerate(_expect(t["connections"], list, f"{where}.connections", "a list")):
+    for i, conn in enumerate(expect(t["connections"], list, f"{where}.connections", "a list")):
         at = f"{where}.connections[{i}]"
-        c = _expect_keys(conn, at, ("in", "out", "weight"))
-        conns.append((_expect_int(c["in"], f"{at}.in"), _expect_int(c["out"], f"{at}.out"),
-                      _expect_float(c["weight"], f"{at}.weight")))
+        c = expect_keys(conn, at, ("in", "out", "weight"))
+        conns.append((expect_int(c["in"], f"{at}.in"), expect_int(c["out"], f"{at}.out"),
+                      expect_float(c["weight"], f"{at}.weight")))
     try:
         return _build_spec(feed_forward, keys["inputs"], keys["outputs"], nodes, conns)
     except InputError as exc:
@@ -1060,16 +1060,3 @@ def compile_genome(genome: Any, neat_config: Any) -> Network:
 def compile_topology(topology: Mapping[str, Any]) -> Network:
     """Compile plain topology data (see :func:`genome_topology`) into a :class:`Network`."""
     return Network(spec_from_topology(topology))
-
-
-# The policy half (observation/action mapping, policy files) lives in pretrial.policy, which imports
-# this module; its names are also served from here, lazily, so that either module can be imported first.
-_POLICY_NAMES = ("IOMap", "Policy", "PopulationPolicy", "load_policy", "policy_from_genome", "policy_to_dict",
-                 "save_policy", "stack_policies")
-
-
-def __getattr__(name: str) -> Any:
-    if name in _POLICY_NAMES:
-        from pretrial.controller import policy
-        return getattr(policy, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

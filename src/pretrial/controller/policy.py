@@ -54,10 +54,10 @@ import numpy as np
 from pretrial.controller.network import (
     Network,
     PopulationNetwork,
-    _expect,
-    _expect_float,
-    _expect_int,
-    _expect_keys,
+    expect,
+    expect_float,
+    expect_int,
+    expect_keys,
     genome_topology,
     spec_from_topology,
 )
@@ -75,7 +75,7 @@ _MAX_BYTES = 64 * 2**20  # far above any evolved controller; refuses to parse a 
 def _vector(values: Sequence[float] | None, size: int, default: float, name: str) -> tuple[float, ...]:
     if values is None:
         return (default,) * size
-    out = tuple(_expect_float(v, f"{name}[{i}]") for i, v in enumerate(values))
+    out = tuple(expect_float(v, f"{name}[{i}]") for i, v in enumerate(values))
     if len(out) != size:
         raise InputError(f"{name}: has {len(out)} values, expected {size}")
     return out
@@ -239,7 +239,7 @@ def _plain(value: Any, where: str) -> Any:
     if isinstance(value, int):
         return int(value)
     if isinstance(value, float):
-        return _expect_float(value, where)
+        return expect_float(value, where)
     if isinstance(value, Mapping):
         out = {}
         for k, v in value.items():
@@ -289,9 +289,9 @@ def policy_to_dict(genome: Any, neat_config: Any, *, env_id: str, env_options: M
     doc: dict[str, Any] = {
         "schema": SCHEMA,
         "schema_version": SCHEMA_VERSION,
-        "env": {"id": _expect(env_id, str, "env_id", "a string"),
+        "env": {"id": expect(env_id, str, "env_id", "a string"),
                 "options": _plain(dict(env_options or {}), "env_options"),
-                "params": {_expect(k, str, "env_params", "string keys"): _expect_float(v, f"env_params.{k}")
+                "params": {expect(k, str, "env_params", "string keys"): expect_float(v, f"env_params.{k}")
                            for k, v in (env_params or {}).items()}},
         "network": topology,
         "layout": {"kind": io.layout, "blocks": io.blocks},
@@ -385,31 +385,31 @@ class Policy:
         extra = sorted(set(doc) - set(_TOP_KEYS))
         if extra:
             raise InputError(f"unknown entry {extra[0]!r}")
-        env = _expect_keys(doc["env"], "env", ("id", "options", "params"))
-        if not _expect(env["id"], str, "env.id", "a string"):
+        env = expect_keys(doc["env"], "env", ("id", "options", "params"))
+        if not expect(env["id"], str, "env.id", "a string"):
             raise InputError("env.id: is empty")
-        _expect(env["options"], dict, "env.options", "an object")
-        for k, v in _expect(env["params"], dict, "env.params", "an object").items():
-            _expect_float(v, f"env.params.{k}")
-        _expect(doc["training"], dict, "training", "an object")
+        expect(env["options"], dict, "env.options", "an object")
+        for k, v in expect(env["params"], dict, "env.params", "an object").items():
+            expect_float(v, f"env.params.{k}")
+        expect(doc["training"], dict, "training", "an object")
         spec = spec_from_topology(doc["network"], "network")
-        layout = _expect_keys(doc["layout"], "layout", ("kind", "blocks"))
-        kind = _expect(layout["kind"], str, "layout.kind", "a layout name")
+        layout = expect_keys(doc["layout"], "layout", ("kind", "blocks"))
+        kind = expect(layout["kind"], str, "layout.kind", "a layout name")
         if kind not in _LAYOUTS:
             raise InputError(f"layout.kind: {kind!r} is not one of {', '.join(_LAYOUTS)}")
-        blocks = _expect_int(layout["blocks"], "layout.blocks")
+        blocks = expect_int(layout["blocks"], "layout.blocks")
         if blocks < 1 or (kind == "flat") != (blocks == 1):
             raise InputError(f"layout.blocks: {blocks} does not fit layout {kind!r} (flat: 1, shared_blocks: >= 2)")
         vectors = {}
         for section, names, size in (("observation", ("offset", "scale"), blocks * spec.num_inputs),
                                      ("action", ("scale", "offset"), blocks * spec.num_outputs)):
-            entry = _expect_keys(doc[section], section, names)
+            entry = expect_keys(doc[section], section, names)
             for name in names:
                 where = f"{section}.{name}"
-                values = _expect(entry[name], list, where, "a list of numbers")
+                values = expect(entry[name], list, where, "a list of numbers")
                 if len(values) != size:
                     raise InputError(f"{where}: has {len(values)} values, expected {size}")
-                vectors[where] = [_expect_float(v, f"{where}[{i}]") for i, v in enumerate(values)]
+                vectors[where] = [expect_float(v, f"{where}[{i}]") for i, v in enumerate(values)]
         io = IOMap(spec.num_inputs, spec.num_outputs, blocks, vectors["observation.offset"],
                    vectors["observation.scale"], vectors["action.scale"], vectors["action.offset"])
         return cls(doc, Network(spec), io)

@@ -1,0 +1,5 @@
+"""Evolving controllers.
+
+Run configs, the generation loop around neat-python, the run directory, checkpoints and
+reporters.
+"""

@@ -18,16 +18,17 @@ from __future__ import annotations
 
 import configparser
 import difflib
-import hashlib
 import math
-import tomllib
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
 from pretrial.errors import InputError
-from pretrial.limits import EPISODES, GENERATIONS, HORIZON, NEAT, SEED, Limit, check_horizon, check_total
+from pretrial.files import canonical_json, sha256_hex
+from pretrial.limits import EPISODES, GENERATIONS, HORIZON, NEAT, SEED, check_horizon, check_total
+from pretrial.sim.hybrid import resolve_residual_path
+from pretrial.tomlfile import TableReader, channel_items, kind_name, read_toml
 
 NETWORK_LAYOUTS = ("whole", "shared")
 
@@ -85,7 +86,7 @@ class Config:
         data = self.to_dict()
         for key in ("workers", "dask"):
             data["run"].pop(key, None)
-        return hashlib.sha256(dump_toml(data).encode()).hexdigest()
+        return sha256_hex(canonical_json(data))  # independent of how any TOML writer formats it
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain TOML-able data (what config.resolved.toml holds)."""
@@ -116,118 +117,6 @@ class Config:
 # --------------------------------------------------------------------------- #
 # reading
 # --------------------------------------------------------------------------- #
-class _Reader:
-    """Pops typed keys from one TOML table and reports the leftovers."""
-
-    def __init__(self, path: str, prefix: str, table: Any):
-        self.path = path
-        self.prefix = prefix
-        if not isinstance(table, dict):
-            self.fail(prefix, f"expected a table, got {_kind(table)}")
-        self.table = dict(table)
-        self.known: list[str] = []
-
-    def fail(self, key: str, message: str) -> None:
-        raise InputError(f"{self.path}: {key}: {message}")
-
-    def key(self, name: str) -> str:
-        return f"{self.prefix}.{name}" if self.prefix else name
-
-    def take(self, name: str, kind: type | tuple[type, ...], default: Any = ..., check=None, allowed: str = "",
-             limit: Limit | None = None) -> Any:
-        """Pop ``name`` as ``kind``; ``check``/``allowed`` or a ``limit`` row (:mod:`pretrial.limits`) bound it."""
-        self.known.append(name)
-        if name not in self.table:
-            if default is ...:
-                # a misspelt required key is more likely than a forgotten one: name it
-                close = difflib.get_close_matches(name, [str(k) for k in self.table], n=1)
-                if close:
-                    self.fail(self.key(close[0]), f"unknown key (did you mean {name!r}?)")
-                self.fail(self.key(name), f"missing ({allowed or 'required'})")
-            return default
-        value = self.table.pop(name)
-        kinds = kind if isinstance(kind, tuple) else (kind,)
-        ok = isinstance(value, kinds) and not (isinstance(value, bool) and bool not in kinds)
-        if float in kinds and isinstance(value, int) and not isinstance(value, bool):
-            value, ok = float(value), True
-        if not ok:
-            names = " or ".join(_TYPE_NAMES.get(k, k.__name__) for k in kinds)
-            self.fail(self.key(name), f"expected {names}, got {_kind(value)} {value!r}")
-        if isinstance(value, float) and not math.isfinite(value):
-            self.fail(self.key(name), f"{value!r} is not a finite number")
-        if check is not None and not check(value):
-            self.fail(self.key(name), f"{value!r} not allowed ({allowed})")
-        if limit is not None:
-            try:
-                value = limit.check(value, self.key(name))
-            except ValueError as exc:
-                raise InputError(f"{self.path}: {exc}") from None
-        return value
-
-    def table_of(self, name: str) -> dict[str, Any]:
-        self.known.append(name)
-        value = self.table.pop(name, {})
-        if not isinstance(value, dict):
-            self.fail(self.key(name), f"expected a table, got {_kind(value)}")
-        return value
-
-    def finish(self) -> None:
-        for extra in self.table:
-            near = difflib.get_close_matches(extra, self.known, n=1)
-            hint = f" (did you mean {self.key(near[0])!r}?)" if near else ""
-            valid = ", ".join(self.known)
-            self.fail(self.key(extra), f"unknown key{hint}; valid keys here: {valid}")
-
-
-_TYPE_NAMES = {
-    int: "an integer", float: "a number", str: "a string", bool: "true/false", list: "a list", dict: "a table",
-}
-
-
-def _channel_items(table: dict[str, Any]) -> list[tuple[str, Any]]:
-    """``(name, value)`` pairs of a table of varied names, ``NAME.CHANNEL`` forms flattened.
-
-    A quoted key ``"sensor_noise_std.theta"`` arrives as one name; written
-    unquoted, TOML reads it as a table ``sensor_noise_std = {theta = ...}``,
-    which is taken to mean the same.
-    """
-    out: list[tuple[str, Any]] = []
-    for name, value in table.items():
-        if isinstance(value, dict):
-            out.extend((f"{name}.{channel}", v) for channel, v in value.items())
-        else:
-            out.append((name, value))
-    return out
-
-
-def _kind(value: Any) -> str:
-    return {bool: "boolean", int: "integer", float: "number", str: "string", list: "list", dict: "table"}.get(
-        type(value), type(value).__name__
-    )
-
-
-def read_toml(path: str | Path) -> tuple[dict[str, Any], str]:
-    """Parse a TOML file; InputError naming the file for anything unreadable."""
-    p = Path(path)
-    if not p.exists():
-        raise InputError(f"{p}: no such file")
-    if p.is_dir():
-        raise InputError(f"{p}: is a directory, expected a TOML file")
-    try:
-        raw = p.read_bytes()
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        raise InputError(f"{p}: not a text file (expected UTF-8 TOML)") from None
-    except OSError as exc:
-        raise InputError(f"{p}: cannot read ({exc.strerror})") from None
-    if not text.strip():
-        raise InputError(f"{p}: file is empty (expected a TOML config)")
-    try:
-        return tomllib.loads(text), text
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{p}: malformed TOML: {exc}") from None
-    except RecursionError:  # Python 3.11's tomllib recurses once per nested array or inline table
-        raise InputError(f"{p}: malformed TOML: arrays or inline tables nested too deeply") from None
 
 
 def neat_defaults() -> configparser.ConfigParser:
@@ -265,18 +154,18 @@ def load_config(path: str | Path) -> Config:
     """Read and validate a run config; raises :class:`InputError` on any problem."""
     data, text = read_toml(path)
     path = str(path)
-    top = _Reader(path, "", data)
+    top = TableReader(path, "", data)
     task_t = top.table_of("task")
     neat_t = top.table_of("neat")
     run_t = top.table_of("run")
     top.finish()
 
-    t = _Reader(path, "task", task_t)
+    t = TableReader(path, "task", task_t)
     env = t.take("env", str, allowed="an environment id, e.g. 'pretrial/CartPole-v0'")
     episodes = t.take("episodes", int, 8, limit=EPISODES)
     horizon = t.take("horizon", float, None, limit=HORIZON)
     network = t.take("network", str, "whole", lambda v: v in NETWORK_LAYOUTS, " or ".join(NETWORK_LAYOUTS))
-    env_options = t.table_of("options")
+    env_options = resolve_residual_path(t.table_of("options"), Path(path).parent)  # relative to the config
     params = t.table_of("params")
     randomize_t = t.table_of("randomize")
     ramp = t.take("randomize_ramp", int, 0, lambda v: 0 <= v <= 1_000_000,
@@ -301,7 +190,8 @@ def load_config(path: str | Path) -> Config:
 
     spread = env_options.get("start_spread", {})
     if not isinstance(spread, dict):  # named by its key here; the core's ValueError names the option only
-        t.fail("task.options.start_spread", f"expected a table of state name = spread, got {_kind(spread)} {spread!r}")
+        t.fail("task.options.start_spread",
+               f"expected a table of state name = spread, got {kind_name(spread)} {spread!r}")
     try:
         physics = make_plant(env, **env_options)
     except InputError as exc:
@@ -326,7 +216,7 @@ def load_config(path: str | Path) -> Config:
     from pretrial.sim.perturb import plant_refusal, spec_of
 
     randomize: dict[str, tuple[float, float]] = {}
-    for name, rng in _channel_items(randomize_t):
+    for name, rng in channel_items(randomize_t):
         key = f"task.randomize.{name}"
         try:
             spec = spec_of(physics, name)
@@ -385,7 +275,7 @@ def load_config(path: str | Path) -> Config:
             raise InputError(f"{path}: {exc}") from None
         neat[name] = value
 
-    r = _Reader(path, "run", run_t)
+    r = TableReader(path, "run", run_t)
     generations = r.take("generations", int, 100, limit=GENERATIONS)
     seed = r.take("seed", int, 0, limit=SEED)
     target = r.take("fitness_target", float, None)
@@ -573,48 +463,6 @@ def neat_generation_zero(config: Any) -> tuple[Any, dict[int, Any], Any, Any]:
 # --------------------------------------------------------------------------- #
 # writing
 # --------------------------------------------------------------------------- #
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (int, float)):
-        if isinstance(v, float) and not math.isfinite(v):
-            return "inf" if v > 0 else ("-inf" if v < 0 else "nan")
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + "".join(_TOML_ESCAPES.get(c, c) for c in v) + '"'
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-#: TOML basic strings must escape quote, backslash and control characters other than tab
-_TOML_ESCAPES = {'"': '\\"', "\\": "\\\\"} | {
-    chr(c): f"\\u{c:04x}" for c in (*range(0x09), *range(0x0A, 0x20), 0x7F)
-}
-
-
-def dump_toml(data: dict[str, Any]) -> str:
-    """Write nested tables of scalars and lists as TOML (enough for our files)."""
-    out: list[str] = []
-
-    def emit(prefix: str, table: dict[str, Any]) -> None:
-        scalars = {k: v for k, v in table.items() if not isinstance(v, dict)}
-        tables = {k: v for k, v in table.items() if isinstance(v, dict)}
-        if prefix:
-            out.append(f"[{prefix}]")
-        out.extend(f"{_bare(k)} = {_toml_value(v)}" for k, v in scalars.items())
-        if prefix or scalars:
-            out.append("")
-        for k, v in tables.items():
-            emit(f"{prefix}.{_bare(k)}" if prefix else _bare(k), v)
-
-    emit("", data)
-    return "\n".join(out).rstrip() + "\n"
-
-
-def _bare(key: str) -> str:
-    # bare keys are ASCII letters, digits, '_' and '-' only
-    return key if key.isascii() and key.replace("_", "").replace("-", "").isalnum() else _toml_value(key)
 
 
 def plan_beside(config_path: str | Path, name: str) -> Path | None:
@@ -627,26 +475,6 @@ def plan_beside(config_path: str | Path, name: str) -> Path | None:
         if plan.is_file():
             return plan
     return None
-
-
-def with_plan(cfg: Config, plan: str | Path, label: str = "--plan") -> Config:
-    """``cfg`` training against the plan at ``plan`` (a path from the working directory).
-
-    Every plan error is raised now (InputError naming ``label`` or the plan), before anything is written.
-    """
-    import dataclasses
-
-    if not Path(plan).is_file():
-        raise InputError(f"{label} {plan}: no such file")
-    if cfg.task.randomize:
-        raise InputError(f"{label} {plan}: {cfg.path} has [task.randomize]; with a plan its [[vary]] dispersions are "
-                         "the training distribution: move those ranges into the plan")
-    task = dataclasses.replace(cfg.task, plan=str(Path(plan).resolve()))
-    new = dataclasses.replace(cfg, task=task)
-    from pretrial.evolution.loop import load_training_plan
-
-    load_training_plan(new)  # every plan error now, before anything is written
-    return new
 
 
 def with_overrides(cfg: Config, *, seed: int | None = None, generations: int | None = None,

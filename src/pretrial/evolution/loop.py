@@ -10,7 +10,9 @@ reseeded. A run is a pure function of (config, seed):
 * Python's global ``random`` (which neat-python uses) is reseeded from
   ``SeedSequence(seed, spawn_key=(2, k))`` right before reproduction, so nothing
   an evaluation backend does to it can leak into the search;
-* genomes are cut into fixed chunks of :data:`CHUNK` whatever the worker count.
+* each genome's episodes are rows of their own (no row's arithmetic depends on another's), so
+  the results do not depend on how genomes are cut into work items; :func:`chunk_size` cuts
+  them into as few items as keep every worker busy (a test holds the bytes equal for any cut).
 
 The champion is picked by re-testing the best few genomes ever seen on fresh
 scenarios the run never trained on (``spawn_key=(3,)``).
@@ -21,237 +23,83 @@ from __future__ import annotations
 import copy
 import csv
 import io
-import json
-import math
 import platform
 import random
 import time
 import tomllib
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from pretrial import __version__
-from pretrial.controller.network import NetworkSpec, PopulationNetwork, spec_from_genome
-from pretrial.controller.policy import IOMap, PopulationPolicy, policy_from_genome, policy_to_dict, save_policy
-from pretrial.errors import FileFormatError, InputError, PretrialError
+from pretrial.controller.network import spec_from_genome
+from pretrial.controller.policy import policy_from_genome, policy_to_dict, save_policy
+from pretrial.errors import InputError, PretrialError
 from pretrial.evolution import checkpoint
-from pretrial.evolution.config import Config, build_neat_ini, check_budget, dump_toml, neat_generation_zero
-from pretrial.evolution.plan_training import (
-    Objective,
-    PlanDistribution,
-    linear_shortfall,
-    objective_fitness,
-    parse_objective,
-    short_verdict,
+from pretrial.evolution.config import Config, build_neat_ini, check_budget, neat_generation_zero
+from pretrial.evolution.plan_training import linear_shortfall, short_verdict
+from pretrial.evolution.reporters import LineReporter, Reporter, ReporterSet, WarningReporter
+from pretrial.evolution.rundir import (
+    HISTORY_FIELDS,
+    RESUME_MAY_CHANGE,
+    RunState,
+    flat_keys,
+    neat_config_at,
+    read_manifest,
+    read_neat_ini,
+    read_timing,
+    run_state_from,
+)
+from pretrial.evolution.task import (
+    NEAT_STREAM,
+    SCENARIO_STREAM,
+    VALIDATION_STREAM,
+    VERDICT_STREAM,
+    evaluate_chunk,
+    load_training_plan,
+    make_task,
+    seed_int,
+    training_scenarios,
 )
 from pretrial.files import atomic_write_text, check_writable_dir, write_json
-from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
 from pretrial.sim.execution import Executor
-from pretrial.sim.perturb import describe_values, diverged_warning, nominal_value
+from pretrial.sim.perturb import describe_values, diverged_warning
 from pretrial.sim.plant import check_workers_can_build
-from pretrial.sim.quality import QualityLimits
-from pretrial.sim.rollout import Scenarios, draw_scenarios, run_episodes
+from pretrial.sim.rollout import Scenarios
+from pretrial.tomlfile import dump_toml
+from pretrial.version import __version__
 
-#: genomes per work item: fixed, so results never depend on the number of workers
-CHUNK = 32
+#: rows (genomes x episodes) a work item holds at most: batches this large pay numpy's fixed cost
+#: per control step once for thousands of rows (benchmarks/evolution_throughput.py), and stay a
+#: few MB of state per worker
+MAX_CHUNK_ROWS = 16384
 
-HISTORY_FIELDS = ("generation", "evaluations", "best", "mean", "stdev", "species", "best_nodes", "best_connections")
 
-_SCENARIO_STREAM, _NEAT_STREAM, _VALIDATION_STREAM, _VERDICT_STREAM = 1, 2, 3, 4
+def chunk_size(genomes: int, episodes: int, workers: int) -> int:
+    """Genomes per work item: one item per worker, no more than :data:`MAX_CHUNK_ROWS` rows each."""
+    per_worker = -(-genomes // max(1, workers))
+    return max(1, min(per_worker, MAX_CHUNK_ROWS // max(1, episodes)))
 
 
 # --------------------------------------------------------------------------- #
 # the task as workers see it
 # --------------------------------------------------------------------------- #
-@dataclass(frozen=True)
-class Task:
-    """Everything a worker needs to evaluate networks (picklable, small)."""
-
-    env_id: str
-    options: dict[str, Any]
-    params: dict[str, float]
-    max_steps: int
-    io: IOMap
-    randomize: dict[str, tuple[float, float]] = field(default_factory=dict)
-    randomize_ramp: int = 0
-    nominal: dict[str, float] = field(default_factory=dict)  # of each randomized name
-    #: with a plan: its dispersions (the training distribution) and its loop-quality limits
-    distribution: PlanDistribution | None = None
-    quality: QualityLimits | None = None
-    objective: Objective = field(default_factory=lambda: Objective("mean"))
-
-    def ramp_fraction(self, generation: int | None) -> float:
-        """How far the training distribution has widened at ``generation`` (1: fully; None: validation)."""
-        if generation is None or generation >= self.randomize_ramp:
-            return 1.0
-        return generation / self.randomize_ramp
-
-    def ranges(self, generation: int | None) -> dict[str, tuple[float, float]]:
-        """The randomized ranges a generation draws from (``None``: the full ranges, for validation).
-
-        Over the first ``randomize_ramp`` generations each range widens linearly
-        from the nominal value (or the range's nearest end) to its full width: a
-        curriculum, so the task is learnt before it is made hard.
-        """
-        if generation is None or generation >= self.randomize_ramp:
-            return self.randomize
-        f = generation / self.randomize_ramp
-        out = {}
-        for name, (lo, hi) in self.randomize.items():
-            c = min(max(self.nominal[name], lo), hi)
-            out[name] = (c + f * (lo - c), c + f * (hi - c))
-        return out
-
-    def physics(self):
-        key = (self.env_id, json.dumps(self.options, sort_keys=True))
-        phys = _PHYSICS_CACHE.get(key)
-        if phys is None:
-            from pretrial.sim.plant import make_plant
-
-            phys = _PHYSICS_CACHE[key] = make_plant(self.env_id, **self.options)
-        return phys
-
-
-_PHYSICS_CACHE: dict[tuple[str, str], Any] = {}
 
 
 #: generations whose diverged episodes are each named in a warning (then one line says more follow)
 _DIVERGED_WARNINGS = 3
 
 
-def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Fitness (the task's objective) and success rate per network, and diverged episodes per scenario.
-
-    Runs in a worker. With the default objective the fitness is the mean return.
-    """
-    task, specs, scenarios = item
-    physics = task.physics()
-    policy = PopulationPolicy(PopulationNetwork(specs), task.io)
-    out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
-                       quality=task.quality)
-    diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
-    fitness = objective_fitness(task.objective, out.returns, out.success, out.score)
-    return fitness, out.success.mean(axis=1), diverged
-
-
-def make_task(cfg: Config, training_plan: tuple | None = None) -> Task:
-    """Derive the network's inputs, outputs and scaling from the env (and the plan, when training against one).
-
-    ``training_plan`` is :func:`load_training_plan`'s result when the caller already has it.
-    """
-    from pretrial.sim.plant import make_plant
-
-    if cfg.task.plan is not None:
-        return _plan_task(cfg, training_plan or load_training_plan(cfg))
-    physics = make_plant(cfg.task.env, **cfg.task.env_options)
-    io_map = _io_map(cfg, physics)
-    steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
-    opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
-    nominal = {name: nominal_value(physics, params, name) for name in cfg.task.randomize}
-    return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize), cfg.task.randomize_ramp, nominal,
-                objective=parse_objective(cfg.task.objective))
-
-
-def _io_map(cfg: Config, physics: Any) -> IOMap:
-    blocks = physics.obs_blocks if cfg.task.network == "shared" else 1
-    n_in, n_out = physics.obs_dim // blocks, physics.action_dim // blocks
-    scale = physics.obs_scale
-    obs_scale = [1.0 / s for s in scale] if scale else None
-    act = str(cfg.neat.get("activation_default", "tanh"))
-    # sigmoid outputs live in [0, 1]; map them onto the actuator range [-1, 1]
-    a_scale, a_offset = ((2.0, -1.0) if act == "sigmoid" else (1.0, 0.0))
-    return IOMap(n_in, n_out, blocks, obs_scale=obs_scale, action_scale=[a_scale] * physics.action_dim,
-                 action_offset=[a_offset] * physics.action_dim)
-
-
-def load_training_plan(cfg: Config) -> tuple[Any, Any, dict[str, Any], dict[str, float]]:
-    """(plan, physics, env options, physics overrides) for a config that trains against ``cfg.task.plan``.
-
-    The plan's scenario wins where both speak (options, start ranges, params,
-    horizon), as the sweep will run it; the structural options (poles,
-    observe, hoist) must agree.
-    """
-    from pretrial.analysis.plan import load_plan
-    from pretrial.analysis.sweep import _scenario_head
-    from pretrial.sim.plant import make_plant
-
-    path = cfg.task.plan
-    plan_env, plan_options, plan_start = _scenario_head(path)
-    if plan_env is not None and plan_env != cfg.task.env:
-        raise InputError(f"{path}: scenario.env: the plan is for {plan_env}, the config trains {cfg.task.env}")
-    options = dict(cfg.task.env_options)
-    for k, v in plan_options.items():
-        if k in ("poles", "observe", "hoist") and options.get(k, v) != v:
-            raise InputError(f"{path}: scenario.options.{k}: {v!r} does not fit the config ({k}={options[k]!r})")
-        options[k] = v
-    if plan_start:
-        options["start_spread"] = {**dict(options.get("start_spread") or {}), **plan_start}
-    try:
-        physics = make_plant(cfg.task.env, **options)
-    except (TypeError, ValueError) as exc:
-        raise InputError(f"{path}: scenario.options: {exc}") from None
-    plan = load_plan(path, physics, cfg.task.env)
-    params = {**cfg.task.params, **plan.params}
-    return plan, physics, options, params
-
-
-def _plan_task(cfg: Config, training_plan: tuple) -> Task:
-    plan, physics, options, params = training_plan
-    horizon = plan.horizon if plan.horizon is not None else cfg.task.horizon
-    steps = physics.max_steps if horizon is None else max(1, round(horizon / physics.dt))
-    dist = PlanDistribution.from_plan(plan.vary, physics, params, plan.calibration, cfg.task.corner_share)
-    return Task(cfg.task.env, options, params, steps, _io_map(cfg, physics), {}, cfg.task.randomize_ramp,
-                dict(dist.nominal), dist, plan.quality, parse_objective(cfg.task.objective))
-
-
 # --------------------------------------------------------------------------- #
 # the run
 # --------------------------------------------------------------------------- #
-def _seed_int(seed: int, *key: int) -> int:
-    return int(np.random.SeedSequence(seed, spawn_key=key).generate_state(1, dtype=np.uint64)[0])
-
-
-def _scenarios(task: Task, n: int, seed: int, *key: int, generation: int | None = None) -> Scenarios:
-    ss = np.random.SeedSequence(seed, spawn_key=key)
-    if task.distribution is not None:  # the plan's dispersions, on the run's own streams (never the plan's)
-        physics = task.physics()
-        base = physics.param_table.resolve_batch(task.params, n)
-        seed64 = int(ss.generate_state(1, dtype=np.uint64)[0])
-        return task.distribution.draw(physics, n, seed64, base, task.ramp_fraction(generation))
-    return draw_scenarios(task.physics(), n, ss, task.params, task.ranges(generation))
-
-
-def _neat_config(path: Path):
-    import neat
-
-    return neat.Config(neat.DefaultGenome, neat.DefaultReproduction, neat.DefaultSpeciesSet,
-                       neat.DefaultStagnation, str(path))
 
 
 def _size(genome: Any) -> tuple[int, int]:
     """(nodes, enabled connections) of a genome."""
     return len(genome.nodes), sum(1 for c in genome.connections.values() if c.enabled)
-
-
-@dataclass
-class RunState:
-    """What a checkpoint holds: enough to continue exactly where the run was."""
-
-    generation: int
-    population: dict
-    species: Any
-    reproduction: Any
-    node_indexer_next: int | None
-    history: list[dict[str, Any]]
-    species_sizes: list[dict[int, int]]
-    hall: list[Any]  # best genomes ever seen (deep copies), best first
-    evaluations: int
-    finished: bool = False
 
 
 class Evolution:
@@ -270,17 +118,20 @@ class Evolution:
     command_line : sequence of str
         The words the run was started with (recorded in the manifest).
     warn : callable, optional
-        Receives warnings (default: stderr), e.g. episodes that diverged.
+        Receives warnings (default: the ``pretrial`` logger), e.g. episodes that diverged.
+    reporters : sequence of Reporter, optional
+        More observers of the run (:mod:`pretrial.evolution.reporters`), told after the line and
+        warning reporters that ``log`` and ``warn`` make.
     """
 
     def __init__(self, cfg: Config, run_dir: Path, executor: Executor, log: Callable[[str], None] = print,
-                 command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None):
+                 command_line: Sequence[str] = (), warn: Callable[[str], None] | None = None,
+                 reporters: Sequence[Reporter] = ()):
         self.cfg = cfg
-        self.warn = warn or log_warning
+        self.reporters = ReporterSet([LineReporter(log), WarningReporter(warn), *reporters])
         self._warnings = 0
         self.run_dir = run_dir
         self.executor = executor
-        self.log = log
         self.command_line = list(command_line)
         #: (plan, physics, options, params) when training against a plan
         self._plan = load_training_plan(cfg) if cfg.task.plan is not None else None
@@ -319,7 +170,7 @@ class Evolution:
         (self.run_dir / "plots").mkdir(exist_ok=True)
         atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
         atomic_write_text(self.ini_path, ini)
-        self.neat_config = _neat_config(self.ini_path)
+        self.neat_config = neat_config_at(self.ini_path)
         self.manifest = {
             "pretrial": __version__,
             "versions": versions(),
@@ -333,7 +184,7 @@ class Evolution:
             "checkpoints": {},
         }
         cfg = self.neat_config
-        random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, 0))
+        random.seed(seed_int(self.cfg.run.seed, NEAT_STREAM, 0))
         _, population, species, reproduction = neat_generation_zero(cfg)
         self.state = RunState(0, population, species, reproduction, None, [], [], [], 0)
         self.save_checkpoint()  # also writes the manifest: from here on the directory resumes
@@ -353,17 +204,17 @@ class Evolution:
                 raise InputError(f"{self.run_dir}: the run was stopped before its first checkpoint (no "
                                  "manifest.json); delete the directory and start the run again")
             raise InputError(f"{self.run_dir}: not a run directory (no manifest.json)")
-        self.manifest = _read_manifest(self.manifest_path, self.run_dir / "checkpoints")
+        self.manifest = read_manifest(self.manifest_path, self.run_dir / "checkpoints")
         self._check_same_config()
         recorded = self.manifest["checkpoints"]
         if not recorded:
             raise InputError(f"{self.run_dir}: no checkpoint yet; delete the directory and start the run again")
         check_writable_dir(self.run_dir)
         name = max(recorded, key=checkpoint.generation_of)
-        self.neat_config = _read_neat_ini(self.ini_path)
+        self.neat_config = read_neat_ini(self.ini_path)
         path = checkpoint.recorded_path(self.run_dir / "checkpoints", name, self.manifest_path)
-        self.state = _run_state(checkpoint.load(path, recorded[name]), path)
-        timing_rows = _read_timing(self.run_dir / "timing.csv", self.state.generation)
+        self.state = run_state_from(checkpoint.load(path, recorded[name]), path)
+        timing_rows = read_timing(self.run_dir / "timing.csv", self.state.generation)
         # everything read: from here on the run directory is written
         from neat.reporting import ReporterSet
 
@@ -385,17 +236,17 @@ class Evolution:
         self._timing_rows = timing_rows
         # the checkpoint loaded and only settings a resume may change differ: record them (e.g. more generations)
         atomic_write_text(self.run_dir / "config.resolved.toml", dump_toml(self.cfg.to_dict()))
-        self.log(f"resumed {self.run_dir} at generation {self.state.generation}")
+        self.reporters.note(f"resumed {self.run_dir} at generation {self.state.generation}")
 
     def _check_same_config(self) -> None:
         """Refuse to continue a run under settings that would change its results (seed, task, [neat], ...)."""
         path = self.run_dir / "config.resolved.toml"
         try:
-            old = _flat(tomllib.loads(path.read_text()))
+            old = flat_keys(tomllib.loads(path.read_text()))
         except (OSError, ValueError) as exc:
             raise InputError(f"{path}: unreadable ({exc})") from None
-        new = _flat(self.cfg.to_dict())
-        differ = sorted(k for k in old.keys() | new.keys() if k not in _RESUME_MAY_CHANGE and old.get(k) != new.get(k))
+        new = flat_keys(self.cfg.to_dict())
+        differ = sorted(k for k in old.keys() | new.keys() if k not in RESUME_MAY_CHANGE and old.get(k) != new.get(k))
         if differ:
             raise InputError(
                 f"{self.cfg.path}: {differ[0]} differs from the run being resumed ({path}); resume with the same "
@@ -406,7 +257,8 @@ class Evolution:
     def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios, label: str | None = None
                  ) -> tuple[np.ndarray, np.ndarray]:
         specs = [spec_from_genome(g, self.neat_config) for g in genomes]
-        items = [(self.task, specs[i : i + CHUNK], scenarios) for i in range(0, len(specs), CHUNK)]
+        size = chunk_size(len(specs), len(scenarios), self.executor.describe()["workers"])
+        items = [(self.task, specs[i : i + size], scenarios) for i in range(0, len(specs), size)]
         parts = self.executor.map(evaluate_chunk, items)
         diverged = np.sum([p[2] for p in parts], axis=0)
         if diverged.any():
@@ -429,11 +281,10 @@ class Evolution:
             self._warnings += 1
             if self._warnings > _DIVERGED_WARNINGS:
                 if self._warnings == _DIVERGED_WARNINGS + 1:
-                    self.warn("pretrial: warning: more generations with diverged episodes; not shown again this "
-                              "session")
+                    self.reporters.warning("more generations with diverged episodes; not shown again this session")
                 return
             label = f"generation {self.state.generation if self.state is not None else 0}"
-        self.warn(diverged_warning(int(diverged.sum()), f"{where} ({len(rows)} scenarios)",
+        self.reporters.warning(diverged_warning(int(diverged.sum()), f"{where} ({len(rows)} scenarios)",
                                    n_genomes * len(scenarios), label))
 
     def run(self, generations: int) -> dict[str, Any]:
@@ -449,7 +300,7 @@ class Evolution:
                 t0 = time.perf_counter()
                 k = st.generation
                 genomes = [st.population[key] for key in sorted(st.population)]
-                scen = _scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, _SCENARIO_STREAM, k,
+                scen = training_scenarios(self.task, self.cfg.task.episodes, self.cfg.run.seed, SCENARIO_STREAM, k,
                                   generation=k)
                 try:
                     fitness, succ = self.evaluate(genomes, scen)
@@ -484,7 +335,7 @@ class Evolution:
                 self._update_hall(genomes)
                 reached = target is not None and best.fitness >= target
                 if not reached:  # also after the last one, so a resume with more generations continues
-                    random.seed(_seed_int(self.cfg.run.seed, _NEAT_STREAM, k + 1))
+                    random.seed(seed_int(self.cfg.run.seed, NEAT_STREAM, k + 1))
                     try:
                         st.population = st.reproduction.reproduce(cfg, st.species, cfg.pop_size, k)
                     except RuntimeError as exc:  # neat-python refuses settings it cannot breed with
@@ -507,7 +358,7 @@ class Evolution:
                 self._report(row, generations, reached, target)
         except KeyboardInterrupt:
             # Interrupted while evaluating: checkpointed above. Elsewhere: the last checkpoint stands.
-            self.log(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
+            self.reporters.note(f"\ninterrupted: resume with  pretrial evolve {self.cfg.path} --resume {self.run_dir}")
             raise
         except InputError:
             raise  # the settings, not the machine: resuming would fail the same way
@@ -558,15 +409,10 @@ class Evolution:
     def _report(self, row: dict[str, Any], generations: int, reached: bool, target: float | None) -> None:
         done = row["generation"] + 1
         mean_t = float(np.mean(self.timing[-5:]))
-        eta = "" if reached else f"  eta {_clock(mean_t * max(0, generations - done))}"
-        self.log(
-            f"gen {row['generation']:4d}  best {row['best']:10.4g} ({self._best_success:4.0%} ok)  "
-            f"mean {row['mean']:10.4g}  "
-            f"species {row['species']:3d}  size {row['best_nodes']}n/{row['best_connections']}c  "
-            f"evals {row['evaluations']:8d}  {self.timing[-1]:6.2f} s/gen{eta}"
-        )
-        if reached:
-            self.log(f"fitness target {target:g} reached at generation {row['generation']}")
+        eta = None if reached else mean_t * max(0, generations - done)
+        self.reporters.generation_done(row, self.timing[-1], eta, self._best_success)
+        if reached and target is not None:
+            self.reporters.target_reached(target, row["generation"])
 
     # ------------------------------------------------------------ files
     def save_checkpoint(self) -> None:
@@ -598,7 +444,7 @@ class Evolution:
     def finish(self, reached: bool) -> dict[str, Any]:
         """Re-test the finalists on fresh scenarios, write champion.json and the plots."""
         st = self.state
-        scen = _scenarios(self.task, self.cfg.run.validation_episodes, self.cfg.run.seed, _VALIDATION_STREAM)
+        scen = training_scenarios(self.task, self.cfg.run.validation_episodes, self.cfg.run.seed, VALIDATION_STREAM)
         returns, success = self.evaluate(st.hall, scen, "re-test of the finalists")
         verdicts = self._short_verdicts(st.hall) if self._plan is not None else None
         if verdicts is not None:  # the plan's requirements first, then the re-test
@@ -637,6 +483,8 @@ class Evolution:
                                 "linear_every": self.cfg.run.linear_every, "linear_top": self.cfg.run.linear_top}
             training["predicted_verdict"] = verdicts[i]
         physics = self.task.physics()
+        if physics.residual is not None:  # the learned residual trained on: replay and sweep check its hash
+            training["residual"] = {"path": physics.residual.source, "sha256": physics.residual.sha256}
         doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
                              env_params=self._env_params(), io=self.task.io, training=training)
         save_policy(self.run_dir / "champion.json", doc)
@@ -666,7 +514,7 @@ class Evolution:
         """Each finalist's predicted verdict on a short form of the plan (fresh streams: neither training's nor
         the plan's own)."""
         plan, physics, _, params = self._plan
-        seed = _seed_int(self.cfg.run.seed, _VERDICT_STREAM)
+        seed = seed_int(self.cfg.run.seed, VERDICT_STREAM)
         return [short_verdict(plan, physics, params, self._policy(g), self.executor, self.cfg.run.verdict_samples,
                               seed) for g in genomes]
 
@@ -687,96 +535,5 @@ class Evolution:
 # --------------------------------------------------------------------------- #
 # the run directory read back on --resume: each file checked, one line naming it
 # --------------------------------------------------------------------------- #
-def _one_line(exc: BaseException) -> str:
-    return " ".join(str(exc).split()) or type(exc).__name__
-
-
-def _read_manifest(path: Path, checkpoints: Path) -> dict[str, Any]:
-    """The run's manifest.json: a JSON object whose ``checkpoints`` maps ``generation-N.pkl`` to a SHA-256."""
-    try:
-        manifest = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError, RecursionError) as exc:  # ValueError: bad JSON or UTF-8
-        raise FileFormatError(f"{path}: unreadable ({_one_line(exc)})") from None
-    if not isinstance(manifest, dict):
-        raise FileFormatError(f"{path}: not a run manifest (a JSON object is expected, not "
-                              f"{type(manifest).__name__})")
-    recorded = manifest.setdefault("checkpoints", {})
-    if not isinstance(recorded, dict):
-        raise FileFormatError(f"{path}: 'checkpoints' must map checkpoint file names to SHA-256 hashes")
-    for name, digest in recorded.items():
-        checkpoint.recorded_path(checkpoints, name, path)
-        if not (isinstance(digest, str) and len(digest) == 64 and all(c in "0123456789abcdef" for c in digest)):
-            raise FileFormatError(f"{path}: checkpoints: {name}: {digest!r} is not a SHA-256 hash (64 hex digits)")
-    return manifest
-
-
-def _read_neat_ini(path: Path) -> Any:
-    """The run's neat.ini as a ``neat.Config``."""
-    try:
-        return _neat_config(path)
-    except Exception as exc:  # neat-python raises bare Exception, RuntimeError, configparser and value errors
-        raise FileFormatError(f"{path}: damaged neat-python settings ({_one_line(exc)})") from None
-
-
-def _run_state(state: Any, path: Path) -> RunState:
-    """A loaded checkpoint's state as a RunState (refusing one written by another pretrial version)."""
-    names = {f.name for f in fields(RunState)}
-    if not isinstance(state, dict) or not set(state) <= names or "generation" not in state:
-        raise FileFormatError(f"{path}: not a checkpoint of this pretrial version ({__version__})")
-    try:
-        return RunState(**state)
-    except TypeError as exc:
-        raise FileFormatError(f"{path}: not a checkpoint of this pretrial version ({_one_line(exc)})") from None
-
-
-def _read_timing(path: Path, generation: int) -> list[dict[str, str]]:
-    """timing.csv rows of the generations before ``generation`` (those the checkpoint holds); none if absent."""
-    if not path.exists():
-        return []
-    hint = "it only records seconds per generation: delete it to resume without the earlier timings"
-    try:
-        with open(path, newline="", encoding="utf-8") as f:
-            reader = csv.DictReader(f)
-            if reader.fieldnames != ["generation", "seconds"]:
-                raise ValueError(f"header {reader.fieldnames} is not generation,seconds")
-            rows = [_timing_row(r, reader.line_num) for r in reader]
-    except (OSError, ValueError, csv.Error) as exc:  # ValueError: bad UTF-8 or a bad row
-        raise FileFormatError(f"{path}: damaged ({_one_line(exc)}); {hint}") from None
-    return [r for r in rows if int(r["generation"]) < generation]
-
-
-def _timing_row(row: dict[Any, Any], line: int) -> dict[str, str]:
-    if None in row or None in row.values():
-        raise ValueError(f"line {line}: expected 2 fields")
-    if not (row["generation"].isascii() and row["generation"].isdigit()):
-        raise ValueError(f"line {line}: generation {row['generation']!r} is not a whole number")
-    try:
-        seconds = float(row["seconds"])
-    except ValueError:
-        seconds = float("nan")
-    if not (math.isfinite(seconds) and seconds >= 0):
-        raise ValueError(f"line {line}: seconds {row['seconds']!r} is not a duration")
-    return row
-
-
-#: config keys a resume may change: they decide how long and where, not what the run computes
-_RESUME_MAY_CHANGE = frozenset({"run.generations", "run.checkpoint_every", "run.workers", "run.dask"})
-
-
-def _flat(table: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for k, v in table.items():
-        if isinstance(v, dict):
-            out.update(_flat(v, f"{prefix}{k}."))
-        else:
-            out[f"{prefix}{k}"] = v
-    return out
-
-
-def _clock(seconds: float) -> str:
-    seconds = int(round(seconds))
-    h, rem = divmod(seconds, 3600)
-    m, s = divmod(rem, 60)
-    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
 
 

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pretrial.analysis.plan import Calibrated, Vary
+from pretrial.analysis.plan import Calibrated, Vary, unit_to_value
 from pretrial.sim.perturb import CONTROL_PERIOD, nominal_value
 from pretrial.sim.rollout import Scenarios, keyed_scenarios
 from pretrial_envs.core import Physics
@@ -86,7 +86,7 @@ def objective_fitness(objective: Objective, returns: np.ndarray, success: np.nda
         return np.sort(returns, axis=1)[:, :k].mean(axis=1)
     if score is None:
         raise ValueError("success_lower_bound needs the episode scores")
-    from pretrial.analysis.campaign import wilson_interval
+    from pretrial.analysis.stats import wilson_interval
 
     lower = wilson_interval(np.asarray(success).sum(axis=1), s)[0]
     return lower + SCORE_TIEBREAK * np.asarray(score, dtype=float).mean(axis=1)
@@ -95,17 +95,6 @@ def objective_fitness(objective: Objective, returns: np.ndarray, success: np.nda
 # --------------------------------------------------------------------------- #
 # the plan's dispersions as a training distribution
 # --------------------------------------------------------------------------- #
-def unit_to_value(v: Vary, u: np.ndarray) -> np.ndarray:
-    """Map uniform draws ``u`` in [0, 1) onto ``v``'s dispersion with its distribution (as the sweep draws)."""
-    lo, hi = v.box_low, v.box_high
-    if v.distribution == "loguniform":
-        return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
-    if v.distribution == "normal":
-        from scipy.stats import truncnorm
-
-        a, b = (lo - v.mean) / v.std, (hi - v.mean) / v.std
-        return truncnorm.ppf(u, a, b, loc=v.mean, scale=v.std)
-    return lo + u * (hi - lo)
 
 
 @dataclass(frozen=True)
@@ -176,7 +165,8 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
         (counts of passing and applicable rows), ``verdict`` ("pass"/"fail") and
         ``montecarlo`` (samples, successes, success_rate, ci95, failure_modes).
     """
-    from pretrial.analysis.campaign import Campaign, linear_analysis, requirements, verdict, wilson_interval
+    from pretrial.analysis.campaign import Campaign, linear_analysis, requirements, verdict
+    from pretrial.analysis.stats import wilson_interval
 
     c = Campaign(physics, policy, dict(base_params), plan, executor, "policy")
     dist = PlanDistribution.from_plan(plan.vary, physics, base_params, plan.calibration)  # no corners: the plan
@@ -192,6 +182,7 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     for key, sampled in (("linear", False), ("linear_sampled", True)):
         if key in plan.analyses:
             res[key], res["linear_details"]["sampled" if sampled else "continuous"] = linear_analysis(c, sampled)
+    res["envelope"] = c.envelope()  # a hybrid plant: the share of time outside its residual's data
     rows = [r for r in requirements(plan, res) if not r["name"].startswith("margin ")]
     # A short run cannot show a high rate at 95% confidence; predict the plan's own test instead: the
     # lower bound the sweep's sample count would give at the rate measured here.

@@ -10,10 +10,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from pretrial import __version__
 from pretrial.errors import InputError
 from pretrial.export.golden import MAGIC, VERSION
 from pretrial.export.program import FAULTS, NetPiece, Program, Syntax
+from pretrial.version import __version__
 
 _FLOAT_FUNCTIONS = ("exp", "tanh", "sin", "log", "fabs", "fmin", "fmax", "pow")
 

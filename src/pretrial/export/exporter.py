@@ -39,12 +39,12 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from pretrial import __version__
 from pretrial.console import table
 from pretrial.controller.policy import Policy
 from pretrial.errors import InputError
 from pretrial.export.program import FAULTS, Program, Syntax, build_program
 from pretrial.files import atomic_write_text, check_creatable
+from pretrial.version import __version__
 
 TARGETS = ("c", "python")
 PRECISIONS = ("double", "float")

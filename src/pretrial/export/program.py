@@ -36,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from pretrial.controller.network import _SELU_LAMBDA, _SELU_LAMBDA_ALPHA, ACTIVATIONS, AGGREGATIONS, NetworkSpec
+from pretrial.controller.network import ACTIVATIONS, AGGREGATIONS, SELU_LAMBDA, SELU_LAMBDA_ALPHA, NetworkSpec
 from pretrial.errors import InputError
 
 #: neat.aggregations on an empty list (sum 0, product 1, every other 0.0)
@@ -265,8 +265,8 @@ def _activation(w: Writer, name: str, z: str) -> str:
     if name == "lelu":
         return w.choose(w.compare(z, ">", zero()), lambda: z, lambda: w.mul(lit(0.005), z))
     if name == "selu":
-        return w.choose(w.compare(z, ">", zero()), lambda: w.mul(lit(_SELU_LAMBDA), z),
-                        lambda: w.mul(lit(_SELU_LAMBDA_ALPHA), w.sub(w.call("exp", z), lit(1.0))))
+        return w.choose(w.compare(z, ">", zero()), lambda: w.mul(lit(SELU_LAMBDA), z),
+                        lambda: w.mul(lit(SELU_LAMBDA_ALPHA), w.sub(w.call("exp", z), lit(1.0))))
     if name == "softplus":
         e = w.call("exp", w.clamp(w.mul(lit(5.0), z), -60.0, 60.0))
         return w.mul(lit(0.2), w.call("log", w.add(e, lit(1.0))))

@@ -1,0 +1,1 @@
+"""Replaying a controller: recorded episodes, their metrics, traces and animations."""

@@ -19,7 +19,7 @@ import numpy as np
 
 from pretrial.errors import InputError
 from pretrial.files import atomic_write_bytes
-from pretrial_envs.core import Physics, _Renderer
+from pretrial_envs.core import Physics, Renderer
 
 #: highest frame rate written (common practice for GIFs: browsers slow faster ones down)
 MAX_FPS = 25.0
@@ -80,7 +80,7 @@ def write_animation(path: str | Path, physics: Physics, states: np.ndarray, para
     if mp4:
         check_mp4()
     idx, fps = frame_steps(int(steps), physics.dt)
-    renderer = _Renderer(physics, "rgb_array")
+    renderer = Renderer(physics, "rgb_array")
     text = _wrap(note)
     renderer.frame(states[0], params, 0.0, text)  # creates the figure the writer records
     writer = FFMpegWriter(fps=fps) if mp4 else _drawn_frames_writer(PillowWriter)(fps=fps)
@@ -126,7 +126,7 @@ def show_episode(physics: Physics, states: np.ndarray, params: np.ndarray, steps
     import matplotlib.pyplot as plt
 
     idx, fps = frame_steps(int(steps), physics.dt)
-    renderer = _Renderer(physics, "human")
+    renderer = Renderer(physics, "human")
     text = _wrap(note)
     for k in idx:
         start = time.perf_counter()

@@ -18,7 +18,7 @@ import numpy as np
 
 from pretrial.errors import InputError
 from pretrial.files import atomic_write_bytes, atomic_write_text
-from pretrial.report.plots import _figure
+from pretrial.report.plots import new_figure
 from pretrial_envs.core import Physics, TraceLimit
 
 #: file suffixes the plot writer accepts, and matplotlib's format name for each
@@ -124,7 +124,7 @@ def plot_traces(path: str | Path, physics: Physics, trace: Mapping[str, np.ndarr
     steps = np.asarray(steps, dtype=np.int64)
     groups = state_groups(physics)
     rows = len(groups) + 1
-    fig = _figure(8.0, 1.9 * rows + 0.6)
+    fig = new_figure(8.0, 1.9 * rows + 0.6)
     fig.set_layout_engine("constrained")  # keeps the title close to the first subplot
     axes = fig.subplots(rows, 1, sharex=True, squeeze=False)[:, 0]
     target = physics.target_state(params[:1])[0]

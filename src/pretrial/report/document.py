@@ -116,12 +116,12 @@ def evidence(successes: Any, n: Any, ci: Sequence[Any] | None = None) -> str:
     """``"19 of 20: 95 % [76.39 % – 99.11 %]"``: a count, its rate and its Wilson 95 % interval.
 
     ``ci`` gives the bounds when the results hold them; otherwise they are computed
-    (:func:`pretrial.analysis.campaign.wilson_interval`).
+    (:func:`pretrial.analysis.stats.wilson_interval`).
     """
     if successes is None or not n:
         return DASH
     if ci is None or len(ci) != 2 or None in ci:
-        from pretrial.analysis.campaign import wilson_interval
+        from pretrial.analysis.stats import wilson_interval
 
         lo, hi = wilson_interval(int(successes), int(n))
         ci = [float(lo), float(hi)]

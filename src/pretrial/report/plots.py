@@ -15,7 +15,7 @@ import numpy as np
 from pretrial.files import atomic_write_bytes
 
 
-def _figure(width: float = 7.0, height: float = 4.0):
+def new_figure(width: float = 7.0, height: float = 4.0):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -36,7 +36,7 @@ def plot_fitness(history: Sequence[Mapping[str, Any]], path: str | Path, target:
     best = np.array([r["best"] for r in history], float)
     mean = np.array([r["mean"] for r in history], float)
     std = np.array([r["stdev"] for r in history], float)
-    fig = _figure()
+    fig = new_figure()
     ax = fig.add_subplot(1, 1, 1)
     ax.plot(gen, best, label="best", color="C0", lw=2)
     ax.plot(gen, mean, label="mean", color="C1")
@@ -54,7 +54,7 @@ def plot_species(sizes: Sequence[Mapping[int, int]], path: str | Path) -> None:
     """Stacked species sizes per generation (one band per species id)."""
     ids = sorted({k for row in sizes for k in row})
     table = np.array([[row.get(i, 0) for i in ids] for row in sizes], float).T if ids else np.zeros((1, len(sizes)))
-    fig = _figure()
+    fig = new_figure()
     ax = fig.add_subplot(1, 1, 1)
     ax.stackplot(np.arange(len(sizes)), table, linewidth=0.3, edgecolor="white")
     ax.set_xlabel("generation")
@@ -94,7 +94,7 @@ def plot_network(spec: Mapping[str, Any], path: str | Path, input_names: Sequenc
             pos[k] = (float(d), -(i - (len(keys) - 1) / 2) * 0.9 + 0.25 * (d % 2))
     for i, k in enumerate(outputs):
         pos[k] = (float(max_d), -(i - (len(outputs) - 1) / 2))
-    fig = _figure(7.0, max(3.0, 0.45 * max(len(inputs), len(outputs), 4)))
+    fig = new_figure(7.0, max(3.0, 0.45 * max(len(inputs), len(outputs), 4)))
     ax = fig.add_subplot(1, 1, 1)
     wmax = max([abs(w) for *_, w in conns], default=1.0) or 1.0
     for a, b, w in conns:

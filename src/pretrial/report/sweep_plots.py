@@ -17,7 +17,7 @@ import numpy as np
 
 from pretrial.analysis.loop_margins import disk_ranges
 from pretrial.analysis.samples import SampleHistograms
-from pretrial.report.plots import _figure, save_figure
+from pretrial.report.plots import new_figure, save_figure
 
 Array = np.ndarray
 #: colours of the compared controllers (policy first, LQR baseline second)
@@ -91,7 +91,7 @@ def plot_margins(sets: Sequence[tuple[str, Sequence[Mapping[str, Any]]]], path: 
     unit_names = [n for n in names if n not in ratio_names]
     panels = [(group, ratio) for group, ratio in ((ratio_names, True), (unit_names, False)) if group]
     heights = [max(1.0, 0.5 * len(p[0]) * len(sets)) for p in panels]
-    fig = _figure(7.5, 1.4 + sum(heights) * 0.9)
+    fig = new_figure(7.5, 1.4 + sum(heights) * 0.9)
     gs = fig.add_gridspec(len(panels), 1, height_ratios=heights)
     for k, (panel_names, ratio) in enumerate(panels):
         ax = fig.add_subplot(gs[k, 0])
@@ -172,7 +172,7 @@ def plot_success_curve(curves: Sequence[tuple[str, Mapping[str, Any]]], required
 
     ``curves`` is ``[(label, margins entry), ...]`` for one varied name (the policy, then the baseline).
     """
-    fig = _figure(7.0, 4.0)
+    fig = new_figure(7.0, 4.0)
     ax = fig.add_subplot(1, 1, 1)
     values_all = []
     first = curves[0][1]
@@ -211,7 +211,7 @@ def plot_success_map(maps: Sequence[tuple[str, Mapping[str, Any]]], required: fl
     cent) when the map carries them; a cell whose lower bound meets the required rate is boxed.
     Axes whose grid is geometric are drawn logarithmic.
     """
-    fig = _figure(6.0 * len(maps), 4.6)
+    fig = new_figure(6.0 * len(maps), 4.6)
     for k, (label, m) in enumerate(maps):
         ax = fig.add_subplot(1, len(maps), k + 1)
         x, y = floats(m.get("x_values")), floats(m.get("y_values"))
@@ -298,7 +298,7 @@ def plot_montecarlo(hist: SampleHistograms, varied: Sequence[Mapping[str, Any]],
                                               for v in varied if v["name"] in hist.columns]
     cols = min(3, len(columns))
     rows = math.ceil(len(columns) / cols)
-    fig = _figure(4.0 * cols, 3.0 * rows)
+    fig = new_figure(4.0 * cols, 3.0 * rows)
     for k, (key, label) in enumerate(columns):
         ax = fig.add_subplot(rows, cols, k + 1)
         counts = hist.columns[key]
@@ -348,7 +348,7 @@ def plot_nyquist(loops: Sequence[tuple[str, Mapping[str, Any], Sequence[Mapping[
     ``loops`` is ``[(label, linear_details entry, linear channel entries), ...]``.
     """
     names = _channel_names(loops)
-    fig = _figure(5.0 * len(names), 5.0)
+    fig = new_figure(5.0 * len(names), 5.0)
     for k, name in enumerate(names):
         ax = fig.add_subplot(1, len(names), k + 1)
         t = np.linspace(0, 2 * np.pi, 361)
@@ -390,7 +390,7 @@ def plot_bode(loops: Sequence[tuple[str, Mapping[str, Any], Sequence[Mapping[str
               path: str | Path) -> None:
     """Bode plot per channel (magnitude in dB, phase in degrees) with each loop's gain crossover marked."""
     names = _channel_names(loops)
-    fig = _figure(5.0 * len(names), 5.5)
+    fig = new_figure(5.0 * len(names), 5.5)
     for k, name in enumerate(names):
         ax_m = fig.add_subplot(2, len(names), k + 1)
         ax_p = fig.add_subplot(2, len(names), len(names) + k + 1, sharex=ax_m)

@@ -1,0 +1,1 @@
+"""Simulation: plants by env id, perturbations, random streams, batched rollouts, loop quality and executors."""

@@ -106,6 +106,8 @@ PERTURBATIONS = ParamTable(
             "timing",
         ),
         ParamSpec("start_scale", "-", 1.0, 0.0, 100.0, "multiplier on the start-state ranges", "start"),
+        ParamSpec("residual_scale", "-", 1.0, 0.0, 100.0, "multiplier on the plant's learned residual (option "
+                  "residual): 1 as fitted, 0 the physics alone", "model"),
     ]
 )
 
@@ -368,6 +370,8 @@ SIMULATION_NOTES = {
     "sensor_quantization": "the plain form is one resolution for every observation, each in its own unit; "
                            "NAME.OBS is one observation in its unit (as tabled)",
     CONTROL_PERIOD: "the plant is rebuilt with that control period, its integration step no longer than before",
+    "residual_scale": "multiplies the learned residual added to the plant's derivatives at every integration "
+                      "stage (0: the physics alone, exactly)",
 }
 
 
@@ -400,6 +404,11 @@ def plant_refusal(physics: Physics, name: str, value: float | None = None) -> st
     actuator gain, no jitter and only whole-period actuator delays.
     """
     base = str(name).split(".")[0]
+    if base == "residual_scale":
+        if getattr(physics, "residual", None) is not None or value == 1.0:
+            return None
+        return (f"{name}: {physics.env_id} has no learned residual to scale (give it the option residual = "
+                "PATH to a residual.json from pretrial calibrate --residual)")
     if base not in _WITHIN_PERIOD or within_period_ok(physics):
         return None
     if value is not None:
@@ -480,6 +489,7 @@ class Loop:
         self.obs_delay, obs_frac = split_delay(v["sensor_delay_s"], dt)
         self.obs_frac = obs_frac[:, None]
         self.start_scale = v["start_scale"].copy()
+        self.residual_scale = v["residual_scale"][:, None]
         self.jitter_frac = np.minimum(v["control_jitter_s"] / dt, 1.0)[:, None]
         self._jitter_rows = self.jitter_frac > 0
         # Per-row (and per-channel) masks: an element that is nominal passes values through exactly, so a row's
@@ -515,6 +525,8 @@ class Loop:
             name = ("actuator_gain" if self._any_gain else "control_jitter_s" if self._any_jitter
                     else "actuator_delay_s")
             raise ValueError(plant_refusal(self.physics, name))
+        if self._any_residual and getattr(self.physics, "residual", None) is None:
+            raise ValueError(plant_refusal(self.physics, "residual_scale"))
 
     def _batch_flags(self) -> None:
         # Which elements act on some row (the others are skipped: nominal passes values through) and
@@ -529,6 +541,7 @@ class Loop:
         self._any_obs_frac = bool(np.any(self.obs_frac > 0))
         self._any_switch = self._any_jitter or bool(np.any(self.act_frac > 0))
         self._any_gain = bool(np.any(self.gain != 1.0))
+        self._any_residual = bool(np.any(self.residual_scale != 1.0))
         self._any_dead = bool(self._dead_rows.any())
         self._any_slew, self._all_slew = bool(self._slew_rows.any()), bool(self._slew_rows.all())
         self._any_lag, self._all_lag = bool(self._lag_rows.any()), bool(self._lag_rows.all())
@@ -612,6 +625,8 @@ class Loop:
             inputs.update(earlier=prev, switch=switch)
         if self._any_gain:
             inputs["gain"] = self.gain
+        if self._any_residual:
+            inputs["residual_scale"] = self.residual_scale
         self._inputs = inputs
         return u
 
@@ -638,8 +653,9 @@ class Loop:
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
         for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
-                     "act_delay", "act_frac", "obs_delay", "obs_frac", "start_scale", "_applied", "_sensor_rows",
-                     "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows"):
+                     "act_delay", "act_frac", "obs_delay", "obs_frac", "start_scale", "residual_scale", "_applied",
+                     "_sensor_rows", "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac",
+                     "_jitter_rows"):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]
