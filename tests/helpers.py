@@ -347,3 +347,57 @@ def linear_entry(pm: float, gm_db: float | None):
     return {"channel": "force", "gain_margin_low": 0.0, "gain_margin_high": None if gm_db is None else 10 ** (
         gm_db / 20), "gain_margin_db": gm_db, "phase_margin_deg": pm, "delay_margin_s": 0.3, "disk_margin": 0.9,
         "disk_gain_low": 0.38, "disk_gain_high": 2.6, "disk_phase_deg": 48.0, "crossover_rad_s": 1.2}
+
+
+def quick_plan(seed: int = 7, samples: int = 48, required: float = 0.8) -> str:
+    """A cart-pole sweep plan that runs in seconds: margins and Monte Carlo over pole mass and actuator gain.
+
+    The gain's range reaches far below what the LQR tolerates, so its sweeps have failures to replay.
+    """
+    return f"""
+[scenario]
+env = "pretrial/CartPole-v0"
+episodes = 20
+horizon = 2.0
+seed = {seed}
+[[vary]]
+name = "pole_mass"
+units = "ratio"
+range = [0.5, 4.0]
+dispersion = [0.8, 1.5]
+[[vary]]
+name = "actuator_gain"
+range = [0.01, 2.0]
+dispersion = [0.05, 1.2]
+[analysis]
+run = ["margins", "montecarlo"]
+tolerance = 0.05
+montecarlo_samples = {samples}
+[require]
+success_rate = {required}
+"""
+
+
+#: the shipped bench logs' region (configs/bench: the pole hanging at theta = pi): x, x_dot, theta, theta_dot, force
+HANGING_LOW = (-0.3, -0.6, 2.6, -2.4, -4.0)
+HANGING_HIGH = (0.3, 0.7, 3.7, 2.9, 4.0)
+
+
+def residual_file(path: Path, low=HANGING_LOW, high=HANGING_HIGH, coefficients=None, degree: int = 2,
+                  sign_scale: float = 0.01, margin: float = 0.1) -> Path:
+    """A cart-pole ``residual.json`` (pretrial_envs.residual's own writer) correcting x_ddot and theta_ddot.
+
+    ``coefficients`` (2, F) default to zeros, so the plant moves as the physics alone and only the
+    envelope matters; callers give their own to change the dynamics.
+    """
+    import json
+
+    from pretrial_envs.residual import Envelope, Library, Residual, residual_document
+
+    physics = make_physics("pretrial/CartPole-v0")
+    lib = Library(physics.state_names, physics.state_units, physics.action_names, degree, sign_scale)
+    coef = np.zeros((2, lib.size)) if coefficients is None else np.asarray(coefficients, float)
+    env = Envelope(physics.state_names + physics.action_names, np.array(low, float), np.array(high, float), margin)
+    doc = residual_document(Residual(lib, (1, 3), coef, env), physics)
+    path.write_text(json.dumps(doc))
+    return path

@@ -889,7 +889,7 @@ def _residual_for(physics: Physics, residual: Any) -> Any:
 
 
 def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: float = 1e-6) -> tuple[Array, Array]:
-    """Central-difference Jacobians ``A = df/dx``, ``B = df/du`` at one point.
+    """Central-difference Jacobians ``A = df/dx``, ``B = df/du`` of the model (physics plus residual) at one point.
 
     ``state`` (S,), ``force`` (A,) in physical units, ``params`` (P,). All
     perturbed points are evaluated in one batched call.
@@ -899,7 +899,7 @@ def jacobians(physics: Physics, state: Array, force: Array, params: Array, eps: 
     step_u = eps * np.maximum(1.0, np.abs(force))
     dx = np.concatenate([np.diag(step_x), -np.diag(step_x), np.zeros((2 * a, s))])
     du = np.concatenate([np.zeros((2 * s, a)), np.diag(step_u), -np.diag(step_u)])
-    f = physics.derivatives(state + dx, force + du, np.tile(params, (dx.shape[0], 1)))
+    f = physics.model_derivatives(state + dx, force + du, np.tile(params, (dx.shape[0], 1)))
     jac_a = (f[:s] - f[s : 2 * s]).T / (2 * step_x)
     jac_b = (f[2 * s : 2 * s + a] - f[2 * s + a :]).T / (2 * step_u)
     return jac_a, jac_b

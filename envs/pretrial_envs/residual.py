@@ -278,6 +278,22 @@ class Residual:
             deriv[:, cols] = np.where(scale != 0.0, part + scale * r, part)
         return deriv
 
+    def without_signs(self) -> Residual:
+        """This residual with the coefficients of its smooth signs ``tanh(v / scale)`` at 0.
+
+        They stand for dry friction: a linear model takes them out as it takes out the plant's Coulomb
+        friction (a sign function has no useful derivative at rest; ``tanh``'s slope there, 1 / scale,
+        would read as a large viscous term).
+        """
+        c = np.array(self.coefficients)
+        c[:, self.library._n_terms:] = 0.0  # type: ignore[attr-defined]
+        return Residual(self.library, self.outputs, c, self.envelope, self.source, self.sha256)
+
+    @property
+    def has_signs(self) -> bool:
+        """Whether some smooth-sign feature has a non-zero coefficient."""
+        return bool(np.any(self.coefficients[:, self.library._n_terms:]))  # type: ignore[attr-defined]
+
     def to_dict(self, state_names: Sequence[str]) -> dict[str, Any]:
         """The parts of residual.json this object holds (features named, outputs by state name)."""
         return {"library": self.library.to_dict(), "features": list(self.library.names),

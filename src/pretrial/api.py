@@ -167,7 +167,7 @@ def sweep(policy: PathLike | Policy, plan: PathLike, *, out: PathLike | None = N
 
 def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike | None = None,
            settings: Mapping[str, Any] | None = None, episodes: int = 1, seed: int = 0,
-           start: str | Sequence[float] | None = None) -> Replay:
+           start: str | Sequence[float] | None = None, stream_version: int = 1) -> Replay:
     """Replay a controller on chosen conditions and measure what it does.
 
     Parameters
@@ -184,6 +184,9 @@ def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike 
         The same episodes a sweep draws for that seed.
     start : str or sequence of float, optional
         An exact start state (numbers in state order, or ``"name=value,..."``).
+    stream_version : int
+        Version of the noise draws: a sweep's ``results.json`` records it (``stream_version``;
+        absent means 1), and its replay commands name it when it is not 1.
 
     Returns
     -------
@@ -198,7 +201,7 @@ def replay(policy: PathLike | Policy, *, env: str | None = None, plan: PathLike 
             start = ",".join(repr(float(v)) for v in start)
         given = policy if not isinstance(policy, os.PathLike) else os.fspath(policy)
         return run(given, env=env, plan=None if plan is None else os.fspath(plan), settings=dict(settings or {}),
-                   episodes=episodes, seed=seed, start=start)
+                   episodes=episodes, seed=seed, start=start, stream_version=stream_version)
 
 
 @dataclass

@@ -7,33 +7,12 @@ import re
 import shutil
 
 import pytest
-from helpers import ROOT, balancing_policy_file
+from helpers import ROOT, balancing_policy_file, quick_plan
 
 import pretrial
 from pretrial.cli.main import main
 
-SMALL_PLAN = """
-[scenario]
-env = "pretrial/CartPole-v0"
-episodes = 20
-horizon = 2.0
-seed = 5
-[[vary]]
-name = "pole_mass"
-units = "ratio"
-range = [0.5, 4.0]
-dispersion = [0.8, 1.5]
-[[vary]]
-name = "actuator_gain"
-range = [0.01, 2.0]
-dispersion = [0.02, 1.0]
-[analysis]
-run = ["margins", "montecarlo"]
-tolerance = 0.05
-montecarlo_samples = 32
-[require]
-success_rate = 0.5
-"""
+SMALL_PLAN = quick_plan(seed=5, samples=32, required=0.5)
 
 
 def _replays(doc) -> list[str]:

@@ -578,3 +578,56 @@ def test_options_round_trip_and_hold_time_validation():
     assert again.options() == physics.options() and again.hold_time == 2.5
     with pytest.raises(ValueError, match="hold_time"):
         DronePairPhysics(hold_time=-1)
+
+
+# --------------------------------------------------------------------------- #
+# The in-place derivatives against the plain expressions
+# --------------------------------------------------------------------------- #
+def _plain_derivatives(state: np.ndarray, force: np.ndarray, params: np.ndarray) -> np.ndarray:
+    """The planar quadrotor's rigid-body equations as plain numpy expressions (no buffer reused).
+
+    Per drone: ``m x'' = -(T_l + T_r) sin(pitch) - D v_rel,x``, ``m z'' = (T_l + T_r) cos(pitch) -
+    D v_rel,z - m g``, ``I pitch'' = (T_r - T_l) arm`` with ``D = d_lin + d_quad |v_rel|`` (the
+    textbook planar quadrotor, e.g. Mellinger and Kumar 2011 reduced to the plane -- from memory),
+    first-order rotors ``T' = (command - T) / tau``; the gust is held over the period.
+    """
+    st, pt = state.T, params.T
+    col = PARAMS.index
+    pitch, vx, vz = st[[2, 8]], st[[3, 9]], st[[4, 10]]
+    rel_x = vx - (pt[col("wind_x")] + st[16])
+    rel_z = vz - (pt[col("wind_z")] + st[17])
+    drag = pt[col("drag_linear")] + pt[col("drag_quadratic")] * np.sqrt(rel_x * rel_x + rel_z * rel_z)
+    left, right = st[[12, 14]], st[[13, 15]]
+    total = left + right
+    inv_m = 1.0 / pt[col("mass")]
+    out = np.empty((18, state.shape[0]))
+    out[[0, 1, 2, 6, 7, 8]] = st[[3, 4, 5, 9, 10, 11]]
+    out[[3, 9]] = (-total * np.sin(pitch) - drag * rel_x) * inv_m
+    out[[4, 10]] = (total * np.cos(pitch) - drag * rel_z) * inv_m - pt[col("gravity")]
+    out[[5, 11]] = (right - left) * (pt[col("arm_length")] / pt[col("inertia")])
+    out[12:16] = (force.T - st[12:16]) / pt[col("rotor_time_constant")]
+    out[16:18] = 0.0
+    return out.T
+
+
+@pytest.mark.parametrize("n", [1, 7, 300])
+def test_derivatives_equal_the_plain_expressions_bit_for_bit(n):
+    # Same expressions in the same order, so equal floats; random states, thrusts, winds, drags and
+    # bodies. Read-only parameter arrays (as the rollout passes them) exercise the per-batch
+    # constants, kept while the same array comes back; writable ones are formed afresh.
+    rng = np.random.default_rng(5 + n)
+    physics = DronePairPhysics()
+    for writeable in (True, False):
+        params = PARAMS.resolve_batch(None, n)
+        for name, (lo, hi) in {"mass": (0.3, 3.0), "arm_length": (0.1, 0.5), "inertia": (0.005, 0.1),
+                               "wind_x": (-5.0, 5.0), "wind_z": (-2.0, 2.0), "drag_linear": (0.0, 1.0),
+                               "drag_quadratic": (0.0, 0.5), "rotor_time_constant": (0.01, 0.2),
+                               "gravity": (9.0, 10.0)}.items():
+            params[:, PARAMS.index(name)] = rng.uniform(lo, hi, n)
+        params = np.asfortranarray(params) if not writeable else params
+        params.setflags(write=writeable)
+        for _ in range(3):  # again with the same read-only array: the kept constants
+            state = rng.normal(0, 2.0, (n, physics.state_dim))
+            force = rng.uniform(0, 20, (n, physics.action_dim))
+            np.testing.assert_array_equal(physics.derivatives(state, force, params),
+                                          _plain_derivatives(state, force, params))

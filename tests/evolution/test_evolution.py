@@ -58,8 +58,8 @@ def run_cli(argv: list[str]) -> int:
         return int(exc.code)
 
 
-# pop_size 70 > 2 x CHUNK (32): three work items, so two workers really split a generation; like the
-# shipped configs it redraws a physics parameter and a sensor perturbation every generation
+# pop_size 70: one work item serially, two with two workers (chunk_size), so the workers really split a
+# generation; like the shipped configs it redraws a physics parameter and a sensor perturbation every generation
 RANDOMIZE = "[task.randomize]\ncart_mass = [0.9, 1.1]\nsensor_noise_std = [0.0, 0.002]\n"
 
 
@@ -88,6 +88,25 @@ def test_same_files_on_serial_processes_and_dask(where, reference, tmp_path):
     assert execution["executor"] == where and execution["workers"] == 2
     for name in ("history.csv", "champion.json"):
         assert (run_dir / name).read_bytes() == (reference["run_dir"] / name).read_bytes(), name
+
+
+def test_results_do_not_depend_on_how_genomes_are_cut(reference, tmp_path, monkeypatch):
+    # one genome per work item against the reference's one item of 70: each genome's rows stand alone
+    from pretrial.evolution import loop
+
+    monkeypatch.setattr(loop, "chunk_size", lambda genomes, episodes, workers: 1)
+    run_dir = tmp_path / "single"
+    assert main(["evolve", str(reference["config"]), "--out", str(run_dir), "--quiet", "--workers", "1"]) == 0
+    for name in ("history.csv", "champion.json"):
+        assert (run_dir / name).read_bytes() == (reference["run_dir"] / name).read_bytes(), name
+
+
+def test_chunk_size_keeps_every_worker_busy_within_the_row_cap():
+    from pretrial.evolution.loop import MAX_CHUNK_ROWS, chunk_size
+
+    assert chunk_size(100, 32, 1) == 100 and chunk_size(100, 32, 2) == 50 and chunk_size(101, 32, 2) == 51
+    assert chunk_size(150, 1000, 1) == MAX_CHUNK_ROWS // 1000  # the row cap
+    assert chunk_size(3, 4, 8) == 1
 
 
 def test_compared_files_hold_no_clock_path_or_host(reference):

@@ -3,32 +3,11 @@
 from __future__ import annotations
 
 import pytest
-from helpers import balancing_policy_file, snapshot
+from helpers import balancing_policy_file, quick_plan, snapshot
 
 from pretrial.cli.main import main
 
-PLAN = """
-[scenario]
-env = "pretrial/CartPole-v0"
-episodes = 20
-horizon = 2.0
-seed = 7
-[[vary]]
-name = "pole_mass"
-units = "ratio"
-range = [0.5, 4.0]
-dispersion = [0.8, 1.5]
-[[vary]]
-name = "actuator_gain"
-range = [0.01, 2.0]
-dispersion = [0.05, 1.2]
-[analysis]
-run = ["margins", "montecarlo"]
-tolerance = 0.05
-montecarlo_samples = 48
-[require]
-success_rate = 0.8
-"""
+PLAN = quick_plan(seed=7)
 
 
 @pytest.fixture(scope="module")

@@ -28,8 +28,11 @@ import numpy as np
 from pretrial.analysis.plan import MARGIN_BRACKET, Plan, Vary, unit_to_value
 from pretrial.analysis.samples import ColumnStore, SampleHistograms, exact_quantiles, sample_histograms, unit_blocks
 from pretrial.analysis.stats import derive_seed, wilson_interval
+from pretrial.analysis.trust import EnvelopeTally, envelope_requirement, envelope_summary
+from pretrial.playback.command import replay_command
 from pretrial.sim import streams
 from pretrial.sim.execution import Executor
+from pretrial.sim.hybrid import residual_record
 from pretrial.sim.perturb import CONTROL_PERIOD, describe_values, nominal_value, with_control_period
 from pretrial.sim.rollout import keyed_scenarios, run_episodes
 from pretrial_envs.core import Physics
@@ -53,15 +56,21 @@ class Batch:
     failure: np.ndarray  # failure words ("" for success)
     score: np.ndarray
     steps: np.ndarray
+    #: share of each episode's steps outside a hybrid plant's residual envelope (None: no residual)
+    outside: np.ndarray | None = None
 
 
-def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def _run_chunk(item: tuple) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Work item: one chunk of rows of one plant (module level, so it pickles)."""
-    physics, policy, params, settings, seeds, episodes, max_steps, quality = item
+    physics, policy, params, settings, seeds, episodes, max_steps, quality, stream_version = item
     sc = keyed_scenarios(physics, seeds, episodes, params, settings)
-    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality)
+    out = run_episodes(physics, policy, sc, max_steps=max_steps, score=True, quality=quality,
+                       stream_version=stream_version)
     words = np.array(out.failure_words, dtype=object)[out.failure[0]]
-    return out.success[0], words.astype(str), out.score[0], out.steps[0]
+    env = None
+    if out.envelope is not None:  # rows: share, outside steps, first variable out
+        env = np.stack([out.envelope["share"][0], out.envelope["outside_steps"][0], out.envelope["first_var"][0]])
+    return out.success[0], words.astype(str), out.score[0], out.steps[0], env
 
 
 @dataclass
@@ -82,6 +91,9 @@ class Campaign:
         How the replay command names the controller (a path, or ``lqr``).
     progress : callable, optional
         Called with the number of episodes just finished.
+    stream_version : int
+        Version of the sensor-noise and gust draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`);
+        replay commands name it when it is not 1, the version of commands that do not.
     """
 
     physics: Physics
@@ -91,10 +103,14 @@ class Campaign:
     executor: Executor
     policy_arg: str
     progress: Callable[[int], None] | None = None
+    stream_version: int = 1
     _plants: dict[float, Physics] = field(default_factory=dict, repr=False)
     #: diverged episodes so far: count, and the values (varied names) and keys of each
     _diverged: list[tuple[dict[str, float], int, int]] = field(default_factory=list, repr=False)
     diverged_episodes: int = 0
+    #: the analysis running now: the trust-region tally is kept per analysis
+    stage: str = "evaluate"
+    _trust: EnvelopeTally | None = field(default=None, repr=False)
 
     def nominal(self, name: str) -> float:
         """Nominal value of a varied name here (policy/plan overrides included)."""
@@ -128,6 +144,7 @@ class Campaign:
         failure = np.empty(n, dtype=object)
         score = np.zeros(n)
         steps = np.zeros(n, dtype=np.int64)
+        env = np.zeros((3, n)) if getattr(self.physics, "residual", None) is not None else None
         chunks = []
         for dt in np.unique(period):
             rows = np.flatnonzero(period == dt)
@@ -140,9 +157,12 @@ class Campaign:
         for g in range(0, len(chunks), group):
             part = chunks[g:g + group]
             items = [(physics, self.policy, np.repeat(base, len(r), axis=0), {k: v[r] for k, v in vals.items()},
-                      seeds[r], episodes[r], self.max_steps(physics), self.plan.quality) for physics, base, r in part]
-            for (_, _, r), (s, f, sc, st) in zip(part, self.executor.map(_run_chunk, items), strict=True):
+                      seeds[r], episodes[r], self.max_steps(physics), self.plan.quality, self.stream_version)
+                     for physics, base, r in part]
+            for (_, _, r), (s, f, sc, st, e) in zip(part, self.executor.map(_run_chunk, items), strict=True):
                 success[r], failure[r], score[r], steps[r] = s, f, sc, st
+                if env is not None:
+                    env[:, r] = e
                 if self.progress is not None:
                     self.progress(len(r))
         failure = failure.astype(str)
@@ -153,7 +173,19 @@ class Campaign:
             if np.any(period != self.physics.dt):
                 row[CONTROL_PERIOD] = float(period[i])
             self._diverged.append((row, int(seeds[i]), int(episodes[i])))
-        return Batch(success, failure, score, steps)
+        if env is None:
+            return Batch(success, failure, score, steps)
+        if self._trust is None:
+            self._trust = EnvelopeTally(self.physics.residual.envelope.names)
+        self._trust.add(self.stage, env[0], env[1].astype(np.int64), steps, env[2].astype(np.int64))
+        return Batch(success, failure, score, steps, env[0])
+
+    def envelope(self) -> dict[str, Any] | None:
+        """The trust region so far (``results.json``'s ``envelope``); None on a plant without a residual."""
+        record = residual_record(self.physics)
+        if record is not None and self._trust is None:
+            self._trust = EnvelopeTally(self.physics.residual.envelope.names)
+        return envelope_summary(self._trust, record)
 
     def diverged(self) -> dict[str, Any] | None:
         """Diverged episodes (numerical blow-up, counted as failures): how many, where, and a replay of one."""
@@ -173,19 +205,11 @@ class Campaign:
 
     # ------------------------------------------------------------- replay commands
     def replay_command(self, values: Mapping[str, float], seed: int, episodes: int = 1) -> str:
-        words = ["pretrial", "replay", _quote(self.policy_arg), "--plan", _quote(self.plan.path)]
-        if self.policy_arg == "lqr":
-            words += ["--env", self.physics.env_id]
-        for k, v in values.items():
-            words += ["--set", f"{k}={float(v)!r}"]
-        words += ["--seed", str(int(seed)), "--episodes", str(int(episodes))]
-        return " ".join(words)
-
-
-def _quote(text: str) -> str:
-    import shlex
-
-    return shlex.quote(text)
+        """The replay of ``episodes`` episodes of ``seed`` at ``values`` under this plan."""
+        return replay_command(self.policy_arg, plan=self.plan.path,
+                              env=self.physics.env_id if self.policy_arg == "lqr" else None,
+                              settings={k: float(v) for k, v in values.items()}, seed=seed, episodes=episodes,
+                              stream_version=self.stream_version)
 
 
 def _modes(words: np.ndarray) -> dict[str, int]:
@@ -769,6 +793,10 @@ def requirements(plan: Plan, res: Mapping[str, Any]) -> list[dict[str, Any]]:
                 ok = got is None or got >= want
                 out.append({"name": f"{req_name} {ch['channel']} ({title})", "required": want, "measured": measured,
                             "pass": bool(ok)})
+    if "envelope" in res:  # a sweep's campaign measured it (None: the plant has no residual)
+        row = envelope_requirement(plan.max_outside_envelope, res["envelope"])
+        if row is not None:
+            out.append(row)
     if res.get("integrator_check") is not None:
         ic = res["integrator_check"]
         out.append({"name": "integrator check", "required": "no change with a finer step",
@@ -786,10 +814,10 @@ def verdict(reqs: Sequence[Mapping[str, Any]]) -> str:
     return "pass" if judged and all(r["pass"] for r in judged) else "fail"
 
 
-#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 #: key into the Monte Carlo seed for the calibration's bootstrap-row draws
 _CALIBRATION_DRAWS = 7
 
+#: analysis -> key into the plan seed, so adding an analysis never changes another's draws
 _SEED_KEYS = {"margins": 1, "montecarlo": 2, "worstcase": 3, "sensitivity": 4, "map": 5, "integrator_check": 6}
 
 
@@ -854,11 +882,13 @@ def run_analyses(c: Campaign, say: Callable[[str], None] | None = None, samples_
         res["linear_details"] = {"continuous": None, "sampled": None}
     out = _Outputs(res, say, samples_csv, scratch)
     for k, name in enumerate(order):
+        c.stage = name  # which analysis the envelope tally counts for
         if say is not None and not (name == "integrator_check" and "substeps" not in c.physics.options()):
             say(f"  [{k + 1}/{len(order)}] {name}")
         RUNNERS[name](c, derive_seed(plan.seed, _SEED_KEYS.get(name, 0)), out)  # the linear ones draw nothing
     samples = out.samples
     res["diverged"] = c.diverged()
+    res["envelope"] = c.envelope()
     res["requirements"] = requirements(plan, res)
     res["verdict"] = verdict(res["requirements"])
     return res, samples

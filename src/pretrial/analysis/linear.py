@@ -1,7 +1,7 @@
 """Closed-loop equilibrium, linearization and loop margins of a policy on a plant.
 
-The loop is the plant ``dx/dt = f(x, actuate(a), p)`` (``physics.derivatives``)
-with the controller ``a = policy.act(observe(x))``. :func:`loop_report`
+The loop is the plant ``dx/dt = f(x, actuate(a), p)`` (``physics.model_derivatives``: the physics
+plus a learned residual, if the plant has one) with the controller ``a = policy.act(observe(x))``. :func:`loop_report`
 
 1. sets the Coulomb friction parameters (``physics.coulomb_params``) to 0 for
    the linear model: a sign function has no derivative at rest, so stick-slip
@@ -98,6 +98,23 @@ def linear_params(physics: Physics, p: Array) -> tuple[Array, list[str]]:
     return out, notes
 
 
+def linear_plant(physics: Physics) -> tuple[Physics, list[str]]:
+    """The plant a linear model is taken of: a learned residual's smooth signs left out, as Coulomb friction is.
+
+    Returns ``physics`` itself when it has no residual with sign terms, else a shallow copy whose residual has
+    them at 0, and a note saying so.
+    """
+    res = getattr(physics, "residual", None)
+    if res is None or not res.has_signs:
+        return physics, []
+    import copy
+
+    smooth = copy.copy(physics)
+    smooth.residual = res.without_signs()
+    return smooth, ["the learned residual's smooth signs tanh(v/scale) (dry friction) left out of the linear model, "
+                    "as Coulomb friction is"]
+
+
 def equations_reason(physics: Physics) -> str | None:
     """Why ``physics`` cannot be linearized at all (no equations of motion), or None."""
     if type(physics).derivatives is Physics.derivatives:
@@ -114,7 +131,7 @@ def held_states(physics: Physics, x: Array, p: Array) -> list[int]:
     a = rng.uniform(-1.0, 1.0, (n, physics.action_dim))
     pp = np.tile(p, (n, 1))
     with np.errstate(all="ignore"):
-        f = physics.derivatives(xs, physics.actuate(a, pp), pp)
+        f = physics.model_derivatives(xs, physics.actuate(a, pp), pp)
     return [j for j in range(x.size) if np.all(f[:, j] == 0.0)]
 
 
@@ -164,7 +181,7 @@ def plant_model(physics: Physics, x: Array, action: Array, p_lin: Array, free: l
     force = physics.actuate(action[None, :], p_lin[None, :])[0]
     jac_a, jac_b = jacobians(physics, x, force, p_lin, eps=FD_STEP)
     names = list(physics.state_names)
-    _, fa, ba = differences(lambda xs: physics.derivatives(xs, np.tile(force, (len(xs), 1)),
+    _, fa, ba = differences(lambda xs: physics.model_derivatives(xs, np.tile(force, (len(xs), 1)),
                                                             np.tile(p_lin, (len(xs), 1))), x, free)
     _check_kink("plant", fa[free], ba[free], [names[i] for i in free], [names[i] for i in free])
     anames = list(physics.action_names)
@@ -172,7 +189,7 @@ def plant_model(physics: Physics, x: Array, action: Array, p_lin: Array, free: l
 
     def by_action(a_rows: Array) -> Array:
         pp = np.tile(p_lin, (len(a_rows), 1))
-        return physics.derivatives(np.tile(x, (len(a_rows), 1)), physics.actuate(a_rows, pp), pp)
+        return physics.model_derivatives(np.tile(x, (len(a_rows), 1)), physics.actuate(a_rows, pp), pp)
 
     c_u, fu, bu = differences(by_action, action, acts)
     _check_kink("plant", fu[free], bu[free], [names[i] for i in free], anames)
@@ -202,7 +219,7 @@ def _closed_residual(physics: Physics, act: Callable[[Array], Array], base: Arra
         x[free] = z
         a = act(x[None, :])
         with np.errstate(all="ignore"):
-            f = physics.derivatives(x[None, :], physics.actuate(a, p[None, :]), p[None, :])[0]
+            f = physics.model_derivatives(x[None, :], physics.actuate(a, p[None, :]), p[None, :])[0]
         return np.where(np.isfinite(f[free]), f[free], 1e12)
 
     return res
@@ -455,6 +472,8 @@ def loop_report(
         raise InputError("delay_steps: a delay of whole control periods needs the sampled loop (sampled=True)")
     p = resolve_params(physics, params)
     p_lin, notes = linear_params(physics, p)
+    physics, signs = linear_plant(physics)
+    notes += signs
     common = {"sampled": bool(sampled), "delay_steps": int(delay_steps), "dt": physics.dt,
               "state_names": tuple(physics.state_names), "action_names": tuple(physics.action_names)}
 

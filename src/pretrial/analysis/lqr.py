@@ -43,6 +43,7 @@ from pretrial.analysis.linear import (
     equations_reason,
     held_states,
     linear_params,
+    linear_plant,
     plant_model,
     resolve_params,
 )
@@ -106,7 +107,7 @@ def _hold_point(physics: Physics, x0: Array, a0: Array, p: Array, free: list[int
     n, m = len(free), physics.action_dim
     pp = p[None, :]
     for _ in range(100):
-        f = physics.derivatives(x[None, :], physics.actuate(a[None, :], pp), pp)[0][free]
+        f = physics.model_derivatives(x[None, :], physics.actuate(a[None, :], pp), pp)[0][free]
         if np.max(np.abs(f), initial=0.0) <= 1e-10:
             return x, a
         model = plant_model(physics, x, a, p, free, [])
@@ -114,7 +115,7 @@ def _hold_point(physics: Physics, x0: Array, a0: Array, p: Array, free: list[int
         step = -np.linalg.pinv(jac) @ f
         x[free] += step[:n]
         a += step[n : n + m]
-    f = physics.derivatives(x[None, :], physics.actuate(a[None, :], pp), pp)[0][free]
+    f = physics.model_derivatives(x[None, :], physics.actuate(a[None, :], pp), pp)[0][free]
     if np.max(np.abs(f)) > EQUILIBRIUM_TOL:
         raise InputError(f"LQR baseline: no rest point of the plant near the target (residual {np.max(np.abs(f)):.3g})")
     return x, a
@@ -238,6 +239,8 @@ def design_lqr(
         raise InputError(f"LQR baseline: {no_equations}")
     p = resolve_params(physics, params)
     p_lin, notes = linear_params(physics, p)
+    physics, signs = linear_plant(physics)
+    notes += signs
     target = physics.target_state(p_lin[None, :])[0]
     held = held_states(physics, target, p_lin)
     free = [j for j in range(physics.state_dim) if j not in held]

@@ -8,7 +8,8 @@ A plan has these tables (see configs/sweeps/ for one per task)::
     [scenario.start]    start-state half-ranges by state name
     [[vary]]            name, range, units ("physical" | "ratio"), distribution
     [analysis]          which analyses, with their budgets
-    [require]           success rate, margins, linear margins the engineer needs
+    [require]           success rate, margins, linear margins the engineer needs; on a hybrid plant the
+                        share of simulated time allowed outside its residual's data (max_outside_envelope)
     [baseline]          LQR weights (q by state name, r by action name)
 
 Values of ``[[vary]]`` are in physical units, or with ``units = "ratio"`` as
@@ -26,10 +27,12 @@ from typing import Any
 import numpy as np
 
 from pretrial.analysis.stats import Z2
+from pretrial.analysis.trust import DEFAULT_MAX_OUTSIDE
 from pretrial.errors import InputError
 from pretrial.files import sha256_hex
 from pretrial.limits import CONTROL_PERIOD as PERIOD_LIMIT
 from pretrial.limits import EPISODES, HORIZON, SEED, START_SPREAD, check_horizon, check_total
+from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.sim.perturb import (
     CONTROL_PERIOD,
     PERTURBATIONS,
@@ -147,6 +150,9 @@ class Plan:
     worstcase_success_rate: float | None = None
     #: ``[scenario] calibration``: parameters Monte Carlo draws jointly from a calibration's bootstrap set
     calibration: Calibrated | None = None
+    #: ``[require] max_outside_envelope``: share of simulated time a hybrid plant may run outside its residual's
+    #: data (default :data:`~pretrial.analysis.trust.DEFAULT_MAX_OUTSIDE` there; None on a plain plant)
+    max_outside_envelope: float | None = None
 
     @property
     def name(self) -> str:
@@ -169,7 +175,9 @@ class Plan:
             "require": {"success_rate": self.required_success_rate, "margins": self.required_margins,
                         "gain_margin_db": self.gain_margin_db, "phase_margin_deg": self.phase_margin_deg,
                         "worstcase_success_rate": self.worstcase_success_rate,
-                        "quality": self.quality.to_dict()},
+                        "quality": self.quality.to_dict(),
+                        **({"max_outside_envelope": self.max_outside_envelope}
+                           if self.max_outside_envelope is not None else {})},
             "baseline": {"q": dict(self.lqr_q), "r": dict(self.lqr_r)},
             **({"calibration": self.calibration.to_dict()} if self.calibration is not None else {}),
         }
@@ -210,7 +218,7 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     episodes = s.take("episodes", int, 60, limit=EPISODES)
     horizon = s.take("horizon", float, None, limit=HORIZON)
     seed = s.take("seed", int, 0, limit=SEED)
-    options = s.table_of("options")
+    options = resolve_residual_path(s.table_of("options"), Path(path).parent)  # relative to the plan
     params_t = s.table_of("params")
     start_t = s.table_of("start")
     cal_path = s.take("calibration", str, None, lambda v: bool(v.strip()), "the path of a calibration.json")
@@ -320,6 +328,8 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
     gm = q.take("gain_margin_db", float, DEFAULT_GAIN_MARGIN_DB, lambda v: v >= 0, "dB >= 0")
     pm = q.take("phase_margin_deg", float, DEFAULT_PHASE_MARGIN_DEG, lambda v: 0 <= v <= 180, "degrees 0..180")
     worst_rate = q.take("worstcase_success_rate", float, None, lambda v: 0 <= v < 1, "a fraction, 0 <= p < 1")
+    max_outside = q.take("max_outside_envelope", float, None, lambda v: 0 <= v <= 1,
+                         "a share of the simulated time, 0 to 1")
     margins_t = q.table_of("margins")
     quality_t = q.table_of("quality")
     q.finish()
@@ -374,9 +384,11 @@ def load_plan(path: str | Path, physics: Any, policy_env: str | None = None) -> 
         raise InputError(f"{path}: scenario.env: the plan is for {env}, the policy for {policy_env}")
     if worst_rate is None and "worstcase" in run:
         worst_rate = DEFAULT_WORSTCASE_SHARE * rate
+    if max_outside is None and getattr(physics, "residual", None) is not None:
+        max_outside = DEFAULT_MAX_OUTSIDE
     plan = Plan(path, env, dict(options), params, start, episodes, horizon, seed, tuple(vary),
                 tuple(dict.fromkeys(run)), budgets, rate, required_margins, gm, pm, lqr_q, lqr_r, text, quality,
-                worst_rate, calibrated)
+                worst_rate, calibrated, max_outside)
     check_plan_budget(plan, physics)
     return plan
 
@@ -586,7 +598,7 @@ def scenario_head(plan_path: str) -> tuple[str | None, dict[str, Any], dict[str,
         raise InputError(f"{plan_path}: scenario.options: expected a table")
     if not isinstance(start, dict):
         raise InputError(f"{plan_path}: scenario.start: expected a table of state name = half-range")
-    return env, options, start
+    return env, resolve_residual_path(options, Path(plan_path).parent), start
 
 
 def unit_to_value(v: Vary, u: np.ndarray) -> np.ndarray:

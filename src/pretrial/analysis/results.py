@@ -67,11 +67,22 @@ _RESULTS_KEYS: dict[str, tuple[Any, str]] = {
 }
 
 
+def stream_version(doc: dict[str, Any]) -> int:
+    """The noise-stream version a results document was made with (1 when it does not say: older files)."""
+    return int(doc.get("stream_version", 1))
+
+
 def _check_results_schema(p: Path, doc: dict[str, Any]) -> None:
     """Refuse a results document of another schema version, or missing a top-level key or of the wrong type."""
+    from pretrial.sim.streams import STREAM_VERSIONS
+
     version = doc.get("schema_version")
     if not _is_int(version) or version != SCHEMA_VERSION:
         raise InputError(f"{p}: schema_version {version!r} is not one this pretrial reads ({SCHEMA_VERSION})")
+    streams = doc.get("stream_version", 1)  # optional: files made before it was recorded used version 1
+    if not _is_int(streams) or streams not in STREAM_VERSIONS:
+        raise InputError(f"{p}: 'stream_version' {streams!r} is not one this pretrial knows "
+                         f"({', '.join(map(str, STREAM_VERSIONS))})")
     for key, (ok, what) in _RESULTS_KEYS.items():
         if key not in doc:
             raise InputError(f"{p}: not a complete sweep results file ('{key}' is missing)")

@@ -20,11 +20,13 @@ from typing import TYPE_CHECKING, Any
 
 from pretrial.analysis.plan import Plan, load_plan, scenario_head
 from pretrial.analysis.results import SCHEMA, SCHEMA_VERSION, SweepResults, seal, write_results
+from pretrial.analysis.trust import envelope_caution
 from pretrial.console import CAUTIONS, Progress
 from pretrial.errors import InputError
 from pretrial.files import check_new_dir, move_into_place, staged, write_json
 from pretrial.log import warn as log_warning
 from pretrial.provenance import versions
+from pretrial.sim.hybrid import check_trained_residual, residual_record
 from pretrial.sim.perturb import diverged_warning
 from pretrial.sim.plant import build_plant, check_workers_can_build, env_id_of
 from pretrial.version import __version__
@@ -34,6 +36,11 @@ if TYPE_CHECKING:
     from pretrial.analysis.samples import SampleHistograms
 
 LQR = "lqr"
+#: Version of the noise draws new sweeps make (:data:`pretrial.sim.streams.STREAM_VERSIONS`), recorded
+#: in results.json as ``stream_version`` (a file without it was made with version 1) and named by
+#: the replay commands when it is not 1. Version 2 waits for ``pretrial replay --stream-version``:
+#: until the command takes that option, a replay command naming it would not run.
+SWEEP_STREAM_VERSION = 1
 
 
 @dataclass
@@ -108,6 +115,8 @@ def controlled(policy_arg: str, plan_path: str | None, env: str | None = None, p
     except ValueError as exc:
         raise InputError(f"{plan_path}: scenario.params: {exc}") from None
     if policy is not None:
+        check_trained_residual(policy, physics, str(policy_arg),
+                               where if "residual" in plan_options else f"{policy_arg}: env.options")
         sizes = (physics.obs_dim, physics.action_dim)
         if sizes != (policy.io.obs_dim, policy.io.action_dim):
             raise InputError(f"{policy_arg}: takes {policy.io.obs_dim} observations and gives {policy.io.action_dim} "
@@ -137,7 +146,11 @@ def _results_skeleton(ctl: Controlled, plan: Plan, policy_arg: str) -> dict[str,
         "env": {"id": ctl.env_id, "options": ctl.env_options, "params": ctl.base_params},
         "plan": {"path": plan.path, "content_sha256": plan.content_hash(), "resolved": plan.to_dict()},
         "seed": plan.seed, "required_success_rate": plan.required_success_rate,
-        "episodes_per_point": plan.episodes,
+        "episodes_per_point": plan.episodes, "stream_version": SWEEP_STREAM_VERSION,
+        # the learned residual swept on, and the one the policy was trained on (None: physics alone)
+        "residual": None if ctl.physics.residual is None else {
+            **residual_record(ctl.physics),
+            "trained_on": (getattr(ctl.controller, "training", None) or {}).get("residual")},
     }
 
 
@@ -200,13 +213,14 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     try:
         check_workers_can_build(ctl.physics, executor)
         say(f"sweeping {policy_arg} on {ctl.env_id} with {plan.path} ({', '.join(plan.analyses)})")
-        camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick)
+        camp = Campaign(ctl.physics, ctl.controller, ctl.base_params, plan, executor, policy_arg, tick,
+                        SWEEP_STREAM_VERSION)
         part, samples = run_analyses(camp, say, stage / "montecarlo.csv" if stage else None, stage)
         results = _results_skeleton(ctl, plan, policy_arg) | part
         results["baseline"] = None
         if lqr is not None:
             say("baseline: the same plan on the LQR baseline")
-            base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick)
+            base_camp = Campaign(ctl.physics, lqr, ctl.base_params, plan, executor, LQR, tick, SWEEP_STREAM_VERSION)
             base_part, _ = run_analyses(base_camp, say, None, stage)
             results["baseline"] = {"kind": LQR, "controller": lqr.describe(), **base_part}
     finally:
@@ -221,6 +235,10 @@ def sweep(policy_arg: str, plan_path: str, executor: Any, *, baseline: bool = Fa
     trained = (getattr(ctl.controller, "training", None) or {}).get("plan") or {}
     if trained.get("content_sha256") == plan.content_hash():
         results["cautions"].insert(0, TRAINED_ON_PLAN)
+    for who, part in (("", results), ("LQR baseline", results.get("baseline") or {})):
+        extrapolated = envelope_caution(part.get("envelope"), who)
+        if extrapolated:
+            results["cautions"].insert(0 if not who else 1, extrapolated)
     return seal(results), samples
 
 

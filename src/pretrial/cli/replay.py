@@ -52,6 +52,11 @@ def print_summary(rep: Replay, out=None) -> None:
         mrows.append([name, m["unit"], _value(m["mean"]), _value(m["worst"], True) + never, m["worst_is"],
                       m["meaning"]])
     table(["metric", "unit", "mean", "worst", "worst is", "meaning"], mrows, out)
+    env = doc["envelope"]
+    if env is not None:  # a hybrid plant: how much of this replay the residual's data covered
+        print(f"\noutside the residual's data envelope: {env['share']:.1%} of the simulated time "
+              f"({env['episodes_outside']} of {rep.episodes} episodes; {env['residual']['path']}, "
+              f"margin {env['residual']['margin']:g}); there the learned correction is extrapolated", file=out)
     if rep.episodes > 1:
         print(file=out)
         erows = []
@@ -79,6 +84,8 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--episodes", type=limit_arg("REPLAY_EPISODES"), default=1,
                    help="episodes, run together (default 1)")
     p.add_argument("--seed", type=limit_arg("SEED"), default=0, help="scenario seed, as in sweep reports (default 0)")
+    p.add_argument("--stream-version", type=int, choices=(1, 2), default=1,
+                   help="version of the noise draws, as a sweep's replay command names it (default 1)")
     p.add_argument("--start", metavar="STATE",
                    help="exact start state: numbers in state order, or name=value pairs (others: start centre)")
     p.add_argument("--gif", metavar="FILE", help="animation of the first episode (GIF)")
@@ -89,6 +96,8 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--show", action="store_true", help="play the first episode in a window")
     p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     p.add_argument("--env", metavar="ID", help="environment (required for lqr; else must fit the policy)")
+    p.add_argument("--option", action="append", metavar="NAME=VALUE",
+                   help="env keyword option over the policy's own, e.g. residual=PATH (repeatable)")
     p.add_argument("--plan", metavar="PLAN.toml",
                    help="run under a sweep plan's scenario (env options, params, start ranges, horizon, LQR weights), "
                    "as its replay commands do")
@@ -127,7 +136,9 @@ def run(args: argparse.Namespace) -> int:
         animation.check_mp4()
     settings = parse_assignments(args.set, "--set")
     rep = replay(args.policy, env=args.env, plan=getattr(args, "plan", None), settings=settings,
-                 episodes=args.episodes, seed=args.seed, start=args.start)
+                 episodes=args.episodes, seed=args.seed, start=args.start,
+                 options=parse_assignments(getattr(args, "option", None), "--option"),
+                 stream_version=getattr(args, "stream_version", 1))
     trace, steps, params = rep.outcome.trace, rep.outcome.steps[0], rep.scenarios.params
     note = rep.setup.words() or "nominal"
     blew_up = rep.outcome.failure_counts().get("diverged", 0)

@@ -9,7 +9,7 @@ from typing import Any
 
 from pretrial.analysis.sweep import LQR, run_sweep
 from pretrial.cli.args import workers_arg
-from pretrial.console import emit_json, fmt_number, print_cautions, table
+from pretrial.console import CAUTIONS, emit_json, fmt_number, print_cautions, table
 
 #: exit status of ``pretrial sweep`` by verdict, so a pipeline can gate on it
 EXIT_PASS = 0
@@ -117,6 +117,12 @@ def print_results(results: dict[str, Any], out: Path) -> None:
         if bmc and mc:
             print(f"  Monte Carlo success: policy {_rate_text(mc['success_rate'], mc['samples'])}, "
                   f"LQR {_rate_text(bmc['success_rate'], bmc['samples'])}")
+    env = results.get("envelope")
+    if env:  # a hybrid plant: how much of the sweep its residual's data covered
+        print(f"\noutside the residual's data envelope: {env['share']:.1%} of the simulated time ({env['judged_on']})")
+    for caution in results.get("cautions") or []:
+        if caution not in CAUTIONS:  # this sweep's own (extrapolation, trained on the plan)
+            print(f"\ncaution: {caution}")
     print(f"\nsweep directory: {out}  (report.html, report.md, results.json)")
     print_cautions()
 

@@ -130,7 +130,11 @@ def _into(name: str, z: np.ndarray, out: np.ndarray | None) -> np.ndarray:
 def _tanh(z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     z *= 2.5
     # tanh is exactly -1.0 below -19.1, so only the upper clamp (which also maps NaN to 60) can matter
-    return _into("tanh", np.fmin(z, 60.0, out=z), out)
+    np.fmin(z, 60.0, z)
+    kernel = _KERNELS["tanh"]
+    if out is not None and kernel is np.tanh:  # the common case, spelled out: this runs once per level and step
+        return np.tanh(z, out)
+    return _into("tanh", z, out)
 
 
 def _sin(z: np.ndarray) -> np.ndarray:
@@ -857,7 +861,8 @@ class PopulationNetwork:
                                  len(activations) == 1 and activations[0][0] in _WRITES_INTO))
         self._levels = tuple(levels)
         self._values: np.ndarray | None = None
-        self._per_batch: tuple[tuple[np.ndarray, ...], ...] = ()
+        self._input_rows: np.ndarray | None = None
+        self._program: tuple[_Op, ...] = ()
 
     @classmethod
     def from_genomes(cls, genomes: Sequence[Any], neat_config: Any) -> PopulationNetwork:
@@ -879,10 +884,10 @@ class PopulationNetwork:
         if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 0:
             raise ValueError(f"batch_size: {batch_size!r} must be a whole number >= 0")
         b = int(batch_size)
-        self._values = np.zeros((self._n_rows, b))
-        # weights, responses and biases repeated over the batch: broadcasting a column costs more than the product
-        self._per_batch = tuple(tuple(np.repeat(a, b, axis=1) for a in (lv.weight, lv.response, lv.bias))
-                                for lv in self._levels)
+        self._values = values = np.zeros((self._n_rows, b))
+        g, n_in = self.num_genomes, self.num_inputs
+        self._input_rows = values[1 : 1 + g * n_in].reshape(g, n_in, b)  # a view: the rows are contiguous
+        self._program = _program(self._levels, values)
 
     def activate(self, inputs: np.ndarray) -> np.ndarray:
         """Advance every network one step.
@@ -905,38 +910,87 @@ class PopulationNetwork:
         if x.ndim != 3 or x.shape[0] != g or x.shape[2] != n_in:
             raise ValueError(f"inputs of shape {x.shape}: expected ({g}, B, {n_in}) or ({g} * B, {n_in})")
         b = x.shape[1]
-        if self._values is None or (self._values.shape[1] != b and not self.recurrent):
-            self.reset(b)
         values = self._values
-        assert values is not None
-        if values.shape[1] != b:
+        if values is None or (values.shape[1] != b and not self.recurrent):
+            self.reset(b)
+            values = self._values
+        elif values.shape[1] != b:
             raise ValueError(f"recurrent state holds {values.shape[1]} scenarios per network, inputs have {b}; "
                              f"call reset({b}) first")
-        np.copyto(values[1 : 1 + g * n_in].reshape(g, n_in, b), x.transpose(0, 2, 1))
+        np.copyto(self._input_rows, x.transpose(0, 2, 1))
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            for lv, (weight, response, bias) in zip(self._levels, self._per_batch, strict=True):
-                p = values.take(lv.source, axis=0)
-                p *= weight
-                if len(lv.blocks) == 1:
-                    reduce, _, n, slots, extra = lv.blocks[0]
-                    s = reduce(p, n, slots, extra)
-                else:
-                    s = np.empty((lv.slot_hi - lv.slot_lo, b))
-                    for reduce, lo, hi, slots, extra in lv.blocks:
-                        s[lo:hi] = reduce(p, hi - lo, slots, extra)
-                if not lv.unit_response:
-                    s *= response  # neat-python: act(bias + response * aggregate)
-                s += bias
-                out = values[lv.slot_lo : lv.slot_hi]
-                if lv.into:
-                    lv.activations[0][0](s, out)
-                elif len(lv.activations) == 1:
-                    out[...] = lv.activations[0][0](s)
-                else:
-                    for fn, idx in lv.activations:
-                        out[idx] = fn(s[idx])
-        y = values[self._output_rows].reshape(g, self.num_outputs, b)
+            for fn, args in self._program:
+                fn(*args)
+        y = values.take(self._output_rows, axis=0).reshape(g, self.num_outputs, b)
         return np.ascontiguousarray(y.transpose(0, 2, 1))
+
+
+def _reduce_blocks(blocks: tuple[tuple[Callable[..., np.ndarray], int, int, _Slots, Any], ...], p: np.ndarray,
+                   acc: np.ndarray) -> None:
+    """A level's aggregations into ``acc`` (one block per aggregation kind present)."""
+    for reduce, lo, hi, slots, extra in blocks:
+        acc[lo:hi] = reduce(p, hi - lo, slots, extra)
+
+
+def _activate_into(fn: Callable[[np.ndarray], np.ndarray], s: np.ndarray, out: np.ndarray) -> None:
+    out[...] = fn(s)
+
+
+def _activate_kinds(activations: tuple[tuple[Callable[[np.ndarray], np.ndarray], np.ndarray | None], ...],
+                    s: np.ndarray, out: np.ndarray) -> None:
+    for fn, idx in activations:
+        out[idx] = fn(s[idx])
+
+
+#: one step of evaluation: a function and its arguments (arrays allocated once per batch size)
+_Op = tuple[Callable[..., Any], tuple[Any, ...]]
+
+
+def _program(levels: Sequence[_Level], values: np.ndarray) -> tuple[_Op, ...]:
+    """The calls that advance every network one step, on buffers made here for ``values``' batch size.
+
+    Per level: gather the source rows into a scratch array, multiply by the weights, sum input
+    position by input position (left to right, as Python's ``sum``) in place, times the responses,
+    plus the biases, then the activation into the level's value rows. Every view and repeated
+    constant is made here once, so a step allocates nothing and each call is one numpy function.
+    """
+    b = values.shape[1]
+    ops: list[_Op] = []
+    for lv in levels:
+        n = lv.slot_hi - lv.slot_lo
+        source, weight, (reduce, _, _, slots, _) = lv.source, lv.weight, lv.blocks[0]
+        plain_sum = len(lv.blocks) == 1 and reduce is _reduce_sum
+        if plain_sum:
+            # Nodes without inputs (at the end of the block) get a first product 0.0 * 0.0 from row 0, the
+            # constant: the 0.0 an empty sum starts from. The sum then starts in place in the products.
+            first = slots[0][1] if slots else 0
+            if first < n:
+                source = np.concatenate([source[:first], np.zeros(n - first, dtype=np.int64), source[first:]])
+                weight = np.concatenate([weight[:first], np.zeros((n - first, 1)), weight[first:]])
+                slots = ((0, n), *((off + n - first, count) for off, count in slots[1:]))
+        p = np.empty((len(source), b))
+        if len(source):
+            ops.append((np.take, (values, source, 0, p, "clip")))  # "clip": no bounds-check copy
+            # weights, responses and biases repeated over the batch: broadcasting a column costs more
+            ops.append((np.multiply, (p, np.repeat(weight, b, axis=1), p)))
+        if plain_sum:
+            s = p[:n]
+            for off, count in slots[1:]:
+                ops.append((np.add, (s[:count], p[off : off + count], s[:count])))
+        else:
+            s = np.empty((n, b))
+            ops.append((_reduce_blocks, (lv.blocks, p, s)))
+        if not lv.unit_response:
+            ops.append((np.multiply, (s, np.repeat(lv.response, b, axis=1), s)))  # act(bias + response * agg)
+        ops.append((np.add, (s, np.repeat(lv.bias, b, axis=1), s)))
+        out = values[lv.slot_lo : lv.slot_hi]
+        if lv.into:
+            ops.append((lv.activations[0][0], (s, out)))
+        elif len(lv.activations) == 1:
+            ops.append((_activate_into, (lv.activations[0][0], s, out)))
+        else:
+            ops.append((_activate_kinds, (lv.activations, s, out)))
+    return tuple(ops)
 
 
 def stack_genomes(genomes: Sequence[Any], neat_config: Any) -> PopulationNetwork:

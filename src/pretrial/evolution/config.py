@@ -27,6 +27,7 @@ from typing import Any
 from pretrial.errors import InputError
 from pretrial.files import canonical_json, sha256_hex
 from pretrial.limits import EPISODES, GENERATIONS, HORIZON, NEAT, SEED, check_horizon, check_total
+from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.tomlfile import TableReader, channel_items, kind_name, read_toml
 
 NETWORK_LAYOUTS = ("whole", "shared")
@@ -164,7 +165,7 @@ def load_config(path: str | Path) -> Config:
     episodes = t.take("episodes", int, 8, limit=EPISODES)
     horizon = t.take("horizon", float, None, limit=HORIZON)
     network = t.take("network", str, "whole", lambda v: v in NETWORK_LAYOUTS, " or ".join(NETWORK_LAYOUTS))
-    env_options = t.table_of("options")
+    env_options = resolve_residual_path(t.table_of("options"), Path(path).parent)  # relative to the config
     params = t.table_of("params")
     randomize_t = t.table_of("randomize")
     ramp = t.take("randomize_ramp", int, 0, lambda v: 0 <= v <= 1_000_000,

@@ -10,7 +10,9 @@ reseeded. A run is a pure function of (config, seed):
 * Python's global ``random`` (which neat-python uses) is reseeded from
   ``SeedSequence(seed, spawn_key=(2, k))`` right before reproduction, so nothing
   an evaluation backend does to it can leak into the search;
-* genomes are cut into fixed chunks of :data:`CHUNK` whatever the worker count.
+* each genome's episodes are rows of their own (no row's arithmetic depends on another's), so
+  the results do not depend on how genomes are cut into work items; :func:`chunk_size` cuts
+  them into as few items as keep every worker busy (a test holds the bytes equal for any cut).
 
 The champion is picked by re-testing the best few genomes ever seen on fresh
 scenarios the run never trained on (``spawn_key=(3,)``).
@@ -69,8 +71,16 @@ from pretrial.sim.rollout import Scenarios
 from pretrial.tomlfile import dump_toml
 from pretrial.version import __version__
 
-#: genomes per work item: fixed, so results never depend on the number of workers
-CHUNK = 32
+#: rows (genomes x episodes) a work item holds at most: batches this large pay numpy's fixed cost
+#: per control step once for thousands of rows (benchmarks/evolution_throughput.py), and stay a
+#: few MB of state per worker
+MAX_CHUNK_ROWS = 16384
+
+
+def chunk_size(genomes: int, episodes: int, workers: int) -> int:
+    """Genomes per work item: one item per worker, no more than :data:`MAX_CHUNK_ROWS` rows each."""
+    per_worker = -(-genomes // max(1, workers))
+    return max(1, min(per_worker, MAX_CHUNK_ROWS // max(1, episodes)))
 
 
 # --------------------------------------------------------------------------- #
@@ -247,7 +257,8 @@ class Evolution:
     def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios, label: str | None = None
                  ) -> tuple[np.ndarray, np.ndarray]:
         specs = [spec_from_genome(g, self.neat_config) for g in genomes]
-        items = [(self.task, specs[i : i + CHUNK], scenarios) for i in range(0, len(specs), CHUNK)]
+        size = chunk_size(len(specs), len(scenarios), self.executor.describe()["workers"])
+        items = [(self.task, specs[i : i + size], scenarios) for i in range(0, len(specs), size)]
         parts = self.executor.map(evaluate_chunk, items)
         diverged = np.sum([p[2] for p in parts], axis=0)
         if diverged.any():
@@ -472,6 +483,8 @@ class Evolution:
                                 "linear_every": self.cfg.run.linear_every, "linear_top": self.cfg.run.linear_top}
             training["predicted_verdict"] = verdicts[i]
         physics = self.task.physics()
+        if physics.residual is not None:  # the learned residual trained on: replay and sweep check its hash
+            training["residual"] = {"path": physics.residual.source, "sha256": physics.residual.sha256}
         doc = policy_to_dict(champ, self.neat_config, env_id=self.task.env_id, env_options=physics.options(),
                              env_params=self._env_params(), io=self.task.io, training=training)
         save_policy(self.run_dir / "champion.json", doc)

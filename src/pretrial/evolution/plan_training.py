@@ -199,6 +199,7 @@ def short_verdict(plan, physics: Physics, base_params: Mapping[str, float], poli
     for key, sampled in (("linear", False), ("linear_sampled", True)):
         if key in plan.analyses:
             res[key], res["linear_details"]["sampled" if sampled else "continuous"] = linear_analysis(c, sampled)
+    res["envelope"] = c.envelope()  # a hybrid plant: the share of time outside its residual's data
     rows = [r for r in requirements(plan, res) if not r["name"].startswith("margin ")]
     # A short run cannot show a high rate at 95% confidence; predict the plan's own test instead: the
     # lower bound the sweep's sample count would give at the rate measured here.

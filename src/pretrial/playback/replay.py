@@ -13,7 +13,6 @@ episode's start state.
 
 from __future__ import annotations
 
-import shlex
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -23,10 +22,14 @@ import numpy as np
 from pretrial.console import CAUTIONS
 from pretrial.errors import InputError
 from pretrial.limits import RECORDED_STEPS, REPLAY_EPISODES, check_total
+from pretrial.playback.command import replay_command
+from pretrial.sim.envelope import describe_episode
+from pretrial.sim.hybrid import check_trained_residual, residual_record
 from pretrial.sim.perturb import Setup, apply_settings
 from pretrial.sim.plant import build_plant, env_id_of
 from pretrial.sim.quality import QualityLimits, quality_metrics
 from pretrial.sim.rollout import BatchPolicy, Outcome, Scenarios, draw_scenarios, run_episodes
+from pretrial.sim.streams import check_version
 from pretrial_envs.core import EpisodeMetric, Physics
 
 #: replay records every step of every episode; beyond this many, a sweep is the tool
@@ -73,6 +76,9 @@ class Replay:
     start_text: str | None = None
     files: dict[str, str] = field(default_factory=dict)
     plan: str | None = None
+    #: ``--option`` env options given over the policy's own
+    options: dict[str, Any] = field(default_factory=dict)
+    stream_version: int = 1
 
     @property
     def physics(self) -> Physics:
@@ -89,17 +95,9 @@ class Replay:
 
     def command(self, env: bool = True) -> str:
         """The command line that reproduces this replay (without file outputs)."""
-        words = ["pretrial", "replay", self.policy_label]
-        if self.plan:
-            words += ["--plan", self.plan]
-        if env:
-            words += ["--env", self.env_id]
-        for k, v in self.setup.settings.items():
-            words += ["--set", f"{k}={v!r}"]
-        words += ["--episodes", str(self.episodes), "--seed", str(self.seed)]
-        if self.start_text is not None:
-            words += ["--start", self.start_text]
-        return shlex.join(words)
+        return replay_command(self.policy_label, plan=self.plan, env=self.env_id if env else None,
+                              options=self.options, settings=self.setup.settings, seed=self.seed,
+                              episodes=self.episodes, start=self.start_text, stream_version=self.stream_version)
 
 
 # --------------------------------------------------------------------------- #
@@ -134,32 +132,38 @@ def lqr_policy(setup: Setup) -> BatchPolicy:
         raise InputError(f"lqr: {exc}") from None
 
 
-def prepare(policy_arg: str, env: str | None, settings: dict[str, Any], policy: Any = None
-            ) -> tuple[BatchPolicy, Setup, str, str | None]:
-    """Controller, plant setup, env id and policy hash for a POLICY argument and ``--env``/``--set``.
+def prepare(policy_arg: str, env: str | None, settings: dict[str, Any], policy: Any = None,
+            options: dict[str, Any] | None = None) -> tuple[BatchPolicy, Setup, str, str | None]:
+    """Controller, plant setup, env id and policy hash for a POLICY argument and ``--env``/``--set``/``--option``.
 
     Raises
     ------
     InputError
         ``lqr`` without ``--env``; a policy that does not fit the named env
-        (naming both); an unknown setting or value; an unreadable policy.
+        (naming both); an unknown setting or value; an unreadable policy; an env option the plant
+        refuses; a residual other than the one the policy was trained on.
 
-    ``policy``, when given, is the loaded policy (``policy_arg`` then only labels it).
+    ``policy``, when given, is the loaded policy (``policy_arg`` then only labels it). ``options`` are env
+    keyword options (``--option``) over the policy's own.
     """
+    options = dict(options or {})
     if policy_arg == LQR:
         if env is None:
             raise InputError("lqr: name the environment with --env (e.g. --env CartPole-v0)")
         env_id = env_id_of(env)
-        setup = check_settings(build_plant(env_id), {}, settings)
+        setup = check_settings(build_plant(env_id, options, "--option" if options else None), {}, settings)
         return lqr_policy(setup), setup, env_id, None
     from pretrial.controller.policy import open_policy
 
     policy = open_policy(policy_arg) if policy is None else policy
     env_id = policy.env_id if env is None else env_id_of(env)
+    where = "--option" if options else f"{policy_arg}: env.options"
     if env_id == policy.env_id:
-        physics, base = build_plant(env_id, dict(policy.env_options)), dict(policy.env_params)
+        physics = build_plant(env_id, {**policy.env_options, **options}, where)
+        base = dict(policy.env_params)
+        check_trained_residual(policy, physics, policy_arg, where)
     else:
-        physics, base = build_plant(env_id), {}
+        physics, base = build_plant(env_id, options, "--option" if options else None), {}
         sizes = (physics.obs_dim, physics.action_dim)
         if sizes != (policy.io.obs_dim, policy.io.action_dim):
             raise InputError(
@@ -209,7 +213,8 @@ def _number(item: str, text: str, valid: str) -> float:
 
 def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: int = 0, start: str | None = None,
                policy_label: str = "", env_id: str = "", policy_hash: str | None = None,
-               max_steps: int | None = None, quality: QualityLimits | None = None) -> Replay:
+               max_steps: int | None = None, quality: QualityLimits | None = None,
+               stream_version: int = 1) -> Replay:
     """Run and measure ``episodes`` recorded episodes of seed ``seed`` (all in one batch).
 
     Parameters
@@ -227,9 +232,13 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     quality : QualityLimits, optional
         Loop-quality limits an episode must also meet to succeed (a plan's, or
         the defaults); None judges survival only.
+    stream_version : int
+        Version of the noise draws (:data:`pretrial.sim.streams.STREAM_VERSIONS`): the one the
+        replayed result was made with (1 for results that do not record one).
     """
     try:
         episodes = REPLAY_EPISODES.check(episodes, "--episodes")
+        stream_version = check_version(stream_version)
         periods = setup.physics.max_steps if max_steps is None else int(max_steps)
         check_total("replay", [(episodes, "episodes"), (periods, "control periods")], RECORDED_STEPS)
     except ValueError as exc:
@@ -240,7 +249,8 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
     if start is not None:
         scenarios.start = parse_start(start, physics, scenarios.params)
         start_state = scenarios.start[0].tolist()
-    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality)
+    outcome = run_episodes(physics, policy, scenarios, max_steps=max_steps, record=True, quality=quality,
+                           stream_version=stream_version)
     trace = outcome.trace
     metrics = physics.episode_metrics(trace["state"], trace["action"], scenarios.params, outcome.steps[0])
     if outcome.quality is not None:
@@ -251,7 +261,7 @@ def run_replay(policy: BatchPolicy, setup: Setup, *, episodes: int = 1, seed: in
 
 def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: str | Path | None = None,
            settings: dict[str, Any] | None = None, episodes: int = 1, seed: int = 0,
-           start: str | None = None) -> Replay:
+           start: str | None = None, options: dict[str, Any] | None = None, stream_version: int = 1) -> Replay:
     """Replay a controller: ``episodes`` recorded episodes of seed ``seed`` under named settings.
 
     Parameters
@@ -270,6 +280,11 @@ def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: st
         The same episodes a sweep draws for that seed.
     start : str, optional
         An exact start state (numbers in state order, or ``name=value`` pairs).
+    options : dict, optional
+        Env keyword options (``--option``, e.g. ``residual``) over the policy's own; not with ``plan``
+        (a plan's ``[scenario.options]`` set them).
+    stream_version : int
+        Version of the noise draws; a sweep's replay commands name it when it is not 1.
 
     Returns
     -------
@@ -284,6 +299,8 @@ def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: st
     if plan is not None:
         from pretrial.analysis.sweep import controlled
 
+        if options:
+            raise InputError(f"--option: not with --plan (set env options in {plan}'s [scenario.options])")
         ctl = controlled(str(policy) if loaded is None else label, str(plan), env, policy=loaded)
         controller, env_id, digest = ctl.controller, ctl.env_id, ctl.policy_hash
         setup = check_settings(ctl.physics, ctl.base_params, settings)
@@ -293,16 +310,31 @@ def replay(policy: str | Path | BatchPolicy, *, env: str | None = None, plan: st
                 max_steps = max(1, round(ctl.plan.horizon / setup.physics.dt))
     else:
         controller, setup, env_id, digest = prepare(str(policy) if loaded is None else label, env, settings,
-                                                    policy=loaded)
+                                                    policy=loaded, options=options)
     rep = run_replay(controller, setup, episodes=episodes, seed=seed, start=start, policy_label=label, env_id=env_id,
-                     policy_hash=digest, max_steps=max_steps, quality=quality)
+                     policy_hash=digest, max_steps=max_steps, quality=quality, stream_version=stream_version)
     rep.plan = None if plan is None else str(plan)
+    rep.options = dict(options or {})
+    rep.stream_version = stream_version
     return rep
 
 
 # --------------------------------------------------------------------------- #
 # summary
 # --------------------------------------------------------------------------- #
+def envelope_summary(rep: Replay) -> dict[str, Any] | None:
+    """A hybrid plant's trust region over the replay: its residual, the share of the simulated time outside the
+    data it was fitted on, and per episode the share, first time and first variable out (None: no residual)."""
+    env = rep.outcome.envelope
+    if env is None:
+        return None
+    episodes = [describe_episode(rep.physics, env, e) for e in range(rep.episodes)]
+    steps = rep.outcome.steps[0]
+    return {"residual": residual_record(rep.physics),
+            "share": float(env["outside_steps"][0].sum() / max(int(steps.sum()), 1)),
+            "episodes_outside": int((env["outside_steps"][0] > 0).sum()), "episodes": episodes}
+
+
 def metric_summary(metric: EpisodeMetric) -> dict[str, Any]:
     """Mean over the finite values, the worst value, min, max, and the count of infinite ones ("never")."""
     v = np.asarray(metric.values, dtype=float)
@@ -358,6 +390,7 @@ def summary(rep: Replay) -> dict[str, Any]:
         "steps": out.steps[0].tolist(),
         "duration_s": (out.steps[0] * physics.dt).tolist(),
         "metrics": {name: metric_summary(m) for name, m in rep.metrics.items()},
+        "envelope": envelope_summary(rep),
         "command": rep.command(),
         "files": dict(rep.files),
         "cautions": list(CAUTIONS),

@@ -154,6 +154,9 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
         items.append(f"calibrated plant: {', '.join(cal['names'])} at their estimates from {cal['path']} "
                      f"(sha256 {cal['content_sha256'][:16]}…) in every analysis; Monte Carlo draws them jointly "
                      f"from its {cal['replicates']} bootstrap replicates, so their correlations are kept")
+    res = results.get("residual")
+    if res:
+        items.append(_residual_line(res))
     if results.get("content_sha256"):
         items.append(f"results content sha256 {results['content_sha256']}")
     from pretrial.sim.perturb import simulation_notes  # how each varied perturbation was simulated (roundings stated
@@ -161,6 +164,32 @@ def _setup(results: Mapping[str, Any]) -> list[Block]:
     varied = [v.get("name") for v in ((plan.get("resolved") or {}).get("vary") or [])]
     items += [f"simulated: {note}" for note in simulation_notes(varied)]
     return [Heading(2, "What was tested"), Items(items)]
+
+
+def _residual_line(res: Mapping[str, Any]) -> str:
+    """The hybrid plant: which residual it was swept on, and which one the policy was trained on."""
+    line = (f"hybrid plant: the physics plus the learned residual {res.get('path')} (sha256 {res.get('sha256')}); "
+            f"its trust region is the fitted data's range of each state and action widened by "
+            f"{num(res.get('margin'))} of its span")
+    trained = res.get("trained_on")
+    if trained:
+        line += f"; the policy was trained on {trained.get('path')} (sha256 {trained.get('sha256')})"
+    return line
+
+
+def _envelope(env: Mapping[str, Any] | None, who: str = "") -> list[Block]:
+    """Per analysis, the share of the simulated time outside the residual's data."""
+    if not env:
+        return []
+    rows = [[name, cell(c.get("episodes")), rate(c.get("share")), cell(c.get("episodes_outside")),
+             rate(c.get("max_episode_share")), ", ".join(list(c.get("first_variables") or {})[:3]) or DASH]
+            for name, c in [*(env.get("analyses") or {}).items(), ("all", env.get("all") or {})]]
+    judged = "the Monte Carlo" if env.get("judged_on") == "montecarlo" else "every episode of the sweep"
+    return [Heading(2, f"Trust region of the hybrid plant{who}"),
+            Para(f"Share of the simulated time (control steps) that started outside the data the residual was "
+                 f"fitted on; the requirement is judged on {judged}: {rate(env.get('share'))}. Outside it the "
+                 "learned correction is extrapolated, and results there rest on a guess."),
+            Table(["analysis", "episodes", "time outside", "episodes outside", "worst episode", "first out"], rows)]
 
 
 def _quality_line(q: Mapping[str, Any]) -> str:
@@ -565,6 +594,8 @@ def build_document(results: Mapping[str, Any], images: Mapping[str, str] | None 
         *_linear(results, images),
         *_integrator(results.get("integrator_check")),
         *_diverged(results.get("diverged")),
+        *_envelope(results.get("envelope")),
+        *_envelope((results.get("baseline") or {}).get("envelope"), " (LQR baseline)"),
         *_baseline(results),
         *_reproduce(results, units),
         Heading(2, "Cautions"), Items(cautions),

@@ -1,0 +1,74 @@
+"""Per-generation wall time of ``pretrial evolve`` for every shipped config, against an earlier checkout.
+
+Run: ``python benchmarks/evolve_configs.py --baseline-src DIR [--generations N] [--rounds R] [--workers W]``
+
+``DIR`` is an earlier checkout of this repository (e.g. ``git worktree add /tmp/base 4637a5e``).
+For each config in ``configs/`` both versions run the same command,
+``python -m pretrial evolve CONFIG --generations N --workers W --quiet``, in subprocesses that
+alternate (baseline, this tree, baseline, ...) so that a busy machine slows both alike; the
+figure is the median over ``R`` rounds of the seconds per generation (the run's own
+``timing.csv``, so start-up and the champion's re-test are left out). Both versions are
+checked to write the same ``history.csv`` (results must not change with speed work) unless a
+stream version was deliberately bumped, which the row then says.
+
+Prints one row per config: baseline and current s/generation, their ratio, and whether the
+histories agree; the last line is ``median ratio: R`` over the configs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = ("cartpole", "gantry", "double-pole", "double-pole-positions", "drone-pair", "drone-pair-wide")
+
+
+def _run(src: Path, config: Path, out: Path, generations: int, workers: int) -> tuple[float, bytes]:
+    env = dict(os.environ, PYTHONPATH=f"{src / 'src'}{os.pathsep}{src / 'envs'}", MPLBACKEND="Agg")
+    cmd = [sys.executable, "-m", "pretrial", "evolve", str(config), "--generations", str(generations),
+           "--workers", str(workers), "--out", str(out), "--quiet"]
+    done = subprocess.run(cmd, env=env, capture_output=True, text=True)
+    if done.returncode != 0:
+        raise SystemExit(f"{src}: {' '.join(cmd)} failed:\n{done.stderr}")
+    with open(out / "timing.csv", newline="") as f:
+        seconds = [float(r["seconds"]) for r in csv.DictReader(f)]
+    return statistics.median(seconds), (out / "history.csv").read_bytes()
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--baseline-src", required=True, type=Path, help="an earlier checkout of this repository")
+    ap.add_argument("--generations", type=int, default=3)
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--configs", nargs="*", default=list(CONFIGS))
+    args = ap.parse_args()
+    ratios = []
+    print(f"{'config':24s} {'baseline s/gen':>14s} {'current s/gen':>14s} {'ratio':>6s}  history")
+    with tempfile.TemporaryDirectory() as tmp:
+        for name in args.configs:
+            config = ROOT / "configs" / f"{name}.toml"
+            base, cur = [], []
+            same = True
+            for r in range(args.rounds):
+                b, hb = _run(args.baseline_src, config, Path(tmp) / f"{name}-b{r}", args.generations, args.workers)
+                c, hc = _run(ROOT, config, Path(tmp) / f"{name}-c{r}", args.generations, args.workers)
+                base.append(b)
+                cur.append(c)
+                same = same and hb == hc
+            ratio = statistics.median(base) / statistics.median(cur)
+            ratios.append(ratio)
+            print(f"{name:24s} {statistics.median(base):14.3f} {statistics.median(cur):14.3f} {ratio:6.2f}  "
+                  f"{'same' if same else 'DIFFERS'}", flush=True)
+    print(f"median ratio: {statistics.median(ratios):.2f}")
+
+
+if __name__ == "__main__":
+    main()
