@@ -3,7 +3,8 @@
 Run: ``python benchmarks/evolve_configs.py --baseline-src DIR [--generations N] [--rounds R] [--workers W]``
 
 ``DIR`` is an earlier checkout of this repository (e.g. ``git worktree add /tmp/base 4637a5e``).
-For each config in ``configs/`` both versions run the same command,
+For each config both versions run the same command on the baseline's copy of the config (the
+config as it was then, so the work per generation is the same),
 ``python -m pretrial evolve CONFIG --generations N --workers W --quiet``, in subprocesses that
 alternate (baseline, this tree, baseline, ...) so that a busy machine slows both alike; the
 figure is the median over ``R`` rounds of the seconds per generation (the run's own
@@ -54,7 +55,10 @@ def main() -> None:
     print(f"{'config':24s} {'baseline s/gen':>14s} {'current s/gen':>14s} {'ratio':>6s}  history")
     with tempfile.TemporaryDirectory() as tmp:
         for name in args.configs:
-            config = ROOT / "configs" / f"{name}.toml"
+            config = args.baseline_src / "configs" / f"{name}.toml"
+            if not config.is_file():
+                print(f"{name:24s} (not in the baseline)")
+                continue
             base, cur = [], []
             same = True
             for r in range(args.rounds):

@@ -410,14 +410,16 @@ def test_ctrl_c_stops_a_sweep_and_leaves_no_directory(executor, tmp_path):
 
 @pytest.mark.parametrize("stop", [KeyboardInterrupt, PretrialError("disk full (simulated)")])
 def test_a_sweep_stopped_while_writing_leaves_no_directory(stop, tmp_path, monkeypatch):
+    from pretrial.analysis.results import seal
     from pretrial.report import sweep_report as report
+
     def write_report(*args, **kwargs):
         raise stop
 
     monkeypatch.setattr(report, "write_report", write_report)
     out = tmp_path / "D"
     with pytest.raises(stop if isinstance(stop, type) else type(stop)):
-        sweep_run.write_outputs(out, {"schema": "test"}, None, {"pretrial": "test"})
+        sweep_run.write_outputs(out, seal({"schema": "test"}), None, {"pretrial": "test"})
     assert list(tmp_path.iterdir()) == []
 
 
