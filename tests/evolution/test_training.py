@@ -194,6 +194,23 @@ def test_evolve_against_a_plan_records_the_predicted_verdict(tmp_path, capsys):
     assert res["cautions"][0].startswith("This controller was trained against this plan's distribution")
 
 
+def test_next_steps_name_the_plan_trained_against(tmp_path, capsys):
+    from pretrial.cli.main import main
+
+    full = (ROOT / "configs" / "sweeps" / "cartpole.toml").read_text(encoding="utf-8")
+    plan = tmp_path / "mine.toml"
+    plan.write_text(full.split("[analysis]")[0] + '[analysis]\nrun = ["montecarlo"]\nmontecarlo_samples = 16\n',
+                    encoding="utf-8")
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[task]\nenv = "pretrial/CartPole-v0"\nepisodes = 2\nplan = "mine.toml"\n[neat]\npop_size = 8\n'
+                   "[run]\ngenerations = 1\nfinalists = 1\nvalidation_episodes = 2\nverdict_samples = 16\n"
+                   "workers = 1\n", encoding="utf-8")
+    assert main(["evolve", str(cfg), "--out", str(tmp_path / "run"), "--quiet"]) == 0
+    nxt = capsys.readouterr().out.split("next:")[1]
+    sweep_line = next(line for line in nxt.splitlines() if "pretrial sweep" in line)
+    assert f"--plan {plan}" in sweep_line  # not the placeholder, nor a plan guessed from the config's name
+
+
 @pytest.mark.parametrize(("text", "needle"), [
     ('plan = "nope.toml"', "task.plan"),
     ('objective = "median"', "task.objective"),

@@ -80,8 +80,11 @@ def run(args: argparse.Namespace) -> int:
             mark = {True: "yes", False: "NO"}.get(r["pass"], "n/a")
             print(f"  {mark:3s}  {r['name']}: {fmt_number(r['measured'])} (required {fmt_number(r['required'])})")
         print(f"confirm with:  {summary['confirm']}")
-    plan = plan_beside(cfg.path, cfg.name)
-    shown = Path(cfg.path).parent / "sweeps" / plan.name if plan else "PLAN.toml"
+    if cfg.task.plan:  # the plan trained against is the one to sweep with
+        shown: Path | str = cfg.task.plan
+    else:
+        plan = plan_beside(cfg.path, cfg.name)
+        shown = Path(cfg.path).parent / "sweeps" / plan.name if plan else "PLAN.toml"
     print("next:")
     print(f"  pretrial replay {run_dir} --gif {run_dir}/replay.gif")
     print(f"  pretrial sweep {run_dir} --plan {shown} --baseline lqr")
