@@ -304,7 +304,7 @@ class CartPolePhysics(Physics):
         # Florian 2007: solve assuming N_c > 0, then solve again where N_c came out negative
         # (only friction depends on that sign).
         negative = normal < 0.0
-        if negative.any():
+        if np.count_nonzero(negative):
             normal = solve(np.where(negative, -slip, slip))
         return out, normal
 

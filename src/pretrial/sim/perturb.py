@@ -586,14 +586,17 @@ class Loop:
             return out
         return np.where(self._sensor_rows, out, obs)
 
-    def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
+    def actuate(self, command: np.ndarray, step: int, clipped: bool = False) -> np.ndarray:
         """Normalized command in [-1, 1] applied to the plant at ``step`` for the policy's ``command``.
 
         The plant sees it from ``switch`` of the period on, the previous period's
         before; both, and the gain on the physical output, are in :meth:`plant_inputs`.
+        ``clipped``: ``command`` is already within [-1, 1] and is this step's own array
+        (the loop may keep it), so the clip, which would change nothing, is skipped.
         """
-        command = np.maximum(command, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
-        np.minimum(command, 1.0, out=command)
+        if not clipped:
+            command = np.maximum(command, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
+            np.minimum(command, 1.0, out=command)
         if self._act_buf is not None:
             depth = self._act_buf.shape[0]
             self._act_buf[step % depth] = command
