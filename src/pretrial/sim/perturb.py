@@ -121,6 +121,11 @@ WHOLE_PERIOD_TOL = 1e-9
 #: the control period as a varied name: the plant is rebuilt with this ``dt`` (not a per-row value)
 CONTROL_PERIOD = "control_period_s"
 
+#: the :class:`Loop`'s per-row settings and masks (what :meth:`Loop.take` keeps for the rows it keeps)
+_SETTING_ARRAYS = ("gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum", "act_delay",
+                   "act_frac", "obs_delay", "obs_frac", "start_scale", "residual_scale", "_sensor_rows",
+                   "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows")
+
 #: counter offsets so the streams of one scenario never overlap
 _SENSOR_STREAM, _PLANT_STREAM = 0, 1
 _STREAMS = 2
@@ -546,6 +551,11 @@ class Loop:
         self._any_slew, self._all_slew = bool(self._slew_rows.any()), bool(self._slew_rows.all())
         self._any_lag, self._all_lag = bool(self._lag_rows.any()), bool(self._lag_rows.all())
         self._any_act_shape = self._any_dead or self._any_slew or self._any_lag
+        # nothing acts on any row: the loop passes observations and commands through
+        self._nominal = not (self._any_sensor or self._any_jitter or self._any_obs_frac or self._any_switch
+                             or self._any_gain or self._any_residual or self._any_act_shape
+                             or np.count_nonzero(self.obs_delay) or np.count_nonzero(self.act_delay)
+                             or np.count_nonzero(self.start_scale != 1.0))
 
     def reset(self, obs0: np.ndarray) -> None:
         """Start of an episode: delay lines hold the first observation and zero commands."""
@@ -655,10 +665,15 @@ class Loop:
 
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
-        for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
-                     "act_delay", "act_frac", "obs_delay", "obs_frac", "start_scale", "residual_scale", "_applied",
-                     "_sensor_rows", "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac",
-                     "_jitter_rows"):
+        if self._nominal:
+            # every per-row setting is its nominal: any n of them are as good as the rows' own, and the
+            # flags stay as they are (the rollout drops rows often; indexing them all would cost more)
+            n = len(rows)
+            for name in _SETTING_ARRAYS:
+                setattr(self, name, getattr(self, name)[:n])
+            self.keys, self._applied, self.n, self._rows = self.keys[rows], self._applied[rows], n, np.arange(n)
+            return
+        for name in ("keys", "_applied", *_SETTING_ARRAYS):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]
