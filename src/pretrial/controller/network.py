@@ -917,11 +917,20 @@ class PopulationNetwork:
         elif values.shape[1] != b:
             raise ValueError(f"recurrent state holds {values.shape[1]} scenarios per network, inputs have {b}; "
                              f"call reset({b}) first")
+        return self.advance(x)
+
+    def advance(self, x: np.ndarray) -> np.ndarray:
+        """:meth:`activate` without its checks, for a caller that steps every call (a rollout).
+
+        ``x`` must be a float array of shape (G, B, n_in) with B the batch size of the current
+        state (after :meth:`reset` or a first :meth:`activate`).
+        """
         np.copyto(self._input_rows, x.transpose(0, 2, 1))
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             for fn, args in self._program:
                 fn(*args)
-        y = values.take(self._output_rows, axis=0).reshape(g, self.num_outputs, b)
+        g, b = x.shape[0], x.shape[1]
+        y = self._values.take(self._output_rows, axis=0).reshape(g, self.num_outputs, b)
         return np.ascontiguousarray(y.transpose(0, 2, 1))
 
 
