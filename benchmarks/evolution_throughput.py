@@ -19,8 +19,11 @@ carry a hidden node or more), each on the same number of episodes of at most
 Random genomes mostly fail within a few dozen steps, so the figure of merit is
 useful env-steps per second: steps actually simulated while the episode was
 alive (a: ``env.step`` calls; b: the sum of ``Outcome.steps``). pretrial also
-steps rows that have already ended until the last one ends; its rate of
-computed row-steps is printed too. Each timing covers the whole evaluation
+steps some rows that have already ended: it drops them from the plant's batch in
+groups (``rollout.DROP_ROWS`` rows or a quarter of the batch at once), and
+whole genomes from the networks once most genomes have no row left; the row-steps
+the plant computed are counted in one more, untimed run and printed with their
+rate. Each timing covers the whole evaluation
 (compiling the networks, making the environments, drawing start states). If (a)
 would take longer than ``--hand-seconds``, it stops after a whole genome once
 that budget is spent (genomes taken in a seeded random order), and the
@@ -135,6 +138,25 @@ def with_pretrial(genomes: list[Any], config: neat.Config, physics: CartPolePhys
     return outcome, time.perf_counter() - t0
 
 
+def plant_row_steps(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, episodes: int, seed: int,
+                    base_params: dict[str, float] | None) -> int:
+    """Row-steps the plant computed in one (untimed) run of (b): the rows of every ``transition`` call."""
+    count = 0
+    transition = physics.transition
+
+    def counted(state: np.ndarray, *args: Any, **kwargs: Any) -> Any:
+        nonlocal count
+        count += len(state)
+        return transition(state, *args, **kwargs)
+
+    physics.transition = counted  # an instance attribute over the method, removed below
+    try:
+        with_pretrial(genomes, config, physics, episodes, seed, base_params)
+    finally:
+        del physics.transition
+    return count
+
+
 def per_step_costs(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, seed: int,
                    steps: int = 40, scenarios: tuple[int, int] = (1, 16)) -> tuple[float, float]:
     """(b)'s time per control step split into a fixed part and a part per row: (seconds, seconds per row).
@@ -172,7 +194,7 @@ def compare(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, b
     outcome = runs[0][0]
     t_b = statistics.median(t for _, t in runs)
     useful_b = int(outcome.steps.sum())
-    computed_b = outcome.steps.size * int(outcome.steps.max())  # every row is stepped until the last one ends
+    computed_b = plant_row_steps(genomes, config, physics, episodes, seed, base) if detail else 0
     steps_a, t_a, setup_a, done_a = hand
     rate_a = steps_a / t_a
     rate_b = useful_b / t_b

@@ -27,8 +27,9 @@ to 1 before numpy loads):
 
 The figure of merit is useful env-steps per second: steps simulated while an
 episode was alive ((a): ``env.step`` calls; (b): the sum of ``Outcome.steps``).
-Rows that fail early keep (b) stepping until the last row ends, so the edge of
-the sweep (about 16 % of rows fail) costs it work the count does not credit.
+Rows that fail early leave (b)'s batch in groups (``rollout.DROP_ROWS`` rows or a
+quarter of the batch at once), so until their group goes the edge of the sweep
+(about 16 % of rows fail) costs it some work the count does not credit.
 
 Prints ``steps/s:`` (pretrial, useful env-steps per second; target >= 2,000,000)
 and last ``ratio: N`` ((b) over (a) in useful env-steps per second; target >= 30).

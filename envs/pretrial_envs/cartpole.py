@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from typing import Any, ClassVar
+from typing import Any, ClassVar, NamedTuple
 
 import numpy as np
 
@@ -127,6 +127,23 @@ _OBS_SCALE = {
 }
 
 
+class _OnePole(NamedTuple):
+    """One batch's one-pole parameter columns and the values derived from them alone."""
+
+    total: Array  # M + m
+    ml: Array  # m l
+    total_g: Array  # (M + m) g
+    friction: bool  # any cart friction
+    pivot_friction: bool  # any pivot friction
+    gravity: Array
+    pole_mass: Array
+    half_length: Array
+    friction_speed: Array
+    cart_friction: Array
+    pole_friction: Array
+    four_thirds: Array  # 4 / 3 in every row
+
+
 class CartPolePhysics(Physics):
     """Cart-pole physics core: one pole (Florian 2007) or two poles (Wieland 1991).
 
@@ -196,20 +213,24 @@ class CartPolePhysics(Physics):
         """
         return {"x": ("m", 0.1), **{n: ("rad", 0.05) for n in self.state_names[2::2]}}
 
-    def _one_pole_constants(self, params: Array) -> tuple[Array, Array, Array, bool, bool]:
-        """``(M + m, m l, (M + m) g, any cart friction, any pivot friction)`` for ``params`` (N, P).
+    def _one_pole_constants(self, params: Array) -> _OnePole:
+        """The parameter columns and the values derived from them alone, for ``params`` (N, P).
 
-        Formed once per batch (:meth:`~pretrial_envs.core.Physics.batch_constants`).
+        Formed once per batch (:meth:`~pretrial_envs.core.Physics.batch_constants`): a derivative
+        evaluation then indexes nothing (RK4 with two substeps evaluates eight per control step).
         """
+        return self.batch_constants(params, self._build_one_pole)
+
+    def _build_one_pole(self, params: Array) -> _OnePole:
         c = self._col
-
-        def build(params: Array) -> tuple[Array, Array, Array, bool, bool]:
-            m = params[:, c["pole_mass"]]
-            total = params[:, c["cart_mass"]] + m
-            return (total, m * params[:, c["pole_half_length"]], total * params[:, c["gravity"]],
-                    bool(params[:, c["cart_friction"]].any()), bool(params[:, c["pole_friction"]].any()))
-
-        return self.batch_constants(params, build)
+        col = {name: params[:, c[name]] for name in ("gravity", "pole_mass", "pole_half_length", "friction_speed",
+                                                     "cart_friction", "pole_friction")}
+        m = col["pole_mass"]
+        total = params[:, c["cart_mass"]] + m
+        return _OnePole(total, m * col["pole_half_length"], total * col["gravity"],
+                        bool(np.count_nonzero(col["cart_friction"])), bool(np.count_nonzero(col["pole_friction"])),
+                        col["gravity"], m, col["pole_half_length"], col["friction_speed"], col["cart_friction"],
+                        col["pole_friction"], np.full(len(m), 4.0 / 3.0))
 
     def options(self) -> dict[str, Any]:
         return {"poles": self.poles, "observe": self.observe_mode, **super().options()}
@@ -229,13 +250,11 @@ class CartPolePhysics(Physics):
     def _one_pole(self, state: Array, force: Array, params: Array, need_normal: bool = True) -> tuple[Array, Array]:
         # In-place arithmetic into a few buffers: at N = 10,000 every fresh temporary costs about
         # as much as the arithmetic itself (allocation and page faults), so the peak is kept small.
-        c = self._col
-        g = params[:, c["gravity"]]
-        m = params[:, c["pole_mass"]]
-        half = params[:, c["pole_half_length"]]
+        k = self._one_pole_constants(params)
+        g, m, half, total, ml, total_g = k.gravity, k.pole_mass, k.half_length, k.total, k.ml, k.total_g
+        friction, pivot_friction = k.friction, k.pivot_friction
         x_dot = state[:, 1]
         w = state[:, 3]
-        total, ml, total_g, friction, pivot_friction = self._one_pole_constants(params)
         sin = np.sin(state[:, 2])
         cos = np.cos(state[:, 2])
         mlw2 = w * w
@@ -243,13 +262,13 @@ class CartPolePhysics(Physics):
         # mu_c * smoothed sgn(x_dot); the sign of N_c multiplies it below.
         slip = None
         if friction:  # a frictionless track skips the tanh (the largest single cost at large N)
-            slip = np.divide(x_dot, params[:, c["friction_speed"]])
+            slip = np.divide(x_dot, k.friction_speed)
             np.tanh(slip, out=slip)
-            slip *= params[:, c["cart_friction"]]
+            slip *= k.cart_friction
         # g sin(theta) - mu_p theta_dot / (m l): gravity and pivot friction on the pole.
         g_sin = g * sin
         if pivot_friction:
-            pivot = params[:, c["pole_friction"]] * w
+            pivot = k.pole_friction * w
             pivot /= ml
             g_sin -= pivot
             del pivot
@@ -277,7 +296,7 @@ class CartPolePhysics(Physics):
             den = cos * lever
             den *= m
             den /= total
-            np.subtract(4.0 / 3.0, den, out=den)
+            np.subtract(k.four_thirds, den, out=den)  # 4 / 3 as an array: cheaper than a Python float
             den *= half
             th_acc = cos * temp
             np.subtract(g_sin, th_acc, out=th_acc)
@@ -304,7 +323,7 @@ class CartPolePhysics(Physics):
         # Florian 2007: solve assuming N_c > 0, then solve again where N_c came out negative
         # (only friction depends on that sign).
         negative = normal < 0.0
-        if negative.any():
+        if np.count_nonzero(negative):
             normal = solve(np.where(negative, -slip, slip))
         return out, normal
 
@@ -376,8 +395,10 @@ class CartPolePhysics(Physics):
         if self.poles == 2:
             fell |= np.abs(state[:, 4]) > fail
         off = np.abs(state[:, 0]) > params[:, self._col["track_half_length"]]
-        if len(fell) < 2048:  # small batches: fewest calls
-            return np.where(fell, 1, np.where(off, 2, 0))
+        if len(fell) < 2048:  # small batches: fewest calls (off -> 2, then fell -> 1 over it)
+            code = np.add(off, off, dtype=np.int64)
+            code[fell] = 1
+            return code
         # fell -> 1, else off -> 2, else 0, branch-free on bytes (np.where on random masks mispredicts)
         off &= ~fell
         code = off.view(np.uint8) << 1

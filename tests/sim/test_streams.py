@@ -305,9 +305,10 @@ def test_dropping_finished_policies_changes_no_result(monkeypatch):
     # Two policies that push the cart off the track at once and two that balance for a while: once the
     # first two have finished every scenario the engine drops them from the batch, which must change
     # nothing, for any mix of perturbed and nominal rows. (12 rows are fewer than the engine drops by
-    # default, so the threshold is lowered here; at the default the batch keeps them.)
-    assert rollout.COMPACT_ROWS > 12
+    # default, so the thresholds are lowered here; at the default the batch keeps them.)
+    assert rollout.COMPACT_ROWS > 12 and rollout.DROP_ROWS > 6
     monkeypatch.setattr(rollout, "COMPACT_ROWS", 12)
+    monkeypatch.setattr(rollout, "DROP_ROWS", 6)
     cart = make_physics("pretrial/CartPole-v0")
     sc = draw_scenarios(cart, 6, 33, ranges={"actuator_lag_s": (0.0, 0.03), "sensor_noise_std": (0.0, 0.02),
                                              "actuator_rate_limit": (20.0, 80.0)})

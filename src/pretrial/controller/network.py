@@ -917,11 +917,20 @@ class PopulationNetwork:
         elif values.shape[1] != b:
             raise ValueError(f"recurrent state holds {values.shape[1]} scenarios per network, inputs have {b}; "
                              f"call reset({b}) first")
+        return self.advance(x)
+
+    def advance(self, x: np.ndarray) -> np.ndarray:
+        """:meth:`activate` without its checks, for a caller that steps every call (a rollout).
+
+        ``x`` must be a float array of shape (G, B, n_in) with B the batch size of the current
+        state (after :meth:`reset` or a first :meth:`activate`).
+        """
         np.copyto(self._input_rows, x.transpose(0, 2, 1))
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             for fn, args in self._program:
                 fn(*args)
-        y = values.take(self._output_rows, axis=0).reshape(g, self.num_outputs, b)
+        g, b = x.shape[0], x.shape[1]
+        y = self._values.take(self._output_rows, axis=0).reshape(g, self.num_outputs, b)
         return np.ascontiguousarray(y.transpose(0, 2, 1))
 
 
@@ -970,7 +979,9 @@ def _program(levels: Sequence[_Level], values: np.ndarray) -> tuple[_Op, ...]:
                 slots = ((0, n), *((off + n - first, count) for off, count in slots[1:]))
         p = np.empty((len(source), b))
         if len(source):
-            ops.append((np.take, (values, source, 0, p, "clip")))  # "clip": no bounds-check copy
+            # the bound method, not np.take (whose Python wrapper costs as much as the gather); "clip": no
+            # bounds-check copy
+            ops.append((values.take, (source, 0, p, "clip")))
             # weights, responses and biases repeated over the batch: broadcasting a column costs more
             ops.append((np.multiply, (p, np.repeat(weight, b, axis=1), p)))
         if plain_sum:
@@ -984,7 +995,13 @@ def _program(levels: Sequence[_Level], values: np.ndarray) -> tuple[_Op, ...]:
             ops.append((np.multiply, (s, np.repeat(lv.response, b, axis=1), s)))  # act(bias + response * agg)
         ops.append((np.add, (s, np.repeat(lv.bias, b, axis=1), s)))
         out = values[lv.slot_lo : lv.slot_hi]
-        if lv.into:
+        if lv.activations[0][0] is _tanh and lv.into and _KERNELS["tanh"] is np.tanh:
+            # _tanh spelled out as three calls on constant arrays: an array operand costs less than a
+            # Python float, and the function call goes (same operations, same order, same values)
+            ops.append((np.multiply, (s, np.full((n, b), 2.5), s)))
+            ops.append((np.fmin, (s, np.full((n, b), 60.0), s)))
+            ops.append((np.tanh, (s, out)))
+        elif lv.into:
             ops.append((lv.activations[0][0], (s, out)))
         elif len(lv.activations) == 1:
             ops.append((_activate_into, (lv.activations[0][0], s, out)))

@@ -169,7 +169,11 @@ class IOMap:
         out = np.asarray(outputs, dtype=float)
         if out.ndim < 2 or out.shape[-1] != self.num_outputs or out.shape[-2] % self.blocks:
             raise ValueError(f"outputs of shape {out.shape}: expected (..., B * {self.blocks}, {self.num_outputs})")
-        out = out.reshape(*out.shape[:-2], out.shape[-2] // self.blocks, self.action_dim)
+        shape = (*out.shape[:-2], out.shape[-2] // self.blocks, self.action_dim)
+        return self._action_rows(out.reshape(-1, self.action_dim)).reshape(shape)
+
+    def _action_rows(self, out: np.ndarray) -> np.ndarray:
+        # on 2-D rows (R, action_dim) numpy broadcasts a short last axis far faster than on 3-D
         if self._skip[2]:
             a = out + self._arrays[3]
         else:
@@ -189,6 +193,9 @@ class PopulationPolicy:
     io : IOMap
         The observation and action mapping shared by all of them.
     """
+
+    #: :meth:`act` returns a new array within [-1, 1] on every call (the rollout skips its own clip)
+    clips_actions = True
 
     def __init__(self, network: PopulationNetwork, io: IOMap):
         if (network.num_inputs, network.num_outputs) != (io.num_inputs, io.num_outputs):
@@ -215,12 +222,14 @@ class PopulationPolicy:
         if obs.ndim != 2 or obs.shape[0] % g:
             raise ValueError(f"observations of shape {obs.shape}: expected ({g} * B, {self.io.obs_dim})")
         obs = obs.reshape(g, obs.shape[0] // g, obs.shape[1])
-        io = self.io
+        io, net = self.io, self.network
         if io.blocks == 1 and io._skip[0] and io._skip[1] and obs.shape[2] == io.obs_dim:
             x = obs  # identity inputs: the network copies them into its own values, no copy needed here
         else:
             x = io.network_inputs(obs)
-        return io.actions(self.network.activate(x)).reshape(obs.shape[0] * obs.shape[1], io.action_dim)
+        # a rollout steps one batch size: the network's checks are then skipped
+        y = net.advance(x) if net.batch_size == x.shape[1] and x.shape[2] == net.num_inputs else net.activate(x)
+        return io._action_rows(y.reshape(-1, io.action_dim))
 
 
 def content_hash(document: Mapping[str, Any]) -> str:

@@ -121,6 +121,11 @@ WHOLE_PERIOD_TOL = 1e-9
 #: the control period as a varied name: the plant is rebuilt with this ``dt`` (not a per-row value)
 CONTROL_PERIOD = "control_period_s"
 
+#: the :class:`Loop`'s per-row settings and masks (what :meth:`Loop.take` keeps for the rows it keeps)
+_SETTING_ARRAYS = ("gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum", "act_delay",
+                   "act_frac", "obs_delay", "obs_frac", "start_scale", "residual_scale", "_sensor_rows",
+                   "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac", "_jitter_rows")
+
 #: counter offsets so the streams of one scenario never overlap
 _SENSOR_STREAM, _PLANT_STREAM = 0, 1
 _STREAMS = 2
@@ -531,21 +536,34 @@ class Loop:
     def _batch_flags(self) -> None:
         # Which elements act on some row (the others are skipped: nominal passes values through) and
         # which on every row (their masks are all true, so the np.where that applies them is skipped).
-        self._any_sensor = bool(self._sensor_rows.any())
+        # (np.count_nonzero: a fraction of the call overhead of .any(); a Loop is made per batch.)
+        def some(mask: np.ndarray) -> bool:
+            return np.count_nonzero(mask) > 0
+
+        def every(mask: np.ndarray) -> bool:
+            return np.count_nonzero(mask) == mask.size
+
+        self._any_sensor = some(self._sensor_rows)
         # rows the sensor path leaves alone, when few: copied back by index instead of a full np.where
-        nominal = np.flatnonzero(~self._sensor_rows.any(axis=1))
+        nominal = ((~self._sensor_rows.any(axis=1)).nonzero()[0] if self._any_sensor
+                   else np.arange(self.n))
         self._nominal_sensor = nominal if 4 * len(nominal) < self.n else None
-        self._any_quantum = bool(np.any(self.quantum > 0))
-        self._tiny_quantum = bool(np.any((self.quantum > 0) & (self.quantum < 1e-280)))
-        self._any_jitter = bool(self._jitter_rows.any())
-        self._any_obs_frac = bool(np.any(self.obs_frac > 0))
-        self._any_switch = self._any_jitter or bool(np.any(self.act_frac > 0))
-        self._any_gain = bool(np.any(self.gain != 1.0))
-        self._any_residual = bool(np.any(self.residual_scale != 1.0))
-        self._any_dead = bool(self._dead_rows.any())
-        self._any_slew, self._all_slew = bool(self._slew_rows.any()), bool(self._slew_rows.all())
-        self._any_lag, self._all_lag = bool(self._lag_rows.any()), bool(self._lag_rows.all())
+        self._any_quantum = some(self.quantum > 0)
+        self._tiny_quantum = self._any_quantum and some((self.quantum > 0) & (self.quantum < 1e-280))
+        self._any_jitter = some(self._jitter_rows)
+        self._any_obs_frac = some(self.obs_frac > 0)
+        self._any_switch = self._any_jitter or some(self.act_frac > 0)
+        self._any_gain = some(self.gain != 1.0)
+        self._any_residual = some(self.residual_scale != 1.0)
+        self._any_dead = some(self._dead_rows)
+        self._any_slew, self._all_slew = some(self._slew_rows), every(self._slew_rows)
+        self._any_lag, self._all_lag = some(self._lag_rows), every(self._lag_rows)
         self._any_act_shape = self._any_dead or self._any_slew or self._any_lag
+        # nothing acts on any row: the loop passes observations and commands through
+        self._nominal = not (self._any_sensor or self._any_jitter or self._any_obs_frac or self._any_switch
+                             or self._any_gain or self._any_residual or self._any_act_shape
+                             or np.count_nonzero(self.obs_delay) or np.count_nonzero(self.act_delay)
+                             or np.count_nonzero(self.start_scale != 1.0))
 
     def reset(self, obs0: np.ndarray) -> None:
         """Start of an episode: delay lines hold the first observation and zero commands."""
@@ -586,14 +604,17 @@ class Loop:
             return out
         return np.where(self._sensor_rows, out, obs)
 
-    def actuate(self, command: np.ndarray, step: int) -> np.ndarray:
+    def actuate(self, command: np.ndarray, step: int, clipped: bool = False) -> np.ndarray:
         """Normalized command in [-1, 1] applied to the plant at ``step`` for the policy's ``command``.
 
         The plant sees it from ``switch`` of the period on, the previous period's
         before; both, and the gain on the physical output, are in :meth:`plant_inputs`.
+        ``clipped``: ``command`` is already within [-1, 1] and is this step's own array
+        (the loop may keep it), so the clip, which would change nothing, is skipped.
         """
-        command = np.maximum(command, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
-        np.minimum(command, 1.0, out=command)
+        if not clipped:
+            command = np.maximum(command, -1.0)  # np.clip, at half its call overhead (same values, NaN kept)
+            np.minimum(command, 1.0, out=command)
         if self._act_buf is not None:
             depth = self._act_buf.shape[0]
             self._act_buf[step % depth] = command
@@ -652,10 +673,15 @@ class Loop:
 
     def take(self, rows: np.ndarray) -> None:
         """Keep only ``rows`` (indices), with their delay lines and actuator state."""
-        for name in ("keys", "gain", "deadband", "max_slew", "lag_alpha", "noise_std", "bias", "quantum",
-                     "act_delay", "act_frac", "obs_delay", "obs_frac", "start_scale", "residual_scale", "_applied",
-                     "_sensor_rows", "_dead_rows", "_slew_rows", "_lag_rows", "_safe_quantum", "jitter_frac",
-                     "_jitter_rows"):
+        if self._nominal:
+            # every per-row setting is its nominal: any n of them are as good as the rows' own, and the
+            # flags stay as they are (the rollout drops rows often; indexing them all would cost more)
+            n = len(rows)
+            for name in _SETTING_ARRAYS:
+                setattr(self, name, getattr(self, name)[:n])
+            self.keys, self._applied, self.n, self._rows = self.keys[rows], self._applied[rows], n, np.arange(n)
+            return
+        for name in ("keys", "_applied", *_SETTING_ARRAYS):
             setattr(self, name, getattr(self, name)[rows])
         if self._obs_buf is not None:
             self._obs_buf = self._obs_buf[:, rows]

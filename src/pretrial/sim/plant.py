@@ -98,7 +98,7 @@ class GymnasiumPlant(Physics):
     def observe(self, state: np.ndarray, params: np.ndarray) -> np.ndarray:
         return state[:, 1:].copy()
 
-    def transition(self, state, action, params, hold, steps, noise=None):
+    def transition(self, state, action, params, hold, steps, noise=None, clipped=False):
         from pretrial_envs.core import Transition
 
         n = state.shape[0]

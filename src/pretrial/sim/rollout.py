@@ -22,10 +22,16 @@ from pretrial.sim.perturb import Loop, spec_of
 from pretrial.sim.quality import QualityLimits, QualityTracker, merge_words
 from pretrial_envs.core import Physics
 
-#: Fewest rows worth dropping from the batch. Dropping rebuilds the policies' networks (about
-#: 0.3 ms for 40 cart-pole genomes on one core), which a row saves back at 50-250 ns per step:
-#: fewer rows than this would take longer to pay for it than most episodes last.
+#: Fewest rows worth dropping from the policies' grid (whole policies whose rows have all ended).
+#: Dropping rebuilds the policies' networks (about 0.3 ms for 40 cart-pole genomes on one core),
+#: which a row saves back at 25-50 ns per step: fewer rows than this would take longer to pay for
+#: it than most episodes last.
 COMPACT_ROWS = 64
+
+#: Fewest ended rows worth dropping from the plant's batch (also at least a quarter of it). Dropping
+#: costs about 10 us (a dozen indexing calls); an ended row kept costs 50-250 ns per step of plant,
+#: plus the masks that keep its values.
+DROP_ROWS = 16
 
 
 class BatchPolicy(Protocol):
@@ -222,6 +228,10 @@ def run_episodes(
     # skipped; while few have, those rows are put back by index (`finished`) instead of a full np.where.
     finished: np.ndarray | None = None  # None: every row runs
     few = False
+    # once rows have been dropped: each row's place in the policies' grid, and the grid's inputs
+    pos: np.ndarray | None = None
+    grid_obs = np.zeros((0, 0))
+    selectable = hasattr(policy, "select")
 
     def keep_finished(new: np.ndarray, old: np.ndarray) -> np.ndarray:
         """``new`` (this step's own array) for running rows, ``old`` for finished ones."""
@@ -234,12 +244,18 @@ def run_episodes(
 
     for k in range(limit):
         measured = loop.sense(obs, k)
-        command = policy.act(measured)
-        action = loop.actuate(command, k)
+        if pos is None:
+            command = policy.act(measured)
+        else:  # the policies' grid still holds rows that have ended: they act on stale inputs, unread
+            grid_obs[pos] = measured
+            command = policy.act(grid_obs)[pos]
+        action = loop.actuate(command, k, getattr(policy, "clips_actions", False))
         if trust is not None:
             trust.update(k, where, state, loop.physical(action, params), loop.residual_scale,
                          None if finished is None else active)
-        tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k), **loop.plant_inputs())
+        # the loop's command is within [-1, 1] already: the plant skips its clip
+        tr = physics.transition(state, action, params, hold, steps, loop.plant_noise(k), clipped=True,
+                                **loop.plant_inputs())
         if tracker is not None:
             tracker.update(k, tr.state, action, tr.hold, params, None if finished is None else active)
         if slack is not None:
@@ -255,15 +271,16 @@ def run_episodes(
         ended = tr.terminated | tr.truncated
         if finished is not None:
             ended &= active
-        any_ended = bool(ended.any())
+        # np.count_nonzero and .nonzero(): a fraction of the call overhead of .any() and np.flatnonzero
+        any_ended = np.count_nonzero(ended) > 0
         if any_ended:
-            rows_ended = np.flatnonzero(ended)
+            rows_ended = ended.nonzero()[0]
             success[where[rows_ended]] = tr.success[rows_ended]
             failure[where[rows_ended]] = tr.failure[rows_ended]
         out_of_time = None
         if k + 1 >= limit:
             out_of_time = active & ~ended
-            if out_of_time.any():
+            if np.count_nonzero(out_of_time):
                 # the run's horizon ends the episode before the env's own time limit
                 if physics.success_mode == "survive":
                     success[where[out_of_time]] = True
@@ -283,32 +300,43 @@ def run_episodes(
         active &= ~ended
         if out_of_time is not None:
             active &= ~out_of_time
-        if not active.any():
+        n_active = np.count_nonzero(active)
+        if not n_active:
             break
-        live = active.reshape(-1, s).any(axis=1)
-        n_live = int(live.sum())
-        if trace is None and movable and n_live <= 0.5 * len(live) and (len(live) - n_live) * s >= COMPACT_ROWS:
-            # Most policies have finished every scenario: drop them from the batch. Rows are
-            # independent, so this changes no result, only the work done per step.
-            smaller = policy.select(np.flatnonzero(live)) if hasattr(policy, "select") else None
+        live = None  # policies that still have a running row, when dropping the others pays
+        if selectable and trace is None and movable and policy.n_policies * s - n_active >= COMPACT_ROWS:
+            live = live_policies(policy.n_policies, (active.nonzero()[0] if pos is None else pos[active]) // s, s)
+        if trace is None and movable and (live is not None or len(active) - n_active >= max(DROP_ROWS,
+                                                                                           len(active) // 4)):
+            # Enough rows have ended: drop them from the plant's batch. Rows are independent, so this
+            # changes no result, only the work done per step. The policies keep their grid of rows
+            # (`pos` points into it) until most of them have no row left.
+            keep = active.nonzero()[0]
+            done = (~active).nonzero()[0]
+            returns[where[done]] = ret[done]
+            length[where[done]] = steps[done]
+            if slack is not None:
+                slack_all[where[done]], best_hold_all[where[done]] = slack[done], best_hold[done]
+                slack, best_hold = slack[keep], best_hold[keep]
+            if tracker is not None:
+                tracker.store(where, rows)
+                tracker.take(keep)
+            where, ret, state, hold, steps = where[keep], ret[keep], state[keep], hold[keep], steps[keep]
+            active = np.ones(len(keep), dtype=bool)
+            params = np.asfortranarray(params[keep])
+            params.setflags(write=False)
+            loop.take(keep)
+            pos = keep if pos is None else pos[keep]
+            smaller = None if live is None else policy.select(live.nonzero()[0])
             if smaller is not None:
-                keep = np.flatnonzero(np.repeat(live, s))
-                returns[where] = ret
-                length[where] = steps
-                if slack is not None:
-                    slack_all[where], best_hold_all[where] = slack, best_hold
-                    slack, best_hold = slack[keep], best_hold[keep]
-                if tracker is not None:
-                    tracker.store(where, rows)
-                    tracker.take(keep)
+                pos = (np.cumsum(live) - 1)[pos // s] * s + pos % s  # the same rows in the smaller grid
                 policy = smaller
-                where, ret, state, hold, steps, active = (
-                    where[keep], ret[keep], state[keep], hold[keep], steps[keep], active[keep]
-                )
-                params = np.asfortranarray(params[keep])
-                params.setflags(write=False)
-                loop.take(keep)
-        finished = np.flatnonzero(~active)
+            elif live is not None:
+                selectable = False  # the policy keeps all its networks (e.g. recurrent state): do not ask again
+            if len(pos) == policy.n_policies * s:  # pos increases: every grid row runs, in order
+                pos = None
+            grid_obs = np.zeros((policy.n_policies * s, obs.shape[1])) if pos is not None else grid_obs
+        finished = (~active).nonzero()[0]
         few = 4 * len(finished) < len(active)
         if not len(finished):
             finished = None
@@ -346,6 +374,18 @@ def run_episodes(
         {k: v.reshape(shape) for k, v in measures.items()} if measures is not None else None,
         trust.finish(steps, shape) if trust is not None else None,
     )
+
+
+def live_policies(g: int, owners: np.ndarray, s: int) -> np.ndarray | None:
+    """(g,) bool: the policies owning a running row (``owners``), when dropping the others pays; else None.
+
+    It pays when at most half of the ``g`` policies of ``s`` rows each are live and the others
+    hold at least :data:`COMPACT_ROWS` rows.
+    """
+    live = np.zeros(g, dtype=bool)
+    live[owners] = True
+    n_live = np.count_nonzero(live)
+    return live if n_live <= 0.5 * g and (g - n_live) * s >= COMPACT_ROWS else None
 
 
 def random_rows(physics: Physics, scenarios: Scenarios) -> np.ndarray:
