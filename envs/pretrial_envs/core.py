@@ -102,6 +102,8 @@ def _fmt(x: float, whole: bool) -> str:
 DT = Limit("dt", 1e-6, 3600.0, "s")
 SUBSTEPS = Limit("substeps", 1, 10_000, whole=True)
 TIME_LIMIT = Limit("time_limit", 0.0, 1e6, "s", above=True)  # shorter than dt: one control period
+#: seconds a reach task's goal must be held (0: reaching it is enough)
+HOLD_TIME = Limit("hold_time", 0.0, 1e6, "s")
 #: half-width of the start distribution of one state (beyond DIVERGENCE_BOUND a start is already diverged)
 START_SPREAD = Limit("start_spread", 0.0, DIVERGENCE_BOUND)
 #: integration steps of one episode: control periods (time_limit / dt) x substeps
@@ -414,6 +416,10 @@ class Physics:
         A ``residual.json`` (from ``pretrial calibrate --residual``) whose learned correction is
         added to :meth:`derivatives` wherever the integrators evaluate them
         (:meth:`model_derivatives`; see :mod:`pretrial_envs.residual`).
+    hold_time : float, optional
+        Reach tasks only: seconds the goal must be held for success (overrides
+        the class default; at most ``time_limit``). A longer hold asks for a
+        loop that stays at its goal rather than one that passes through it.
     """
 
     #: gymnasium id, e.g. ``"pretrial/CartPole-v0"``
@@ -460,6 +466,7 @@ class Physics:
         time_limit: float | None = None,
         start_spread: Mapping[str, float] | None = None,
         residual: Any = None,
+        hold_time: float | None = None,
     ):
         self.residual = None if residual is None else _residual_for(self, residual)
         self.dt = DT.check(self.default_dt if dt is None else dt)
@@ -471,6 +478,14 @@ class Physics:
         self.time_limit = TIME_LIMIT.check(self.default_time_limit if time_limit is None else time_limit)
         self.max_steps = max(1, int(round(self.time_limit / self.dt)))
         check_episode_steps(self.max_steps, self.substeps, f"time_limit {self.time_limit:g} s / dt {self.dt:g} s")
+        if hold_time is not None:
+            if self.success_mode != "reach":
+                raise ValueError(f"hold_time: {hold_time!r} not allowed: this task succeeds by surviving, "
+                                 "it has no goal to hold")
+            self.hold_time = HOLD_TIME.check(hold_time)
+            if self.hold_time > self.time_limit:
+                raise ValueError(f"hold_time: {hold_time!r} s is longer than time_limit {self.time_limit:g} s: "
+                                 "no episode could succeed")
         spread = dict(self.default_start_spread)
         if start_spread is not None and not isinstance(start_spread, Mapping):
             raise ValueError(f"start_spread: expected a table of state name = half-range, got {start_spread!r}")
@@ -507,6 +522,8 @@ class Physics:
             "start_spread": {n: float(s) for n, s in zip(self.state_names, self.start_spread) if s},
             # only when set: configurations without a residual keep their options (and their hashes)
             **({"residual": self.residual.source or self.residual} if self.residual is not None else {}),
+            # only when changed from the task's own, for the same reason
+            **({"hold_time": self.hold_time} if self.hold_time != type(self).hold_time else {}),
         }
 
     def param(self, params: Array, name: str) -> Array:

@@ -155,22 +155,15 @@ class DronePairPhysics(Physics):
         f"d{i}_{n}": s for i in (0, 1) for n, s in zip(_BODY, (0.1, 0.1, 0.05, 0.1, 0.1, 0.1), strict=True)
     }
 
-    def __init__(self, hold_time: float | None = None, **kwargs: Any):
+    def __init__(self, **kwargs: Any):
         super().__init__(**kwargs)
-        if hold_time is not None:
-            try:
-                h = float(hold_time)
-            except (TypeError, ValueError):
-                raise ValueError(f"hold_time: {hold_time!r} is not a number") from None
-            if not math.isfinite(h) or h < 0:
-                raise ValueError(f"hold_time: {hold_time!r} must be a finite number >= 0")
-            self.hold_time = h
         self.success_rule = (
             "both drones within goal_tolerance of their goals (each other's start) and slower than goal_speed, "
             f"continuously for {self.hold_time:g} s (hold_time)"
         )
 
     def options(self) -> dict[str, Any]:
+        # always named: the drone pair's options recorded it before the core took the option
         return {**super().options(), "hold_time": self.hold_time}
 
     # ----------------------------------------------------------- dynamics

@@ -144,8 +144,8 @@ class GantryPhysics(Physics):
         has integral action (state augmentation, common practice in servo
         design) and can remove a steady offset. Default False.
     **kwargs
-        ``dt``, ``substeps``, ``integrator``, ``time_limit``, ``start_spread``
-        as in :class:`~pretrial_envs.core.Physics`.
+        ``dt``, ``substeps``, ``integrator``, ``time_limit``, ``start_spread``,
+        ``hold_time`` (default 2 s) as in :class:`~pretrial_envs.core.Physics`.
     """
 
     env_id: ClassVar[str] = "pretrial/GantryCrane-v0"
@@ -160,10 +160,7 @@ class GantryPhysics(Physics):
     failure_modes = ("rail_end", "sway", "slack_rope")
     success_mode = "reach"
     hold_time = 2.0
-    success_rule = (
-        "load within position_tolerance of target_x, |phi| <= sway_tolerance and |phi_dot| <= sway_rate_tolerance, "
-        "held for 2 s without touching a rail end, exceeding max_sway or slackening the rope"
-    )
+    success_rule = ""  # set per instance: it names the hold time
     reward_doc = (
         "per control period dt: -dt * (|load x - target_x| + 1.0 phi^2 + 0.01 sum(action^2)); "
         "on a failure other than timeout, minus the largest running cost a whole episode could accumulate, "
@@ -197,6 +194,11 @@ class GantryPhysics(Physics):
         scale = {"x": 2.5, "x_dot": 1.0, "phi": 0.5, "phi_dot": 1.0, "l": 1.0, "l_dot": 0.5, "load_x_integral": 0.1}
         self.obs_scale = tuple(scale[n] for n in self.obs_names)
         super().__init__(**kwargs)
+        self.success_rule = (
+            "load within position_tolerance of target_x, |phi| <= sway_tolerance and |phi_dot| <= "
+            f"sway_rate_tolerance, held for {self.hold_time:g} s (hold_time) without touching a rail end, "
+            "exceeding max_sway or slackening the rope"
+        )
         # column indices, looked up once (derivatives runs 4x per RK4 substep)
         self._col = {name: self.param_table.index(name) for name in self.param_table.names}
 
@@ -636,7 +638,7 @@ class GantryEnv(PhysicsEnv):
     1. Success: the load is within ``position_tolerance`` (0.05 m) of
        ``target_x`` (2 m) horizontally with ``|phi| <= sway_tolerance``
        (0.05 rad) and ``|phi_dot| <= sway_rate_tolerance`` (0.1 rad/s),
-       continuously for ``hold_time`` = 2 s.
+       continuously for ``hold_time`` (2 s by default).
     2. Termination ``rail_end``: ``|x| > rail_half_length`` (2.5 m).
     3. Termination ``sway``: ``|phi| > max_sway`` (0.5 rad).
     4. Termination ``slack_rope``: the tension the motion requires is negative
@@ -667,6 +669,7 @@ class GantryEnv(PhysicsEnv):
     | `substeps`     | `2`     | integration steps per control period                      |
     | `integrator`   | `"rk4"` | ``"rk4"`` or ``"euler"``                                  |
     | `time_limit`   | `15.0`  | episode length, s                                         |
+    | `hold_time`    | `2.0`   | seconds the load must stay settled at the target          |
     | `start_spread` | see above | half-widths of the uniform start distribution           |
 
     Losses and disturbances (all accept 0):

@@ -720,3 +720,31 @@ def test_derivatives_equal_closed_form_bit_for_bit(hoist, losses, n):
                 np.testing.assert_array_equal(d[:, 5], ldd)
                 np.testing.assert_array_equal(d[:, 4], state[:, 5])
             np.testing.assert_array_equal(physics.rope_tension(state, force, params), tension)
+
+
+def test_hold_time_option_sets_the_hold_success_needs():
+    # Contract: a reach task succeeds after its goal is held hold_time seconds; the option
+    # overrides the task's default, is recorded in options() only when changed, and is refused
+    # on survival tasks and beyond the time limit.
+    from pretrial_envs.cartpole import CartPolePhysics
+
+    for hold in (0.5, 1.0):
+        ph = GantryPhysics(hold_time=hold)
+        p = ph.param_table.resolve({})[None, :]
+        s = ph.target_state(p)
+        hold_acc, steps = np.zeros(1), np.zeros(1, dtype=np.int64)
+        periods = 0
+        while periods < 200:
+            tr = ph.transition(s, np.zeros((1, 1)), p, hold_acc, steps)
+            s, hold_acc, steps, periods = tr.state, tr.hold, tr.steps, periods + 1
+            if tr.success[0]:
+                break
+        # at rest on the target: success on the period the hold reaches hold_time
+        assert periods == round(hold / ph.dt)
+        assert ph.options()["hold_time"] == hold
+        assert f"{hold:g} s" in ph.success_rule
+    assert "hold_time" not in GantryPhysics().options()
+    with pytest.raises(ValueError, match="hold_time"):
+        GantryPhysics(hold_time=20.0)  # longer than the 15 s episode
+    with pytest.raises(ValueError, match="hold_time"):
+        CartPolePhysics(hold_time=1.0)
