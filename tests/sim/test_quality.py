@@ -94,6 +94,8 @@ def test_output_bias_gives_the_predicted_offset(lqr):
     np.testing.assert_allclose(measured, offset, rtol=0.05)
     assert {out.failure_words[c] for c in out.failure.ravel()} == {"offset"}
     assert ph.regulated()["x"] == ("m", 0.1)
+    # the share of the offset limit: 0.08 m of the default 0.05 m (half the band)
+    np.testing.assert_allclose(out.quality["offset_share"].ravel(), offset / 0.05, rtol=0.05)
 
 
 def test_slow_divergence_fails_as_growing_where_survival_passed(lqr):

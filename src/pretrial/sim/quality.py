@@ -22,6 +22,8 @@ The measures, per episode:
   survival task, the goal hold for a reach task;
 * ``steady_state_error``: the magnitude of each regulated quantity's mean error
   over the window, against ``offset`` (default half the band);
+* ``offset_share``: the largest ``steady_state_error`` over its ``offset``
+  limit (above 1 fails ``offset``; 0 without a window);
 * ``growth_ratio``: over the last ``growth_span`` of a survival episode (half
   the horizon by default), the largest normalized error (``|error| / band``,
   the largest over the regulated quantities) in the span's last third divided
@@ -274,6 +276,9 @@ class QualityTracker:
             for j, name in enumerate(self.names):
                 measures[f"steady_state_error.{name}"] = np.abs(mean[:, j])
             offset = (np.abs(mean) > f["offset_limit"]).any(axis=1) & (f["err_count"] > 0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                share = (np.abs(mean) / f["offset_limit"]).max(axis=1)
+            measures["offset_share"] = np.where(f["err_count"] > 0, share, 0.0)
             settled = ~f["outside"] & (f["err_count"] > 0)
             measures["settled"] = settled
             growing = np.zeros(n, dtype=bool)
@@ -320,6 +325,8 @@ def quality_metrics(physics: Physics, measures: Mapping[str, np.ndarray]) -> dic
         elif name == "growth_ratio":
             out[name] = EpisodeMetric(v, "-", "peak error in the last third of the growth span over the peak before "
                                       "it (> 1: still growing at the horizon)")
+        elif name == "offset_share":
+            out[name] = EpisodeMetric(v, "-", "largest |mean error| over its offset limit (> 1: a steady offset)")
         elif name.startswith("steady_state_error."):
             q = name.split(".", 1)[1]
             out[name] = EpisodeMetric(v, units.get(q, ""), f"|mean error| of {q} over the window (steady offset)")
