@@ -25,11 +25,14 @@ The last line is ``passed: K of N`` (sweeps whose verdict is PASS).
 
 Measured (2 shared cores, ``--configs cartpole --workers 1``): no plan, evolve 20 s, sweep 9 s,
 FAIL 389/2000; ``--plan``, evolve 45 s, sweep 16 s, predicted PASS, PASS 2000/2000.
-Measured by hand with the same commands (``--workers 1``, seed 1; see each config's comment):
-gantry with ``--plan`` and ``integral = true`` (16 episodes, ``success_lower_bound``), 300
-generations, evolve 916 s, sweep 20 s, predicted FAIL, FAIL 710/1000 (not linearizable);
-drone-pair-wide with ``--plan``, 110 generations, evolve 216 s, sweep 10 s, FAIL 0/1000;
-the two-pole LQR (``pretrial sweep lqr``) FAIL only on the sampled phase margin, 40.85 deg < 45.
+``--configs gantry --workers 1`` (2026-12-05, the machine shared): no plan, evolve 216 s, sweep
+16 s, FAIL 564/1000 (Monte Carlo and worst case); ``--plan``, evolve 520 s, sweep 16 s,
+predicted PASS, PASS 990/1000.
+Measured by hand with the same commands (see each config's comment): double-pole with
+``--plan`` (16 episodes, ``"mean"``, 300 generations), evolve 593 s, sweep 34 s, FAIL 718/1000,
+sampled loop stable (2.36 dB / 28.5 deg); drone-pair-wide with ``--plan``, 1100 generations at
+``--workers 2``, 30 min, FAIL 36/1000; the two-pole LQR (``pretrial sweep lqr``) FAIL only on the
+sampled phase margin, 40.85 deg < 45.
 """
 
 from __future__ import annotations
