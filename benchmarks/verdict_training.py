@@ -28,6 +28,12 @@ FAIL 389/2000; ``--plan``, evolve 45 s, sweep 16 s, predicted PASS, PASS 2000/20
 ``--configs gantry --workers 1`` (2026-12-05, the machine shared): no plan, evolve 216 s, sweep
 16 s, FAIL 564/1000 (Monte Carlo and worst case); ``--plan``, evolve 520 s, sweep 16 s,
 predicted PASS, PASS 990/1000.
+``--configs double-pole double-pole-positions --workers 1`` (same day): double-pole no plan 3 s +
+13 s, FAIL 606/1000 (sampled loop unstable); ``--plan`` (the config's 1 episode per genome, 100
+generations) 19 s + 13 s, FAIL 0/1000; double-pole-positions no plan 32 s + 6 s, FAIL 0/1000;
+``--plan`` 20 s + 4 s, FAIL 0/1000.
+``--configs drone-pair --workers 1`` (same day): no plan 155 s + 13 s, FAIL 2/1000; ``--plan``
+308 s + 14 s, FAIL 16/1000 (and the integrator check).
 Measured by hand with the same commands (see each config's comment): double-pole with
 ``--plan`` (16 episodes, ``"mean"``, 300 generations), evolve 593 s, sweep 34 s, FAIL 718/1000,
 sampled loop stable (2.36 dB / 28.5 deg); drone-pair-wide with ``--plan``, 1100 generations at
@@ -47,7 +53,7 @@ import tomllib
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-CONFIGS = ("cartpole", "gantry", "double-pole", "drone-pair", "drone-pair-wide")
+CONFIGS = ("cartpole", "gantry", "double-pole", "double-pole-positions", "drone-pair", "drone-pair-wide")
 
 
 def _plan_for(name: str) -> Path:
