@@ -66,6 +66,7 @@ from typing import Any
 
 import numpy as np
 
+from pretrial.controller.genome_arrays import population_arrays
 from pretrial.errors import InputError
 
 __all__ = [
@@ -73,6 +74,7 @@ __all__ = [
     "AGGREGATIONS",
     "Network",
     "NetworkSpec",
+    "NetworkStack",
     "PopulationNetwork",
     "compile_genome",
     "compile_topology",
@@ -670,7 +672,7 @@ class _Level:
     into: bool = False  # one activation kind, which writes into the level's value rows itself
 
 
-class _Stack:
+class NetworkStack:
     """Compiled networks side by side: each :class:`NetworkSpec` array concatenated in network order.
 
     Node and edge indices stay local to their network, so any subset of the
@@ -694,7 +696,7 @@ class _Stack:
         self.edge_source, self.edge_weight, self.output_source = a["edge_source"], a["edge_weight"], a["output_source"]
 
     @classmethod
-    def of_specs(cls, specs: Sequence[NetworkSpec]) -> _Stack:
+    def of_specs(cls, specs: Sequence[NetworkSpec]) -> NetworkStack:
         fields = (*cls._NODE_FIELDS, *cls._EDGE_FIELDS, "output_source")
         return cls([(s.input_keys, s.output_keys) for s in specs], np.array([s.feed_forward for s in specs]),
                    np.array([len(s.node_keys) for s in specs], dtype=np.int64),
@@ -703,7 +705,7 @@ class _Stack:
 
     @classmethod
     def of_lists(cls, feed_forward: bool, input_keys: Sequence[int], output_keys: Sequence[int],
-                 parts: Sequence[_SpecLists]) -> _Stack:
+                 parts: Sequence[_SpecLists]) -> NetworkStack:
         """Networks sharing one set of pins, from :func:`_spec_lists` (one numpy array per field, not per network)."""
         ints = np.int64
         kinds = (ints, ints, float, float, ints, ints, ints, ints, ints, float, ints)
@@ -715,7 +717,30 @@ class _Stack:
                    np.array([len(p[0]) for p in parts], dtype=ints), np.array([len(p[6]) for p in parts], dtype=ints),
                    arrays)
 
-    def take(self, keep: np.ndarray) -> _Stack:
+    @classmethod
+    def of_genomes(cls, genomes: Sequence[Any], neat_config: Any) -> NetworkStack:
+        """neat-python genomes compiled (see :func:`stack_genomes`): all at once where the population allows it.
+
+        A feed-forward population is compiled in one pass of array operations
+        (:func:`~pretrial.controller.genome_arrays.population_arrays`, the same arrays);
+        anything it leaves (a cycle, an unknown activation, ...), and recurrent
+        populations, genome by genome, which names what is wrong.
+        """
+        if not len(genomes):
+            raise ValueError("PopulationNetwork needs at least one network")
+        gc = getattr(neat_config, "genome_config", neat_config)
+        ins, outs, ff = list(gc.input_keys), list(gc.output_keys), bool(gc.feed_forward)
+        found = population_arrays(genomes, ins, outs, _ACT_CODE, _AGG_CODE) if ff else None
+        if found is None:
+            return cls.of_lists(ff, ins, outs, [_spec_lists(ff, ins, outs, *_genome_parts(g, gc)[1:]) for g in genomes])
+        node_counts, edge_counts, arrays = found
+        return cls([(tuple(ins), tuple(outs))] * len(genomes), np.ones(len(genomes), dtype=bool), node_counts,
+                   edge_counts, arrays)
+
+    def __len__(self) -> int:
+        return len(self.feed_forward)
+
+    def take(self, keep: np.ndarray) -> NetworkStack:
         """The networks ``keep`` (increasing indices) alone."""
         chosen = np.zeros(len(self.feed_forward), dtype=bool)
         chosen[keep] = True
@@ -723,7 +748,7 @@ class _Stack:
         masks = dict.fromkeys(self._NODE_FIELDS, node) | dict.fromkeys(self._EDGE_FIELDS, edge)
         masks["output_source"] = np.repeat(chosen, self.num_outputs)
         arrays = {name: values[masks[name]] for name, values in self.arrays.items()}
-        return _Stack([self.io_keys[i] for i in keep.tolist()], self.feed_forward[keep], self.node_counts[keep],
+        return NetworkStack([self.io_keys[i] for i in keep.tolist()], self.feed_forward[keep], self.node_counts[keep],
                       self.edge_counts[keep], arrays)
 
     def spec(self, i: int) -> NetworkSpec:
@@ -763,10 +788,11 @@ class PopulationNetwork:
         for s in specs:
             if s.num_inputs != n_in or s.num_outputs != n_out:
                 raise ValueError(f"networks differ in shape: {n_in} -> {n_out} and {s.num_inputs} -> {s.num_outputs}")
-        self._build(_Stack.of_specs(specs), tuple(specs))
+        self._build(NetworkStack.of_specs(specs), tuple(specs))
 
     @classmethod
-    def _of_stack(cls, stack: _Stack) -> PopulationNetwork:
+    def of_stack(cls, stack: NetworkStack) -> PopulationNetwork:
+        """The networks of ``stack`` (a :class:`NetworkStack`), without recompiling them."""
         net = cls.__new__(cls)
         net._build(stack, None)
         return net
@@ -784,10 +810,10 @@ class PopulationNetwork:
         if keep.ndim != 1 or not len(keep):
             raise ValueError("subset needs a non-empty 1-D sequence of network indices")
         if np.all(keep[1:] > keep[:-1]) and keep[0] >= 0 and keep[-1] < self.num_genomes:
-            return PopulationNetwork._of_stack(self._stack.take(keep))
+            return PopulationNetwork.of_stack(self._stack.take(keep))
         return PopulationNetwork([self.specs[i] for i in keep.tolist()])
 
-    def _build(self, stack: _Stack, specs: tuple[NetworkSpec, ...] | None) -> None:
+    def _build(self, stack: NetworkStack, specs: tuple[NetworkSpec, ...] | None) -> None:
         self._stack, self._specs = stack, specs
         self.num_genomes = g = len(stack.feed_forward)
         self.num_inputs, self.num_outputs = n_in, n_out = stack.num_inputs, stack.num_outputs
@@ -867,12 +893,7 @@ class PopulationNetwork:
     @classmethod
     def from_genomes(cls, genomes: Sequence[Any], neat_config: Any) -> PopulationNetwork:
         """Compile and stack neat-python genomes (see :func:`stack_genomes`)."""
-        if not len(genomes):
-            raise ValueError("PopulationNetwork needs at least one network")
-        gc = getattr(neat_config, "genome_config", neat_config)
-        ins, outs, ff = list(gc.input_keys), list(gc.output_keys), bool(gc.feed_forward)
-        parts = [_spec_lists(ff, ins, outs, *_genome_parts(gen, gc)[1:]) for gen in genomes]
-        return cls._of_stack(_Stack.of_lists(ff, ins, outs, parts))
+        return cls.of_stack(NetworkStack.of_genomes(genomes, neat_config))
 
     @property
     def batch_size(self) -> int | None:

@@ -33,7 +33,7 @@ from typing import Any
 
 import numpy as np
 
-from pretrial.controller.network import spec_from_genome
+from pretrial.controller.network import NetworkStack
 from pretrial.controller.policy import policy_from_genome, policy_to_dict, save_policy
 from pretrial.errors import InputError, PretrialError
 from pretrial.evolution import checkpoint
@@ -256,9 +256,11 @@ class Evolution:
     # ------------------------------------------------------------ generations
     def evaluate(self, genomes: Sequence[Any], scenarios: Scenarios, label: str | None = None
                  ) -> tuple[np.ndarray, np.ndarray]:
-        specs = [spec_from_genome(g, self.neat_config) for g in genomes]
-        size = chunk_size(len(specs), len(scenarios), self.executor.describe()["workers"])
-        items = [(self.task, specs[i : i + size], scenarios) for i in range(0, len(specs), size)]
+        networks = NetworkStack.of_genomes(genomes, self.neat_config)  # compiled once, sent to workers in chunks
+        n = len(networks)
+        size = chunk_size(n, len(scenarios), self.executor.describe()["workers"])
+        items = [(self.task, networks if size >= n else networks.take(np.arange(i, min(i + size, n))), scenarios)
+                 for i in range(0, n, size)]
         parts = self.executor.map(evaluate_chunk, items)
         diverged = np.sum([p[2] for p in parts], axis=0)
         if diverged.any():

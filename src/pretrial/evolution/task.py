@@ -9,14 +9,13 @@ the finalists' re-test, :data:`VERDICT_STREAM` for their short verdict), never t
 from __future__ import annotations
 
 import json
-from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from pretrial.controller.network import NetworkSpec, PopulationNetwork
+from pretrial.controller.network import NetworkStack, PopulationNetwork
 from pretrial.controller.policy import IOMap, PopulationPolicy
 from pretrial.errors import InputError
 from pretrial.evolution.config import Config
@@ -87,14 +86,14 @@ class Task:
 _PHYSICS_CACHE: dict[tuple[str, str], Any] = {}
 
 
-def evaluate_chunk(item: tuple[Task, Sequence[NetworkSpec], Scenarios]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def evaluate_chunk(item: tuple[Task, NetworkStack, Scenarios]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Fitness (the task's objective) and success rate per network, and diverged episodes per scenario.
 
     Runs in a worker. With the default objective the fitness is the mean return.
     """
-    task, specs, scenarios = item
+    task, networks, scenarios = item
     physics = task.physics()
-    policy = PopulationPolicy(PopulationNetwork(specs), task.io)
+    policy = PopulationPolicy(PopulationNetwork.of_stack(networks), task.io)
     out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
                        quality=task.quality)
     diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
