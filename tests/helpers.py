@@ -120,6 +120,20 @@ def random_genome(config: neat.Config, seed: int, mutations: int = 30) -> neat.D
     return genome
 
 
+def hand_genome(config: neat.Config, nodes: dict, connections: list) -> neat.DefaultGenome:
+    """A hand-built genome: nodes {key: (bias, response, activation, aggregation)}, connections (in, out, w, on)."""
+    gc = config.genome_config
+    gc.innovation_tracker = InnovationTracker()
+    g = neat.DefaultGenome(0)
+    for key, (bias, response, act, agg) in nodes.items():
+        node = neat.DefaultGenome.create_node(gc, key)
+        node.bias, node.response, node.activation, node.aggregation = bias, response, act, agg
+        g.nodes[key] = node
+    for i, (a, b, w, enabled) in enumerate(connections):
+        g.add_connection(gc, a, b, w, enabled, innovation=i + 1)
+    return g
+
+
 def library_outputs(genome, config, inputs: np.ndarray) -> np.ndarray:
     """neat-python's outputs for inputs (steps, B, n_in): one library network per scenario, state carried."""
     kind = neat.nn.FeedForwardNetwork if config.genome_config.feed_forward else neat.nn.RecurrentNetwork

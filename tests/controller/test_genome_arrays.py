@@ -10,10 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from helpers import library_outputs, make_config, random_genome
+from helpers import hand_genome, library_outputs, make_config, random_genome
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from test_network import _genome
 
 from pretrial.controller import network
 from pretrial.controller.genome_arrays import population_arrays
@@ -59,7 +58,7 @@ def test_a_cycle_goes_to_the_per_genome_path(config):
     # a hand-built feed-forward genome with a cycle (7 <-> 8): the library leaves the cycle unevaluated
     nodes = {0: (0.1, 1.0, "tanh", "sum"), 1: (0.2, 1.0, "tanh", "sum"), 7: (0.3, 1.0, "tanh", "sum"),
              8: (0.0, 1.0, "sigmoid", "sum")}
-    cyclic = _genome(config, nodes, [(-1, 0, 1.0, True), (-1, 7, 0.5, True), (7, 8, 1.0, True),
+    cyclic = hand_genome(config, nodes, [(-1, 0, 1.0, True), (-1, 7, 0.5, True), (7, 8, 1.0, True),
                                      (8, 7, 1.0, True), (8, 1, 1.0, True)])
     plain = random_genome(config, 3)
     assert at_once([plain, cyclic], config) is None

@@ -20,10 +20,9 @@ from unittest import mock
 import neat
 import numpy as np
 import pytest
-from helpers import library_outputs, library_outputs_or_skip, make_config, random_genome
+from helpers import hand_genome, library_outputs, library_outputs_or_skip, make_config, random_genome
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from neat.innovation import InnovationTracker
 
 from pretrial.controller import network
 from pretrial.controller.network import (
@@ -178,20 +177,6 @@ def test_sum_runs_left_to_right_like_python():
     np.testing.assert_array_equal(net.activate(x)[:, 0], [sum(row) for row in x.tolist()])
 
 
-def _genome(config, nodes, connections):
-    """A hand-built genome: nodes {key: (bias, response, activation, aggregation)}, connections (in, out, w, on)."""
-    gc = config.genome_config
-    gc.innovation_tracker = InnovationTracker()
-    g = neat.DefaultGenome(0)
-    for key, (bias, response, act, agg) in nodes.items():
-        node = neat.DefaultGenome.create_node(gc, key)
-        node.bias, node.response, node.activation, node.aggregation = bias, response, act, agg
-        g.nodes[key] = node
-    for i, (a, b, w, enabled) in enumerate(connections):
-        g.add_connection(gc, a, b, w, enabled, innovation=i + 1)
-    return g
-
-
 @pytest.mark.parametrize("feed_forward", [True, False])
 def test_structural_corner_cases_match_neat_python(tmp_path, feed_forward):
     cfg = make_config(tmp_path / "c.ini", feed_forward, num_outputs=3)
@@ -206,7 +191,7 @@ def test_structural_corner_cases_match_neat_python(tmp_path, feed_forward):
              (-2, 2, 1.3, False), (5, 6, 1.0, True), (-3, 5, 0.7, True)]
     if not feed_forward:
         conns += [(0, 3, 0.5, True), (3, 3, -0.4, True), (5, 2, 0.3, True)]
-    g = _genome(cfg, nodes, conns)
+    g = hand_genome(cfg, nodes, conns)
     x = _inputs(0, 1 if feed_forward else 4, 5, 3, 2.0)
     ref = library_outputs(g, cfg, x)
     with c_library_kernels():
@@ -223,7 +208,7 @@ def test_feed_forward_cycle_is_left_unevaluated_like_the_library(tmp_path):
     cfg = make_config(tmp_path / "c.ini", True)
     nodes = {0: (0.1, 1.0, "tanh", "sum"), 1: (0.2, 1.0, "tanh", "sum"), 7: (0.3, 1.0, "tanh", "sum"),
              8: (0.0, 1.0, "sigmoid", "sum")}
-    g = _genome(cfg, nodes, [(-1, 0, 1.0, True), (-1, 7, 0.5, True), (7, 8, 1.0, True), (8, 7, 1.0, True),
+    g = hand_genome(cfg, nodes, [(-1, 0, 1.0, True), (-1, 7, 0.5, True), (7, 8, 1.0, True), (8, 7, 1.0, True),
                              (8, 1, 1.0, True)])
     x = _inputs(1, 1, 4, 3, 1.0)
     ref = library_outputs(g, cfg, x)
