@@ -831,7 +831,9 @@ class Physics:
                 truncated = ok & (steps >= self.max_steps)
                 success = truncated.copy()
             reward = self.reward(state, action, params, failure, success)
-            if np.count_nonzero(terminated):
+            # a plant without its own terminal reward adds nothing: skip the remaining time (finished
+            # rows report terminated on every later step, so this would run on almost every step)
+            if type(self).terminal_reward is not Physics.terminal_reward and np.count_nonzero(terminated):
                 remaining = np.maximum(self.max_steps - steps, 0) * self.dt
                 extra = self.terminal_reward(params, failure, success, remaining)
                 if extra is not None:

@@ -304,7 +304,9 @@ def run_episodes(
         if not n_active:
             break
         live = None  # policies that still have a running row, when dropping the others pays
-        if selectable and trace is None and movable and policy.n_policies * s - n_active >= COMPACT_ROWS:
+        # at least ceil(n_active / s) policies are live: past half of them, dropping cannot pay yet
+        if (selectable and trace is None and movable and policy.n_policies * s - n_active >= COMPACT_ROWS
+                and -(-n_active // s) <= 0.5 * policy.n_policies):
             live = live_policies(policy.n_policies, (active.nonzero()[0] if pos is None else pos[active]) // s, s)
         if trace is None and movable and (live is not None or len(active) - n_active >= max(DROP_ROWS,
                                                                                            len(active) // 4)):
