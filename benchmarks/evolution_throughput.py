@@ -45,6 +45,24 @@ sizes of 40 steps with no row ending): the fixed part is what small batches pay.
 The last line is ``ratio: N``, (b) over (a) in useful env-steps per second, for
 ``--episodes`` episodes per genome on gymnasium's physics.
 Target: N >= 30; the product's bar (DESIGN.md) is 100.
+
+Measured 2026-12-05 (2 shared cores, defaults, 5 runs): ``ratio:`` 40.3-42.1; 1 episode per
+genome 5.0-5.4 on gymnasium's physics, 1.6-1.7 at pretrial's defaults; 16 episodes at the
+defaults 15.1-15.6; per control step 73.5-74.8 us fixed + 49-51 ns per row (gymnasium's
+physics), 154-161 us + 224-230 ns (defaults). Compiling the 150 genomes takes 1.2 ms
+(``controller/genome_arrays.py``; 2.9 ms genome by genome).
+
+Why 100 is out of reach for this numpy path (same figures): the headline run steps 151 control
+periods (one genome balances long after the others fell) for 35,750 row-steps, and must take
+at most 7.2 ms for N = 100 against (a)'s ~46,500 env-steps/s. The stacked networks of this
+population take 58 numpy calls per step (6 levels: a gather, a product, one add per input
+position so that sums run in neat-python's order, the bias, then ``tanh(2.5 z)`` as three calls),
+about 25 us; the cart-pole derivative alone about 13 us. With every other per-step cost at
+zero (episode rules, failure codes, bookkeeping), 151 x 38 us + 1.8 ms of per-row work + 1.2 ms
+of compiling is 8.7 ms: N ~ 83. Fewer calls per step means either a different summation order
+(``np.add.reduceat`` sums pairwise, so results would no longer equal neat-python's or earlier
+runs') or a compiled kernel, whose ``tanh`` and ``exp`` differ from numpy's in the last bit
+(measured: 27 % and 4.6 % of values), so that outputs would agree to ~1e-12, not bit for bit.
 """
 
 from __future__ import annotations
