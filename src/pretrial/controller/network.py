@@ -854,19 +854,27 @@ class PopulationNetwork:
         s_level, s_agg, s_fan = level[order], agg[order], fan[order]
         s_bias, s_resp, s_act = stack.bias[order], stack.response[order], stack.activation[order]
         levels = []
-        for lv in np.unique(s_level):
-            lo, hi = np.searchsorted(s_level, [lv, lv + 1])
-            e_lo, e_hi = np.searchsorted(edge_level, [lv, lv + 1])
+        # every level's node and edge bounds in four searches (rows are sorted by level)
+        level_values = np.unique(s_level)
+        node_lo, node_hi = (np.searchsorted(s_level, v).tolist() for v in (level_values, level_values + 1))
+        edge_lo, edge_hi = (np.searchsorted(edge_level, v).tolist() for v in (level_values, level_values + 1))
+        for lo, hi, e_lo, e_hi in zip(node_lo, node_hi, edge_lo, edge_hi, strict=True):
             blocks = []
             e_at = 0
-            for code in np.unique(s_agg[lo:hi]):
-                b_lo, b_hi = (lo + np.searchsorted(s_agg[lo:hi], [code, code + 1])).tolist()
+            seg = s_agg[lo:hi]  # sorted within the level
+            if seg[0] == seg[-1]:  # one aggregation kind (the usual case): no search
+                spans = [(int(seg[0]), lo, hi)]
+            else:
+                spans = [(int(code), *(lo + np.searchsorted(seg, [code, code + 1])).tolist())
+                         for code in np.unique(seg)]
+            for code, b_lo, b_hi in spans:
                 fans = s_fan[b_lo:b_hi]
-                # nodes having a k-th input: a prefix of the block, because fans descend
-                counts_k = [int(np.count_nonzero(fans > k)) for k in range(int(fans[0]) if len(fans) else 0)]
-                offsets = np.concatenate([[0], np.cumsum(counts_k)]).astype(np.int64) + e_at
-                slots = tuple((int(o), c) for o, c in zip(offsets[:-1], counts_k, strict=True))
-                e_at = int(offsets[-1])
+                # nodes having a k-th input: a prefix of the block, because fans descend (so the count of
+                # fans above k is a search in their negatives, which ascend)
+                counts_k = np.searchsorted(-fans, -np.arange(int(fans[0]))).tolist() if len(fans) else []
+                offsets = list(itertools.accumulate(counts_k, initial=e_at))  # a few Python ints
+                slots = tuple(zip(offsets[:-1], counts_k, strict=True))
+                e_at = offsets[-1]
                 extra: Any = None
                 if code == _MEAN:
                     extra = np.maximum(fans, 1).astype(float)[:, None]
@@ -874,16 +882,16 @@ class PopulationNetwork:
                     extra = []
                     for f in np.unique(fans[fans > 0])[::-1].tolist():
                         p0, p1 = (len(fans) - np.searchsorted(fans[::-1], [f + 1, f])).tolist()
-                        index = offsets[:f, None] + np.arange(p0, p1)[None, :]
+                        index = np.array(offsets[:f], dtype=np.int64)[:, None] + np.arange(p0, p1)[None, :]
                         extra.append((p0, p1, f, index))
                 blocks.append((_REDUCERS[code], b_lo - lo, b_hi - lo, slots, extra))
             acts = s_act[lo:hi]
-            kinds = np.unique(acts)
+            kinds = acts[:1] if not np.count_nonzero(acts != acts[0]) else np.unique(acts)
             activations = tuple((_ACT_FN[k], None if len(kinds) == 1 else np.flatnonzero(acts == k)) for k in kinds)
-            levels.append(_Level(first + int(lo), first + int(hi), edge_src[e_lo:e_hi].copy(),
+            levels.append(_Level(first + lo, first + hi, edge_src[e_lo:e_hi].copy(),
                                  edge_w[e_lo:e_hi, None].copy(), s_bias[lo:hi, None].copy(),
                                  s_resp[lo:hi, None].copy(), tuple(blocks), activations,
-                                 bool(np.all(s_resp[lo:hi] == 1.0)),
+                                 not np.count_nonzero(s_resp[lo:hi] != 1.0),
                                  len(activations) == 1 and activations[0][0] in _WRITES_INTO))
         self._levels = tuple(levels)
         self._values: np.ndarray | None = None
