@@ -46,10 +46,11 @@ The last line is ``ratio: N``, (b) over (a) in useful env-steps per second, for
 ``--episodes`` episodes per genome on gymnasium's physics.
 Target: N >= 30; the product's bar (DESIGN.md) is 100.
 
-Measured 2026-12-05 (2 shared cores, defaults, 5 runs): ``ratio:`` 40.3-42.1; 1 episode per
-genome 5.0-5.4 on gymnasium's physics, 1.6-1.7 at pretrial's defaults; 16 episodes at the
-defaults 15.1-15.6; per control step 73.5-74.8 us fixed + 49-51 ns per row (gymnasium's
-physics), 154-161 us + 224-230 ns (defaults). Compiling the 150 genomes takes 1.2 ms
+Measured 2026-12-05 (2 cores, defaults): ``ratio:`` 41.4-43.1 in 3 runs with the other core
+idle (40.3-42.1 in 5 runs beside other work); 1 episode per genome 5.4-5.6 on gymnasium's
+physics (5.0-5.4 beside other work), 1.5-1.7 at pretrial's defaults; 16 episodes at the
+defaults 15.1-15.8; per control step 73-77 us fixed + 49-51 ns per row (gymnasium's physics),
+154-165 us + 224-230 ns (defaults). Compiling the 150 genomes takes 1.2 ms
 (``controller/genome_arrays.py``; 2.9 ms genome by genome).
 
 Why 100 is out of reach for this numpy path (same figures): the headline run steps 151 control
