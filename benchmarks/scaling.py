@@ -25,7 +25,12 @@ but each worker still pays the rollout's fixed cost per control step for as
 long as its longest episode runs. Measured (2026-12-05, 2 cores, load average
 below 1, ``--generations 5``): ``configs/gantry.toml`` (200 genomes x 16 episodes
 against its plan) serial 1.65 s, two processes 1.27 s per generation, speedup
-1.30; the earlier gantry config (150 x 8, no plan) 1.36.
+1.30; the earlier gantry config (150 x 8, no plan) 1.36. Again later that day
+(``--generations 4``, after faster network compiling): 1.50 s and 1.15 s, 1.30.
+Where the ceiling comes from (same day, generation 3's population evaluated in one
+process): the whole population takes 1.67 s, its two halves 0.95 s and 1.14 s, so
+each half costs about 0.41 s of fixed per-step work whatever its size and the slower
+half is 0.68 of the whole (configs/cartpole.toml: 0.39 s whole, 0.25 s each half, 0.65).
 """
 
 from __future__ import annotations
