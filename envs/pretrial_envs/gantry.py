@@ -225,17 +225,17 @@ class GantryPhysics(Physics):
         c_ = self._col
         p = params
 
-        def build(p: Array) -> tuple[Array, Array, bool, bool]:
+        def build(p: Array) -> tuple[Any, ...]:
+            # derived values, and the columns read below (views, looked up once per batch)
             big_m, m = p[:, c_["trolley_mass"]], p[:, c_["load_mass"]]
             coulomb = p[:, c_["trolley_coulomb"]] * (big_m + m)
             coulomb *= p[:, c_["gravity"]]
             return (coulomb, -p[:, c_["rope_damping"]], bool(p[:, c_["trolley_coulomb"]].any()),
-                    bool(p[:, c_["load_drag"]].any()))
+                    bool(p[:, c_["load_drag"]].any()), p[:, c_["gravity"]], big_m, m, p[:, c_["rope_length"]],
+                    p[:, c_["trolley_friction"]], p[:, c_["wind_speed"]], p[:, c_["load_drag"]])
 
-        coulomb, neg_damping, any_coulomb, any_drag = self.batch_constants(params, build)
-        g = p[:, c_["gravity"]]
-        big_m = p[:, c_["trolley_mass"]]
-        m = p[:, c_["load_mass"]]
+        (coulomb, neg_damping, any_coulomb, any_drag, g, big_m, m, rope, friction, wind,
+         drag) = self.batch_constants(params, build)
         xd = state[:, 1]
         w = state[:, 3]
         s = np.sin(state[:, 2])
@@ -244,11 +244,11 @@ class GantryPhysics(Physics):
             ln = state[:, 4]
             ld = state[:, 5]
         else:
-            ln = p[:, c_["rope_length"]]
+            ln = rope
             ld = None
 
         # trolley friction: viscous + Coulomb with tanh-smoothed sign
-        f_net = p[:, c_["trolley_friction"]] * xd
+        f_net = friction * xd
         np.subtract(force[:, 0], f_net, out=f_net)
         if any_coulomb:
             t = xd / COULOMB_SMOOTHING_SPEED
@@ -266,7 +266,7 @@ class GantryPhysics(Physics):
             lw = ln * w
             vx = lw * c
             vx += xd
-            vx -= p[:, c_["wind_speed"]]
+            vx -= wind
             vy = lw
             vy *= s
             if ld is not None:
@@ -278,7 +278,7 @@ class GantryPhysics(Physics):
             t = vy * vy
             kv += t
             np.sqrt(kv, out=kv)
-            kv *= p[:, c_["load_drag"]]
+            kv *= drag
             np.negative(kv, out=kv)
             fx = vx
             fx *= kv
