@@ -29,15 +29,11 @@ _BIAS, _RESPONSE, _ACTIVATION, _AGGREGATION = (attrgetter(a) for a in ("bias", "
                                                                       "aggregation"))
 _ENABLED, _KEY, _WEIGHT = attrgetter("enabled"), attrgetter("key"), attrgetter("weight")
 
-#: Node fields, then edge fields, then the outputs' sources: the order of :class:`NetworkSpec`'s arrays.
-FIELDS = ("node_keys", "level", "bias", "response", "activation", "aggregation",
-          "edge_node", "edge_position", "edge_source", "edge_weight", "output_source")
-
-
 def population_arrays(genomes: Sequence[Any], input_keys: Sequence[int], output_keys: Sequence[int],
                       act_code: Mapping[str, int], agg_code: Mapping[str, int]
                       ) -> tuple[np.ndarray, np.ndarray, dict[str, np.ndarray]] | None:
-    """Per-genome node and edge counts and the concatenated :data:`FIELDS` arrays, or None.
+    """Per-genome node and edge counts and the concatenated :class:`~pretrial.controller.network.NetworkSpec`
+    arrays (by field name, as :class:`~pretrial.controller.network.NetworkStack` holds them), or None.
 
     Parameters
     ----------
@@ -77,10 +73,9 @@ def population_arrays(genomes: Sequence[Any], input_keys: Sequence[int], output_
     except (TypeError, ValueError, AttributeError, OverflowError):
         return None  # not plain numbers and names: the per-genome path says what is wrong
     n_count = np.fromiter(map(len, node_maps), np.int64, g)
-    conn_genome = np.repeat(np.arange(g), conn_count)
+    edge_genome = np.repeat(np.arange(g), conn_count)
     if not enabled.all():
-        pair, weight, conn_genome = pair[enabled], weight[enabled], conn_genome[enabled]
-    edge_genome = conn_genome
+        pair, weight, edge_genome = pair[enabled], weight[enabled], edge_genome[enabled]
     if node_act.size and (node_act.min() < 0 or node_agg.min() < 0):
         return None
     node_genome = np.repeat(np.arange(g), n_count)
@@ -117,7 +112,6 @@ def population_arrays(genomes: Sequence[Any], input_keys: Sequence[int], output_
     if n_edges and (pair_id[1:] == pair_id[:-1]).any():
         return None  # a connection repeated
     # --- nodes required for the outputs: walk back from the outputs along enabled connections
-    n_nodes = len(node_key)
     required = np.zeros(n_nodes, dtype=bool)
     required[out_node] = True
     inner = ~from_pin
@@ -130,8 +124,7 @@ def population_arrays(genomes: Sequence[Any], input_keys: Sequence[int], output_
     link = inner & required[dst_node]
     s, d = src_node[link], dst_node[link]
     level = np.ones(n_nodes, dtype=np.int64)
-    rounds = int(n_count.max()) + 1 if g else 1
-    for _ in range(rounds):
+    for _ in range(int(n_count.max()) + 1):
         new = level.copy()
         np.maximum.at(new, d, level[s] + 1)
         if np.array_equal(new, level):
