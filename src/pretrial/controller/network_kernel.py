@@ -277,4 +277,5 @@ def activate_all(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np
                 state[v, 1 + i] = x[g, b, i]
             forward(g, n_in, node_ptr, bias, response, activation, aggregation, edge_ptr, edge_slot,
                     edge_weight, output_slot, plain, state, v, buf, y)
-            out[g, b] = y
+            for o in range(y.shape[0]):
+                out[g, b, o] = y[o]

@@ -28,6 +28,7 @@ workspace row 0.
 from __future__ import annotations
 
 import math
+
 import numpy as np
 from numba import njit
 
