@@ -9,6 +9,7 @@ from pretrial.cli.args import limit_arg, whole, workers_arg
 from pretrial.console import emit_json, fmt_number
 from pretrial.errors import InputError
 from pretrial.evolution.config import plan_beside
+from pretrial.sim.compiled import ENGINES
 
 
 def configure(p: argparse.ArgumentParser) -> None:
@@ -17,6 +18,9 @@ def configure(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=limit_arg("SEED"), help="override [run].seed")
     p.add_argument("--generations", type=lambda t: whole(t, 1), help="override [run].generations")
     p.add_argument("--workers", type=workers_arg, help="worker processes: N or auto (default: the config's, auto)")
+    p.add_argument("--engine", choices=ENGINES,
+                   help="what runs the episodes: numpy (the reference) or compiled (numba, pip install "
+                        "'pretrial[fast]': the cart-pole's nominal loop, many times faster); default: the config's")
     p.add_argument("--dask", metavar="ADDRESS", help="evaluate on a Dask scheduler; 'local' starts a LocalCluster")
     p.add_argument("--trust-config-dask", action="store_true",
                    help="use the scheduler the config's [run] dask names (it receives and returns pickles)")
@@ -40,7 +44,8 @@ def run(args: argparse.Namespace) -> int:
         cfg = with_plan(cfg, args.plan)
     if args.dask is None:
         _check_config_dask(cfg.path, cfg.run.dask, args.trust_config_dask)
-    cfg = with_overrides(cfg, seed=args.seed, generations=args.generations, workers=args.workers, dask=args.dask)
+    cfg = with_overrides(cfg, seed=args.seed, generations=args.generations, workers=args.workers, dask=args.dask,
+                         engine=args.engine)
     run = cfg.run
     if args.resume:
         run_dir = Path(args.resume)

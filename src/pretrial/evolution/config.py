@@ -7,7 +7,7 @@ A config has four tables::
     [task.params]       physics overrides (names from the env's parameter table)
     [task.randomize]    NAME = [low, high]: drawn afresh each generation ("NAME.CHANNEL" for one channel)
     [neat]              neat-python settings by name, merged onto the shipped defaults
-    [run]               generations, seed, fitness_target, checkpoint_every, workers, dask
+    [run]               generations, seed, fitness_target, checkpoint_every, workers, dask, engine
 
 Unknown keys, wrong types and impossible values raise :class:`InputError` with
 one line: ``FILE: KEY: what is wrong (what is allowed)``, suggesting the nearest
@@ -27,6 +27,7 @@ from typing import Any
 from pretrial.errors import InputError
 from pretrial.files import canonical_json, sha256_hex
 from pretrial.limits import EPISODES, GENERATIONS, HORIZON, NEAT, SEED, check_horizon, check_total
+from pretrial.sim.compiled import ENGINES
 from pretrial.sim.hybrid import resolve_residual_path
 from pretrial.tomlfile import TableReader, channel_items, kind_name, read_toml
 
@@ -65,6 +66,7 @@ class RunConfig:
     linear_every: int = 0  # with a plan: every N generations the best genomes' linear loops are checked (0: never)
     linear_top: int = 3  # how many of the best genomes are linearized
     verdict_samples: int = 256  # with a plan: Monte Carlo samples of each finalist's short verdict
+    engine: str = "numpy"  # what runs the episodes: numpy (the reference) or compiled (numba; pretrial.sim.compiled)
 
 
 @dataclass(frozen=True)
@@ -110,6 +112,8 @@ class Config:
             task["corner_share"] = self.task.corner_share
         out["neat"] = dict(self.neat)
         run = {k: v for k, v in self.run.__dict__.items() if v is not None}
+        if run.get("engine") == "numpy":  # the default: configs from before the key keep their hash
+            del run["engine"]
         out["run"] = run
         return out
 
@@ -291,6 +295,7 @@ def load_config(path: str | Path) -> Config:
     linear_top = r.take("linear_top", int, 3, lambda v: 1 <= v <= 1000, "a whole number from 1 to 1000")
     verdict_samples = r.take("verdict_samples", int, 256, lambda v: 16 <= v <= 1_000_000,
                              "Monte Carlo samples per finalist, 16 to 1000000")
+    engine = r.take("engine", str, "numpy", lambda v: v in ENGINES, " or ".join(repr(e) for e in ENGINES))
     r.finish()
 
     cfg = Config(
@@ -299,7 +304,7 @@ def load_config(path: str | Path) -> Config:
                         objective, corner_share),
         neat=neat,
         run=RunConfig(generations, seed, target, every, workers, dask, finalists, validation, linear_every,
-                      linear_top, verdict_samples),
+                      linear_top, verdict_samples, engine),
         source_text=text,
     )
     # surface neat-python's own objections now, naming the key when one alone upsets it
@@ -478,10 +483,10 @@ def plan_beside(config_path: str | Path, name: str) -> Path | None:
 
 
 def with_overrides(cfg: Config, *, seed: int | None = None, generations: int | None = None,
-                   workers: int | str | None = None, dask: str | None = None) -> Config:
+                   workers: int | str | None = None, dask: str | None = None, engine: str | None = None) -> Config:
     """``cfg`` with the given ``[run]`` settings replaced (None keeps the config's)."""
     import dataclasses
 
-    given = {"seed": seed, "generations": generations, "workers": workers, "dask": dask}
+    given = {"seed": seed, "generations": generations, "workers": workers, "dask": dask, "engine": engine}
     return dataclasses.replace(cfg, run=dataclasses.replace(cfg.run, **{k: v for k, v in given.items()
                                                                         if v is not None}))

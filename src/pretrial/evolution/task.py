@@ -50,6 +50,7 @@ class Task:
     distribution: PlanDistribution | None = None
     quality: QualityLimits | None = None
     objective: Objective = field(default_factory=lambda: Objective("mean"))
+    engine: str = "numpy"  # "compiled": episodes by pretrial.sim.compiled (checked by make_task)
 
     def ramp_fraction(self, generation: int | None) -> float:
         """How far the training distribution has widened at ``generation`` (1: fully; None: validation)."""
@@ -93,9 +94,14 @@ def evaluate_chunk(item: tuple[Task, NetworkStack, Scenarios]) -> tuple[np.ndarr
     """
     task, networks, scenarios = item
     physics = task.physics()
-    policy = PopulationPolicy(PopulationNetwork.of_stack(networks), task.io)
-    out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
-                       quality=task.quality)
+    if task.engine == "compiled":
+        from pretrial.sim.compiled import run_compiled
+
+        out = run_compiled(physics, networks, task.io, scenarios, task.max_steps, score=task.objective.needs_score)
+    else:
+        policy = PopulationPolicy(PopulationNetwork.of_stack(networks), task.io)
+        out = run_episodes(physics, policy, scenarios, task.max_steps, score=task.objective.needs_score,
+                           quality=task.quality)
     diverged = (out.failure == physics.diverged_code).sum(axis=0)  # failure is 0 on success
     score = out.score
     if score is not None and task.quality is not None and out.quality is not None:
@@ -112,14 +118,25 @@ def make_task(cfg: Config, training_plan: tuple | None = None) -> Task:
     from pretrial.sim.plant import make_plant
 
     if cfg.task.plan is not None:
+        if cfg.run.engine == "compiled":
+            raise InputError(f"{cfg.path}: run.engine: 'compiled' cannot train against a plan (its dispersions "
+                             "perturb the loop and it judges loop quality); use engine = 'numpy'")
         return _plan_task(cfg, training_plan or load_training_plan(cfg))
     physics = make_plant(cfg.task.env, **cfg.task.env_options)
     io_map = _io_map(cfg, physics)
     steps = physics.max_steps if cfg.task.horizon is None else max(1, round(cfg.task.horizon / physics.dt))
     opts, params = dict(cfg.task.env_options), dict(cfg.task.params)
     nominal = {name: nominal_value(physics, params, name) for name in cfg.task.randomize}
+    if cfg.run.engine == "compiled":
+        from pretrial.sim.compiled import unsupported
+
+        loop_names = [n for n in cfg.task.randomize if n.split(".")[0] not in physics.param_table]
+        why = unsupported(physics, io_map, loop_names)
+        if why is not None:
+            raise InputError(f"{cfg.path}: run.engine: 'compiled' cannot run this config: {why}; "
+                             "use engine = 'numpy'")
     return Task(cfg.task.env, opts, params, steps, io_map, dict(cfg.task.randomize), cfg.task.randomize_ramp, nominal,
-                objective=parse_objective(cfg.task.objective))
+                objective=parse_objective(cfg.task.objective), engine=cfg.run.engine)
 
 
 def _io_map(cfg: Config, physics: Any) -> IOMap:
