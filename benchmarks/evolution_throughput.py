@@ -86,9 +86,10 @@ import gymnasium  # noqa: E402
 import neat  # noqa: E402
 import numpy as np  # noqa: E402
 
-from pretrial.controller.network import stack_genomes  # noqa: E402
+from pretrial.controller.network import NetworkStack, stack_genomes  # noqa: E402
 from pretrial.controller.policy import IOMap, PopulationPolicy  # noqa: E402
 from pretrial.evolution.config import neat_defaults  # noqa: E402
+from pretrial.sim.compiled import available, run_compiled  # noqa: E402
 from pretrial.sim.rollout import Outcome, draw_scenarios, run_episodes  # noqa: E402
 from pretrial_envs.cartpole import CartPolePhysics  # noqa: E402
 
@@ -148,12 +149,16 @@ def by_hand(genomes: list[Any], config: neat.Config, episodes: int, seed: int,
 
 
 def with_pretrial(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, episodes: int,
-                  seed: int, base_params: dict[str, float] | None = GYM_PARAMS) -> tuple[Outcome, float]:
-    """pretrial's batched evaluation of all genomes (physics overrides ``base_params``). Returns (outcome, seconds)."""
+                  seed: int, base_params: dict[str, float] | None = GYM_PARAMS,
+                  engine: str = "numpy") -> tuple[Outcome, float]:
+    """pretrial's evaluation of all genomes (physics overrides ``base_params``). Returns (outcome, seconds)."""
     t0 = time.perf_counter()
-    policy = PopulationPolicy(stack_genomes(genomes, config), IOMap(4, 1))
     scenarios = draw_scenarios(physics, episodes, seed, base_params=base_params)
-    outcome = run_episodes(physics, policy, scenarios, max_steps=HORIZON)
+    if engine == "compiled":
+        outcome = run_compiled(physics, NetworkStack.of_genomes(genomes, config), IOMap(4, 1), scenarios, HORIZON)
+    else:
+        policy = PopulationPolicy(stack_genomes(genomes, config), IOMap(4, 1))
+        outcome = run_episodes(physics, policy, scenarios, max_steps=HORIZON)
     return outcome, time.perf_counter() - t0
 
 
@@ -205,19 +210,24 @@ def per_step_costs(genomes: list[Any], config: neat.Config, physics: CartPolePhy
 
 def compare(genomes: list[Any], config: neat.Config, physics: CartPolePhysics, base: dict[str, float] | None,
             episodes: int, seed: int, hand: tuple[int, float, float, int], repeats: int, label: str,
-            detail: bool) -> float:
+            detail: bool, engine: str = "numpy") -> float:
     """(b) beside the already-timed hand loop ``hand``; prints a summary, returns the ratio of useful steps/s."""
     g = len(genomes)
-    with_pretrial(genomes, config, physics, episodes, seed, base)  # warm-up: first-call allocations and caches
-    runs = [with_pretrial(genomes, config, physics, episodes, seed, base) for _ in range(max(1, repeats))]
+    # warm-up: first-call allocations and caches (the compiled engine: numba compiles here)
+    with_pretrial(genomes, config, physics, episodes, seed, base, engine)
+    runs = [with_pretrial(genomes, config, physics, episodes, seed, base, engine) for _ in range(max(1, repeats))]
     outcome = runs[0][0]
     t_b = statistics.median(t for _, t in runs)
     useful_b = int(outcome.steps.sum())
-    computed_b = plant_row_steps(genomes, config, physics, episodes, seed, base) if detail else 0
+    computed_b = plant_row_steps(genomes, config, physics, episodes, seed, base) if detail and engine == "numpy" else 0
     steps_a, t_a, setup_a, done_a = hand
     rate_a = steps_a / t_a
     rate_b = useful_b / t_b
-    if detail:
+    if detail and engine != "numpy":
+        print(f"(c) pretrial run_compiled (engine = \"compiled\"), one core, {label}: {g * episodes} episodes, "
+              f"{useful_b:,} useful steps in {t_b:.4f} s (median of {len(runs)})")
+        print(f"    {rate_b:12,.0f} env-steps/s useful (each row runs alone to its end: no step is wasted)")
+    elif detail:
         rate_a_no_setup = steps_a / (t_a - setup_a)
         print(f"(a) by hand, neat-python + gymnasium: {done_a} of {g} genomes, {done_a * episodes} episodes, "
               f"{steps_a:,} steps (mean {steps_a / (done_a * episodes):.1f} per episode) in {t_a:.3f} s")
@@ -260,21 +270,30 @@ def main() -> None:
     print(f"{g} genomes (hidden nodes: mean {np.mean(hidden):.1f}, max {max(hidden)}; enabled connections: "
           f"mean {np.mean(enabled):.1f}), horizon {HORIZON} steps; (a) is gymnasium's CartPole-v1 throughout")
 
-    ratios: dict[tuple[str, int], float] = {}
+    engines = ["numpy", "compiled"] if available() else ["numpy"]
+    ratios: dict[tuple[str, str, int], float] = {}
     for episodes in sorted({1, e}):
         hands = [by_hand(genomes, config, episodes, args.seed, args.hand_seconds)
                  for _ in range(max(1, args.hand_repeats))]
         hand = sorted(hands, key=lambda h: h[0] / h[1])[len(hands) // 2]
+        for engine in engines:
+            for label, physics, base in plants:
+                detail = episodes == e and physics is gym_physics
+                if detail:
+                    print()
+                ratios[engine, label, episodes] = compare(genomes, config, physics, base, episodes, args.seed, hand,
+                                                          args.repeats, label, detail, engine)
+    if "compiled" in engines:
         for label, physics, base in plants:
-            detail = episodes == e and physics is gym_physics
-            if detail:
-                print()
-            ratios[label, episodes] = compare(genomes, config, physics, base, episodes, args.seed, hand,
-                                              args.repeats, label, detail)
+            a = with_pretrial(genomes, config, physics, e, args.seed, base)[0]
+            c = with_pretrial(genomes, config, physics, e, args.seed, base, "compiled")[0]
+            same = np.mean((a.steps == c.steps) & (a.failure == c.failure))
+            print(f"(b) and (c), {label}: {same:.2%} of episodes end at the same step with the same outcome, "
+                  f"returns within {np.max(np.abs(a.returns - c.returns)):.1e}")
 
-    print("\nratio of useful env-steps/s, (b) over (a), by plant set-up and episodes per genome:")
-    for (label, episodes), r in ratios.items():
-        print(f"  {label}, {episodes:2d} episode{'s' if episodes > 1 else ' '} per genome: {r:6.1f}")
+    print("\nratio of useful env-steps/s over (a), by engine, plant set-up and episodes per genome:")
+    for (engine, label, episodes), r in ratios.items():
+        print(f"  {engine:8s} {label}, {episodes:2d} episode{'s' if episodes > 1 else ' '} per genome: {r:6.1f}")
     print("\n(b) per control step with no row ending (40 steps at 150 and 2,400 rows):")
     for label, physics, _ in plants:
         fixed, per_row = per_step_costs(genomes, config, physics, args.seed, scenarios=(1, 16))
@@ -288,7 +307,9 @@ def main() -> None:
         print("\n(b) profile, top entries by own time:")
         pstats.Stats(prof).sort_stats("tottime").print_stats(15)
 
-    print(f"ratio: {ratios[plants[0][0], e]:.1f}")
+    for engine in engines:
+        print(f"ratio, {engine} engine: {ratios[engine, plants[0][0], e]:.1f}")
+    print(f"ratio: {ratios[engines[-1], plants[0][0], e]:.1f}")
 
 
 if __name__ == "__main__":
