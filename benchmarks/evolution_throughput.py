@@ -14,7 +14,11 @@ carry a hidden node or more), each on the same number of episodes of at most
     ``pretrial.sim.rollout.run_episodes`` on ``pretrial/CartPole-v0`` set up as
     gymnasium's (forward Euler, dt 0.02 s, one substep, 10 s, gravity 9.8,
     frictionless). Its action is the tanh output times ``max_force`` rather than
-    a bang-bang push, so episode lengths differ a little between the paths.
+    a bang-bang push, so episode lengths differ a little between the paths;
+(c) pretrial's compiled engine (``[run] engine = "compiled"``, numba; printed when numba is
+    installed): ``NetworkStack.of_genomes`` -> ``pretrial.sim.compiled.run_compiled`` on the
+    same plant and scenarios, each row run alone to its end in compiled code. Its episodes
+    end where (b)'s do (printed: share of equal outcomes, largest return difference).
 
 Random genomes mostly fail within a few dozen steps, so the figure of merit is
 useful env-steps per second: steps actually simulated while the episode was
@@ -42,9 +46,9 @@ one Euler step); (a) is gymnasium's CartPole-v1 in every row. Then (b)'s time
 per control step is split into a fixed part and a part per row (two batch
 sizes of 40 steps with no row ending): the fixed part is what small batches pay.
 
-The last line is ``ratio: N``, (b) over (a) in useful env-steps per second, for
-``--episodes`` episodes per genome on gymnasium's physics.
-Target: N >= 30; the product's bar (DESIGN.md) is 100.
+The last lines are the ratio of each engine, then ``ratio: N``: over (a) in useful env-steps
+per second, for ``--episodes`` episodes per genome on gymnasium's physics, of (c) when numba is
+installed, else of (b). Target: N >= 30; the product's bar (DESIGN.md) is 100.
 
 Measured 2026-12-05 (2 cores, defaults): ``ratio:`` 41.4-43.1 in 3 runs with the other core
 idle (40.3-42.1 in 5 runs beside other work); 1 episode per genome 5.4-5.6 on gymnasium's
