@@ -50,12 +50,23 @@ The last lines are the ratio of each engine, then ``ratio: N``: over (a) in usef
 per second, for ``--episodes`` episodes per genome on gymnasium's physics, of (c) when numba is
 installed, else of (b). Target: N >= 30; the product's bar (DESIGN.md) is 100.
 
-Measured 2026-12-05 (2 cores, defaults): ``ratio:`` 41.4-43.1 in 3 runs with the other core
-idle (40.3-42.1 in 5 runs beside other work); 1 episode per genome 5.4-5.6 on gymnasium's
-physics (5.0-5.4 beside other work), 1.5-1.7 at pretrial's defaults; 16 episodes at the
-defaults 15.1-15.8; per control step 73-77 us fixed + 49-51 ns per row (gymnasium's physics),
-154-165 us + 224-230 ns (defaults). Compiling the 150 genomes takes 1.2 ms
+Measured 2026-12-05, session 25 (2 cores, defaults, numpy engine only): ``ratio:`` 41.4-43.1 in
+3 runs with the other core idle (40.3-42.1 in 5 runs beside other work); 1 episode per genome
+5.4-5.6 on gymnasium's physics (5.0-5.4 beside other work), 1.5-1.7 at pretrial's defaults;
+16 episodes at the defaults 15.1-15.8; per control step 73-77 us fixed + 49-51 ns per row
+(gymnasium's physics), 154-165 us + 224-230 ns (defaults). Compiling the 150 genomes takes 1.2 ms
 (``controller/genome_arrays.py``; 2.9 ms genome by genome).
+
+Measured 2026-12-05, session 26, with the compiled engine (3 runs, machine slower and noisier
+than the day before: (b)'s fixed cost per step 84-168 us): ``ratio:`` (c) 129.6, 168.4, 131.5;
+(b) 44.4, 31.0, 46.5 in the same runs. 1 episode per genome: (c) 35.8-42.7 on gymnasium's
+physics, 22.3-26.7 at the defaults. 16 episodes at the defaults: (c) 31.3-50.4, (b) 15.4-20.8.
+Every episode of (c) ended at the same step with the same outcome as (b)'s; returns within
+6e-13 (numpy's ``tanh`` against the C library's). (c) costs about 150 ns per useful step on
+gymnasium's physics and 500-650 ns at the defaults (8 derivative evaluations, each a ``sin``,
+``cos`` and ``tanh`` of the C library, scalar), against (b)'s 224-240 ns per row at large
+batches: so (c) wins where batches are small or episodes short (this population), and
+numpy wins once a whole population balances for long episodes at the defaults (see README).
 
 Why 100 is out of reach for this numpy path (same figures): the headline run steps 151 control
 periods (one genome balances long after the others fell) for 35,750 row-steps, and must take

@@ -107,7 +107,7 @@ class KernelNetworks:
         return len(self.node_ptr) - 1
 
     def arrays(self) -> tuple[Any, ...]:
-        """What a kernel takes before its buffers, in :func:`kernels`' ``forward`` order (after ``g``)."""
+        """What :func:`forward` takes after ``g`` and before its buffers, in order."""
         return (self.n_in, self.node_ptr, self.bias, self.response, self.activation, self.aggregation, self.edge_ptr,
                 self.edge_slot, self.edge_weight, self.output_slot, self.plain)
 
