@@ -77,8 +77,8 @@ class Run:
 
 def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: PathLike | None = None,
            seed: int | None = None, generations: int | None = None, workers: int | str | None = None,
-           dask: str | None = None, resume: bool = False, log: Callable[[str], None] | None = None,
-           reporters: Sequence[Any] = ()) -> Run:
+           dask: str | None = None, engine: str | None = None, resume: bool = False,
+           log: Callable[[str], None] | None = None, reporters: Sequence[Any] = ()) -> Run:
     """Evolve a controller with NEAT from a run config.
 
     Parameters
@@ -89,8 +89,9 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
         Train against this sweep plan (as ``--plan``; a config's ``[task] plan`` does the same).
     out : path-like, optional
         The run directory (default ``runs/<config>-<UTC time>``); with ``resume``, the run to continue.
-    seed, generations, workers, dask : optional
-        Override the config's ``[run]`` settings (None keeps them).
+    seed, generations, workers, dask, engine : optional
+        Override the config's ``[run]`` settings (None keeps them); ``engine="compiled"`` runs the
+        episodes on :mod:`pretrial.sim.compiled` (numba).
     resume : bool
         Continue the run in ``out`` from its last checkpoint.
     log : callable, optional
@@ -105,15 +106,19 @@ def evolve(config: PathLike | Config, *, plan: PathLike | None = None, out: Path
         The run directory and the summary; ``run.champion`` is the evolved policy.
     """
     with _in_api_words():
+        from pretrial.errors import InputError
         from pretrial.evolution.config import Config, load_config, with_overrides
         from pretrial.evolution.loop import Evolution
         from pretrial.evolution.task import with_plan
+        from pretrial.sim.compiled import ENGINES
         from pretrial.sim.execution import make_executor
 
         cfg = config if isinstance(config, Config) else load_config(config)
         if plan is not None:
             cfg = with_plan(cfg, plan, label="plan")
-        cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask)
+        if engine is not None and engine not in ENGINES:
+            raise InputError(f"engine: {engine!r} not one of {', '.join(ENGINES)}")
+        cfg = with_overrides(cfg, seed=seed, generations=generations, workers=workers, dask=dask, engine=engine)
         if resume and out is None:
             raise ValueError("resume=True needs out= (the run directory to continue)")
         run_dir = Path(out) if out is not None else \

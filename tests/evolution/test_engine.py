@@ -107,3 +107,14 @@ def test_evolve_refuses_a_plan_on_the_compiled_engine(tmp_path, capsys, monkeypa
                                 "--engine", "compiled", "--out", "x"])
     assert "run.engine: 'compiled' cannot train against a plan" in line
     assert snapshot(tmp_path) == before
+
+
+def test_python_api_takes_the_engine(tmp_path):
+    import pretrial
+
+    cfg = write(tmp_path)
+    run = pretrial.evolve(cfg, generations=1, workers=1, engine="compiled", out=tmp_path / "run")
+    assert 'engine = "compiled"' in (run.directory / "config.resolved.toml").read_text()
+    with pytest.raises(InputError, match="engine: 'fast' not one of numpy, compiled"):
+        pretrial.evolve(cfg, engine="fast", out=tmp_path / "other")
+    assert not (tmp_path / "other").exists()
