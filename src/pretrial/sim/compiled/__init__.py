@@ -15,12 +15,13 @@ timing, start scale), loop-quality judging, traces, learned residuals, the
 other plants. :func:`unsupported` names the first
 such need; callers refuse with it rather than fall back silently.
 
-Numbers: the plant's operations are the numpy core's, in the same order, so
-states and rewards are equal bit for bit; the networks use the C library's
-``tanh``/``exp`` as neat-python does, where numpy's may differ in the last
-bit (see :mod:`pretrial.controller.network_kernel`). So outcomes agree with the
-numpy engine to rounding, and exactly once the numpy networks use the C
-library's functions (tested). A run records which engine it used.
+Numbers: the plant's operations are the numpy core's, in the same order; the
+networks and the cart's friction use the C library's ``tanh``/``exp`` (the
+networks as neat-python does), where numpy's may differ in the last bit (see
+:mod:`pretrial.controller.network_kernel`). So outcomes are equal bit for bit
+once the numpy engine uses the C library's functions too (tested), and agree
+to rounding otherwise, except where a plant amplifies a last-bit difference
+(a pole that falls a step earlier). A run records which engine it used.
 
 numba is an optional dependency: ``pip install "pretrial[fast]"``.
 """
