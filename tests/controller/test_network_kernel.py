@@ -22,7 +22,7 @@ from pretrial.controller.network import NetworkStack, PopulationNetwork
 pytest.importorskip("numba")
 from pretrial.controller.network_kernel import KernelNetworks
 
-SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+SETTINGS = settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 # CPython 3.12 sums floats with compensation (neat-python's sum), the kernels left to right as 3.11
 EXACT_SUM = sys.version_info < (3, 12)
 

@@ -148,6 +148,18 @@ def clamp(z: float, low: float, high: float) -> float:
     z = z if z < high else high  # min(high, z)
     return z if z > low else low  # max(low, z)
 
+@njit(inline="always", **_JIT)
+def power2(z: float) -> float:
+    """``z ** 2`` as Python computes it: the C library's ``pow``, which is not always ``z * z``.
+
+    The exponent is made a runtime value (``2 + 0 z``) because LLVM rewrites ``pow(z, 2.0)`` into
+    ``z * z`` (measured: 162 of 200,000 normal draws then differ from Python's by an ulp).
+    """
+    if math.isinf(z):
+        return math.inf
+    return math.pow(z, 2.0 + 0.0 * z)
+
+
 @njit(**_JIT)
 def act(code: int, z: float) -> float:
     if code == TANH:
@@ -161,8 +173,7 @@ def act(code: int, z: float) -> float:
     if code == SIN:
         return math.sin(clamp(5.0 * z, -60.0, 60.0))
     if code == GAUSS:
-        c = clamp(z, -3.4, 3.4)
-        return math.exp(-5.0 * (c * c))  # z ** 2 is the correctly rounded z * z
+        return math.exp(-5.0 * power2(clamp(z, -3.4, 3.4)))
     if code == ELU:
         return z if z > 0.0 else math.exp(z) - 1.0
     if code == LELU:
@@ -185,7 +196,7 @@ def act(code: int, z: float) -> float:
         h = 1.0 - abs(z)
         return h if h > 0.0 else 0.0
     if code == SQUARE:
-        return z * z
+        return power2(z)
     if code == CUBE:
         return math.pow(z, 3.0)
     return math.nan  # not reached: codes come from ACTIVATIONS
