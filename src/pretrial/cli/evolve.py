@@ -67,7 +67,8 @@ def run(args: argparse.Namespace) -> int:
             if not quiet:
                 ex = executor.describe()
                 print(f"evolving {cfg.task.env} from {cfg.path} (seed {run.seed}, {run.generations} generations, "
-                      f"{ex['executor']} x{ex['workers']}) -> {run_dir}", flush=True)
+                      f"{ex['executor']} x{ex['workers']}{', compiled engine' if run.engine == 'compiled' else ''}) "
+                      f"-> {run_dir}", flush=True)
         summary = evo.run(run.generations)
     if args.json:
         emit_json(summary)
