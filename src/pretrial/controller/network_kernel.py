@@ -94,7 +94,7 @@ class KernelNetworks:
         fan = np.bincount(dst, minlength=n_nodes)
         edge_ptr = np.concatenate([[0], np.cumsum(fan)]).astype(np.int64)
         node_genome = np.repeat(np.arange(g), counts)
-        other = np.bincount(node_genome, weights=stack.aggregation != _G["sum"], minlength=g) > 0
+        other = np.bincount(node_genome, weights=stack.aggregation != SUM, minlength=g) > 0
         plain = np.where(~stack.feed_forward.astype(bool), 2, np.where(other, 0, 1)).astype(np.int64)
         # local value index -> slot: -1 (a constant 0.0) -> 0, input i -> 1 + i, node j -> 1 + n_in + j
         return cls(node_ptr, stack.bias.astype(float), stack.response.astype(float),
@@ -147,6 +147,7 @@ _JIT = {"cache": True, "_nrt": False}
 def clamp(z: float, low: float, high: float) -> float:
     z = z if z < high else high  # min(high, z)
     return z if z > low else low  # max(low, z)
+
 
 @njit(inline="always", **_JIT)
 def power2(z: float) -> float:
@@ -241,6 +242,7 @@ def aggregate(code: int, values: np.ndarray, v: int, read: int, slots: np.ndarra
             best = x
     return best
 
+
 @njit(inline="always", **_JIT)
 def forward(g: int, n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray,
             activation: np.ndarray, aggregation: np.ndarray, edge_ptr: np.ndarray, edge_slot: np.ndarray,
@@ -275,6 +277,7 @@ def forward(g: int, n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response:
             values[v, base + j] = act(activation[j], bias[j] + response[j] * s)
     for o in range(out.shape[0]):
         out[o] = values[v, output_slot[g, o]]
+
 
 @njit(**_JIT)
 def activate_all(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray,

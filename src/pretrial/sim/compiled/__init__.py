@@ -121,10 +121,9 @@ def run_compiled(physics: Physics, networks: NetworkStack, io: IOMap, scenarios:
     offset, scale, a_scale, a_offset = (np.ascontiguousarray(np.asarray(v, dtype=float))
                                         for v in (io.obs_offset, io.obs_scale, io.action_scale, io.action_offset))
     flags = np.array([physics.poles, physics.observe_mode == "positions"], dtype=np.int64)
-    run(*nets.arrays(), nets.n_slots, nets.max_fan, offset, scale, a_scale, a_offset, io.blocks, params, start, s,
-        cartpole.columns(physics), flags, physics.obs_dim, physics.action_dim, float(physics.dt),
-        int(physics.substeps), physics.integrator == "rk4", int(physics.max_steps), limit,
-        int(physics.diverged_code), int(physics.timeout_code), physics.success_mode == "survive", bool(score),
+    run(*nets.arrays(), offset, scale, a_scale, a_offset, io.blocks, params, start, s,
+        cartpole.columns(physics), flags, float(physics.dt), int(physics.substeps), physics.integrator == "rk4",
+        int(physics.max_steps), limit, int(physics.diverged_code), bool(score),
         np.empty((6, physics.state_dim)), np.empty(physics.obs_dim), np.empty((io.blocks, 2 * nets.n_slots)),
         np.empty(max(nets.max_fan, 1)), np.empty(nets.n_out), np.empty(physics.action_dim),
         returns, success, failure, steps, min_slack)

@@ -87,6 +87,42 @@ def solve(s: float, friction: bool, sin: float, cos: float, mlw2: float, force: 
     normal = total * g - normal  # N_c = (M + m) g - m l (theta'' sin + theta'^2 cos)
     return x_acc, th_acc, normal
 
+
+@njit(inline="always", **_JIT)
+def pole_terms(angle: float, w: float, m: float, half: float, mu: float, g: float
+               ) -> tuple[float, float, float, float, float]:
+    # one pole of CartPolePhysics._two_poles: (effective force, effective mass, cos, piv, g sin)
+    sin = math.sin(angle)
+    cos = math.cos(angle)
+    piv = mu * w
+    piv /= m
+    piv /= half
+    g_sin = g * sin
+    t = piv - g_sin
+    t *= cos
+    t *= 0.75
+    eff = w * w
+    eff *= half
+    eff *= sin
+    eff += t
+    eff *= m
+    mass = cos * cos
+    mass *= -0.75
+    mass += 1.0
+    mass *= m
+    return eff, mass, cos, piv, g_sin
+
+
+@njit(inline="always", **_JIT)
+def pole_acceleration(cos: float, piv: float, g_sin: float, half: float, x_acc: float) -> float:
+    # theta'' = 3 / (4 l) (g sin - x'' cos - mu_p theta' / (m l))
+    a = g_sin - cos * x_acc
+    a -= piv
+    a *= 0.75
+    a /= half
+    return a
+
+
 @njit(**_JIT)
 def deriv(ws: np.ndarray, src: int, dst: int, force: float, params: np.ndarray, r: int, cols: np.ndarray,
           poles: int) -> None:
@@ -128,47 +164,19 @@ def deriv(ws: np.ndarray, src: int, dst: int, force: float, params: np.ndarray, 
     ws[dst, 0] = x_dot
     ws[dst, 2] = ws[src, 3]
     ws[dst, 4] = ws[src, 5]
-    # per pole: (half, cos, piv, g_sin), kept for the angular accelerations
-    h1 = h2 = c1 = c2 = v1 = v2 = s1 = s2 = 0.0
-    for i in range(2):
-        col = 2 + 2 * i
-        m = params[r, cols[MP]] if i == 0 else params[r, cols[MP2]]
-        half = params[r, cols[L]] if i == 0 else params[r, cols[L2]]
-        mu = params[r, cols[MU_P]] if i == 0 else params[r, cols[MU_P2]]
-        w = ws[src, col + 1]
-        sin = math.sin(ws[src, col])
-        cos = math.cos(ws[src, col])
-        piv = mu * w
-        piv /= m
-        piv /= half
-        g_sin = g * sin
-        t = piv - g_sin
-        t *= cos
-        t *= 0.75
-        eff = w * w
-        eff *= half
-        eff *= sin
-        eff += t
-        eff *= m
-        num += eff
-        t = cos * cos
-        t *= -0.75
-        t += 1.0
-        t *= m
-        den += t
-        if i == 0:
-            h1, c1, v1, s1 = half, cos, piv, g_sin
-        else:
-            h2, c2, v2, s2 = half, cos, piv, g_sin
-    num /= den
+    e1, t1, c1, v1, s1 = pole_terms(ws[src, 2], ws[src, 3], params[r, cols[MP]], params[r, cols[L]],
+                                    params[r, cols[MU_P]], g)
+    num += e1
+    den += t1
+    e2, t2, c2, v2, s2 = pole_terms(ws[src, 4], ws[src, 5], params[r, cols[MP2]], params[r, cols[L2]],
+                                    params[r, cols[MU_P2]], g)
+    num += e2
+    den += t2
+    num /= den  # x''
     ws[dst, 1] = num
-    for i in range(2):
-        half, cos, piv, g_sin = (h1, c1, v1, s1) if i == 0 else (h2, c2, v2, s2)
-        a = g_sin - cos * num
-        a -= piv
-        a *= 0.75
-        a /= half
-        ws[dst, 3 + 2 * i] = a
+    ws[dst, 3] = pole_acceleration(c1, v1, s1, params[r, cols[L]], num)
+    ws[dst, 5] = pole_acceleration(c2, v2, s2, params[r, cols[L2]], num)
+
 
 @njit(inline="always", **_JIT)
 def rules(ws: np.ndarray, action: float, params: np.ndarray, r: int, cols: np.ndarray, poles: int,
@@ -200,6 +208,7 @@ def rules(ws: np.ndarray, action: float, params: np.ndarray, r: int, cols: np.nd
     tilt *= 1.0 if code == 0 else 0.0
     tilt += 0.0
     return code, tilt
+
 
 @njit(inline="always", **_JIT)
 def slack(ws: np.ndarray, params: np.ndarray, r: int, cols: np.ndarray, poles: int) -> float:

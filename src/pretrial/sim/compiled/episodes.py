@@ -7,7 +7,8 @@ costs what its arithmetic costs and a row that has ended costs nothing. The
 loop is the nominal one of ``run_episodes``: observation -> network inputs ->
 network -> action in [-1, 1] -> physical input -> integration (Euler or RK4,
 ``substeps`` per period) -> divergence check -> the plant's failure rule and
-reward -> survival or the horizon.
+reward -> survival or the horizon. Tasks that succeed by surviving only (the
+cart-pole's); reach tasks would need the goal hold here.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ import numpy as np
 from numba import njit
 
 from pretrial.controller.network_kernel import forward
-from pretrial.sim.compiled.cartpole import deriv, observe, rules, slack
+from pretrial.sim.compiled.cartpole import MAX_FORCE, deriv, observe, rules, slack
 from pretrial_envs.core import DIVERGENCE_BOUND
 
 
@@ -25,22 +26,22 @@ from pretrial_envs.core import DIVERGENCE_BOUND
 @njit(cache=False, _nrt=False)  # no reference counting (see pretrial.controller.network_kernel)
 def run(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray, activation: np.ndarray,
         aggregation: np.ndarray, edge_ptr: np.ndarray, edge_slot: np.ndarray, edge_weight: np.ndarray,
-        output_slot: np.ndarray, plain: np.ndarray, n_slots: int, max_fan: int,
+        output_slot: np.ndarray, plain: np.ndarray,
         obs_offset: np.ndarray, obs_scale: np.ndarray, action_scale: np.ndarray, action_offset: np.ndarray,
         blocks: int, params: np.ndarray, start: np.ndarray, scenarios: int, cols: np.ndarray,
-        flags: np.ndarray, obs_dim: int, action_dim: int, dt: float, substeps: int, rk4: bool,
-        env_steps: int, limit: int, diverged_code: int, timeout_code: int, survive: bool, score: bool,
+        flags: np.ndarray, dt: float, substeps: int, rk4: bool,
+        env_steps: int, limit: int, diverged_code: int, score: bool,
         ws: np.ndarray, obs: np.ndarray, values: np.ndarray, buf: np.ndarray, out: np.ndarray,
         action: np.ndarray, returns: np.ndarray, success: np.ndarray, failure: np.ndarray,
         steps: np.ndarray, min_slack: np.ndarray) -> None:
-    """Every row's episode, row after row (the cart-pole's kernels).
+    """Every row's episode, row after row (the cart-pole's kernels; a task that succeeds by surviving).
 
-    Its arguments, in order: the networks (:meth:`KernelNetworks.arrays`), ``n_slots``, ``max_fan``,
-    the I/O map (``obs_offset``, ``obs_scale``, ``action_scale``, ``action_offset``, ``blocks``),
+    Its arguments, in order: the networks (:meth:`KernelNetworks.arrays`), the I/O map
+    (``obs_offset``, ``obs_scale``, ``action_scale``, ``action_offset``, ``blocks``),
     the rows (``params`` (R, P), ``start`` (R, S), scenarios per policy), the plant's ``cols``,
-    ``flags`` (``poles``, ``positions``), ``obs_dim``, ``action_dim``, the period (``dt``,
-    ``substeps``, ``rk4``), ``env_steps`` (the plant's time limit in periods), ``limit`` (the
-    run's horizon), ``diverged_code``, ``timeout_code``, ``survive``, ``score`` (keep the smallest
+    ``flags`` (``poles``, ``positions``), the period (``dt``, ``substeps``, ``rk4``),
+    ``env_steps`` (the plant's time limit in periods), ``limit`` (the run's horizon),
+    ``diverged_code``, ``score`` (keep the smallest
     constraint slack of each episode, as ``run_episodes(score=True)`` does), the buffers (``ws`` (6, S):
     the state, the four RK4 stages and a stage's argument; ``obs`` (O,); ``values``
     (blocks, 2 n_slots); ``buf`` (max_fan,); ``out`` (n_out,); ``action`` (A,)), then the outputs
@@ -56,11 +57,10 @@ def run(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray,
         for i in range(s_dim):
             ws[0, i] = start[r, i]
         for b in range(blocks):  # a fresh recurrent state per episode
-            for i in range(2 * n_slots):
+            for i in range(values.shape[1]):
                 values[b, i] = 0.0
         ret = 0.0
         least = np.inf
-        ok_end = False
         code = 0
         k = 0
         while k < limit:
@@ -76,7 +76,7 @@ def run(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray,
                     a = out[o] * action_scale[j] + action_offset[j]
                     # np.clip's rule, NaN kept
                     action[j] = -1.0 if a < -1.0 else (1.0 if a > 1.0 else a)
-            force = action[0] * params[r, cols[4]]
+            force = action[0] * params[r, cols[MAX_FORCE]]
             for _ in range(substeps):
                 if rk4:
                     deriv(ws, 0, 1, force, params, r, cols, poles)
@@ -109,19 +109,12 @@ def run(n_in: int, node_ptr: np.ndarray, bias: np.ndarray, response: np.ndarray,
                 if now < least:
                     least = now
             k += 1
-            if code != 0:
+            if code != 0 or k >= env_steps:  # a failure, or the plant's own time limit (a success)
                 break
-            if survive and k >= env_steps:  # the plant's own time limit: success
-                ok_end = True
-                break
-        if code == 0 and not ok_end:  # the run's horizon came first
-            if survive:
-                ok_end = True
-            else:
-                code = timeout_code
+        # surviving to the plant's time limit or to the run's horizon is a success
         returns[r] = ret
-        success[r] = ok_end
-        failure[r] = 0 if ok_end else code
+        success[r] = code == 0
+        failure[r] = code
         steps[r] = k
         min_slack[r] = least
 
